@@ -1,0 +1,1 @@
+"""Policies: one small protocol, one module per kind."""

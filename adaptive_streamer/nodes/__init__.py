@@ -1,0 +1,1 @@
+"""Thin rclpy shells around the core: they convert messages, own parameters and timers."""

@@ -1,0 +1,1 @@
+"""rosbag2 recording and reading (rosbags), offline replay and reports."""
