@@ -1,0 +1,159 @@
+"""Helpers shared by the rclpy shells: stamps, parameters, diagnostics, QoS and a clean main.
+
+Nothing here does motion math; it only moves values between ROS and the core.
+"""
+from __future__ import annotations
+
+import math
+import signal
+import sys
+from typing import Any, Callable, Iterable, Sequence
+
+import rclpy
+from builtin_interfaces.msg import Time as TimeMsg
+from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
+from rcl_interfaces.msg import ParameterDescriptor
+from rclpy.executors import ExternalShutdownException, Executor, SingleThreadedExecutor
+from rclpy.node import Node
+from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy,
+                       qos_profile_sensor_data)
+
+OK, WARN, ERROR, STALE = (DiagnosticStatus.OK, DiagnosticStatus.WARN, DiagnosticStatus.ERROR,
+                          DiagnosticStatus.STALE)
+
+
+def stamp_to_sec(stamp: TimeMsg) -> float:
+    """builtin_interfaces/Time -> float seconds."""
+    return stamp.sec + stamp.nanosec * 1e-9
+
+
+def sec_to_stamp(t: float, out: TimeMsg | None = None) -> TimeMsg:
+    """Float seconds -> builtin_interfaces/Time (filled into ``out`` when given)."""
+    msg = out if out is not None else TimeMsg()
+    sec = math.floor(t)
+    nsec = int(round((t - sec) * 1e9))
+    if nsec >= 1_000_000_000:
+        sec, nsec = sec + 1, nsec - 1_000_000_000
+    msg.sec, msg.nanosec = int(sec), nsec
+    return msg
+
+
+def now_sec(node: Node) -> float:
+    """The node's clock (ROS time, so sim time under ``use_sim_time``) in seconds."""
+    return node.get_clock().now().nanoseconds * 1e-9
+
+
+def declare(node: Node, name: str, default: Any, description: str,
+            read_only: bool = False, dynamic_typing: bool = False) -> Any:
+    """Declare a parameter with a description and return its current value."""
+    desc = ParameterDescriptor(description=description, read_only=read_only,
+                               dynamic_typing=dynamic_typing)
+    return node.declare_parameter(name, default, desc).value
+
+
+def reliable_qos(depth: int = 1, transient_local: bool = False) -> QoSProfile:
+    """Reliable keep-last QoS (transient-local durability when asked)."""
+    return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=depth,
+                      reliability=ReliabilityPolicy.RELIABLE,
+                      durability=(DurabilityPolicy.TRANSIENT_LOCAL if transient_local
+                                  else DurabilityPolicy.VOLATILE))
+
+
+def qos_by_name(name: str, depth: int = 1) -> QoSProfile:
+    """QoS from a parameter value: 'reliable', 'best_effort', 'sensor_data' or 'transient_local'."""
+    if name == "reliable":
+        return reliable_qos(depth)
+    if name == "transient_local":
+        return reliable_qos(depth, transient_local=True)
+    if name == "best_effort":
+        return QoSProfile(history=HistoryPolicy.KEEP_LAST, depth=depth,
+                          reliability=ReliabilityPolicy.BEST_EFFORT)
+    if name == "sensor_data":
+        return qos_profile_sensor_data
+    raise ValueError(f"unknown QoS '{name}'; expected reliable, best_effort, sensor_data or "
+                     "transient_local")
+
+
+class DiagnosticsReporter:
+    """Publishes one DiagnosticStatus for a node on ``/diagnostics`` from a slow timer.
+
+    The node sets ``level``/``message`` and fills ``values`` (or a callable returning them);
+    publishing is about once per ``period`` seconds, never per control tick.
+    """
+
+    def __init__(self, node: Node, name: str, period: float = 1.0,
+                 values: Callable[[], Iterable[tuple[str, Any]]] | None = None) -> None:
+        self._node = node
+        self._pub = node.create_publisher(DiagnosticArray, "/diagnostics", 10)
+        self.name = name
+        self.hardware_id = node.get_fully_qualified_name()
+        self.level = OK
+        self.message = "starting"
+        self._values = values
+        self._timer = node.create_timer(period, self.publish)
+
+    def set(self, level: int, message: str) -> None:
+        """Set the summary level (OK/WARN/ERROR/STALE) and message."""
+        self.level, self.message = level, message
+
+    def publish(self) -> None:
+        """Publish the current status now."""
+        status = DiagnosticStatus(level=self.level, name=self.name, message=self.message,
+                                  hardware_id=self.hardware_id)
+        if self._values is not None:
+            status.values = [KeyValue(key=str(k), value=_fmt(v)) for k, v in self._values()]
+        arr = DiagnosticArray()
+        arr.header.stamp = self._node.get_clock().now().to_msg()
+        arr.status = [status]
+        self._pub.publish(arr)
+
+
+def _fmt(value: Any) -> str:
+    if isinstance(value, float):
+        return f"{value:.6g}"
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_fmt(v) for v in value) + "]"
+    return str(value)
+
+
+def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = None,
+              executor: Executor | None = None,
+              before_shutdown: Callable[[list[Node], Executor], None] | None = None) -> int:
+    """Init rclpy, build the nodes, spin until Ctrl-C/SIGTERM, shut down cleanly (no traceback).
+
+    ``before_shutdown`` runs after the stop request while the executor still works (e.g. to
+    bring the arm to rest). Returns a process exit code.
+    """
+    rclpy.init(args=args, signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
+    stop = {"flag": False}
+
+    def _handler(signum: int, frame: Any) -> None:  # noqa: ARG001
+        stop["flag"] = True
+
+    old = {s: signal.signal(s, _handler) for s in (signal.SIGINT, signal.SIGTERM)}
+    nodes: list[Node] = []
+    code = 0
+    ex = executor or SingleThreadedExecutor()
+    try:
+        nodes = [f() for f in factories]
+        for n in nodes:
+            ex.add_node(n)
+        while not stop["flag"] and rclpy.ok():
+            ex.spin_once(timeout_sec=0.1)
+        if before_shutdown is not None:
+            before_shutdown(nodes, ex)
+    except (KeyboardInterrupt, ExternalShutdownException):
+        pass
+    except Exception as exc:  # a node failed to start: say why, no traceback wall
+        print(f"error: {exc}", file=sys.stderr)
+        code = 1
+    finally:
+        for s, h in old.items():
+            signal.signal(s, h)
+        for n in nodes:
+            ex.remove_node(n)
+            n.destroy_node()
+        ex.shutdown()
+        if rclpy.ok():
+            rclpy.shutdown()
+    return code
