@@ -192,14 +192,16 @@ class LimitStage:
             out = np.where(bad, self._braking_from(state, r), out)
         return out
 
-    def braking(self, state: MotionState | tuple) -> np.ndarray:
+    def braking(self, state: MotionState | tuple, admissible: Admissible | None = None
+                ) -> np.ndarray:
         """The braking decision: the fastest admissible way towards rest.
 
         Decelerates as hard as the interval allows, ramps the acceleration out so that the
         joint arrives at rest without reversing (the mirrored velocity bound with a zero
         velocity limit), and finishes with an exact two-period stop once that is admissible.
+        ``admissible`` may pass an already computed `evaluate` result for ``state``.
         """
-        return self._braking_from(state, self.evaluate(*state))
+        return self._braking_from(state, admissible or self.evaluate(*state))
 
     # ------------------------------------------------------------------ internals
     def _stack(self, x: np.ndarray) -> np.ndarray:
@@ -241,11 +243,12 @@ class LimitStage:
                         box_lo: np.ndarray, idx: np.ndarray) -> list[int]:
         """Lower U in place where the position limit binds; returns non-viable indices."""
         T, consts, ptol = self.period, self._consts, self._ptol
+        Pl, Vl, Al, Ul, Ll = P.tolist(), Vv.tolist(), Aa.tolist(), U.tolist(), box_lo.tolist()
         bad = []
-        for i, p, v, a, u, lo in zip(idx.tolist(), P[idx].tolist(), Vv[idx].tolist(),
-                                     Aa[idx].tolist(), U[idx].tolist(), box_lo[idx].tolist()):
+        for i in idx.tolist():
             A, Jc, pmax = consts[i]
-            root = _position_root(p, v, a, u, lo, T, A, Jc, pmax, ptol[i])
+            u = Ul[i]
+            root = _position_root(Pl[i], Vl[i], Al[i], u, Ll[i], T, A, Jc, pmax, ptol[i])
             if root is None:
                 bad.append(i)
             elif root < u:

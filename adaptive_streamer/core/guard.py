@@ -1,0 +1,75 @@
+"""The last guard on every outgoing setpoint.
+
+Whatever produced it, a setpoint leaves only if it is finite, inside the position, velocity
+and acceleration limits, and continuous with the previous one: the position, velocity and
+acceleration steps since the previous setpoint must be within what the velocity,
+acceleration and jerk limits allow over the elapsed time. A failure names the joint and
+what was wrong; the adapter then stops (and counts it).
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .limits import JointLimits
+from .segment import MotionState
+
+REL_TOL = 1e-6
+
+
+class SetpointGuard:
+    """Checks successive setpoints against ``limits`` (relative tolerance ``REL_TOL``)."""
+
+    def __init__(self, limits: JointLimits) -> None:
+        self.limits = limits
+        self._pmin = limits.position_min - REL_TOL * (1 + np.abs(limits.position_min))
+        self._pmax = limits.position_max + REL_TOL * (1 + np.abs(limits.position_max))
+        self._v = limits.velocity_max * (1 + REL_TOL)
+        self._a = limits.acceleration_max * (1 + REL_TOL)
+        self._j = limits.jerk_max * (1 + REL_TOL)
+        self._prev: tuple[float, MotionState] | None = None
+        self.failures = 0
+
+    def reset(self) -> None:
+        """Forget the previous setpoint (a new stream starts)."""
+        self._prev = None
+
+    def check(self, t: float, sp: MotionState) -> str | None:
+        """None if ``sp`` at time ``t`` may go out, else the reason (and it is counted)."""
+        reason = self._reason(t, sp)
+        if reason is None:
+            self._prev = (t, sp)
+        else:
+            self.failures += 1
+        return reason
+
+    def _reason(self, t: float, sp: MotionState) -> str | None:
+        p, v, a = sp
+        names = self.limits.names
+        for label, x in (("position", p), ("velocity", v), ("acceleration", a)):
+            bad = ~np.isfinite(x)
+            if bad.any():
+                return f"setpoint {label} of joint '{names[int(np.argmax(bad))]}' is not finite"
+        for label, bad in (("position below its minimum", p < self._pmin),
+                           ("position above its maximum", p > self._pmax),
+                           ("velocity over its limit", np.abs(v) > self._v),
+                           ("acceleration over its limit", np.abs(a) > self._a)):
+            if bad.any():
+                i = int(np.argmax(bad))
+                return f"setpoint {label} on joint '{names[i]}' (p={p[i]:.6g}, v={v[i]:.6g}, a={a[i]:.6g})"
+        if self._prev is None:
+            return None
+        t0, (p0, v0, a0) = self._prev
+        dt = t - t0
+        if dt <= 0.0:
+            return f"setpoint time {t:.6f} s does not advance past {t0:.6f} s"
+        slack = 1e-9
+        for label, step, bound in (
+                ("position", np.abs(p - p0), self._v * dt + slack),
+                ("velocity", np.abs(v - v0), self._a * dt + slack),
+                ("acceleration", np.abs(a - a0), self._j * dt + slack)):
+            bad = step > bound
+            if bad.any():
+                i = int(np.argmax(bad))
+                return (f"setpoint {label} jumps by {step[i]:.6g} on joint '{names[i]}' in "
+                        f"{dt * 1e3:.3f} ms (at most {bound[i]:.6g} allowed)")
+        return None

@@ -1,0 +1,133 @@
+"""The committed command plan and the stream clock.
+
+`CommandPlan` keeps the committed constant-jerk segments (start time, start state, decision)
+and samples them at any nominal time: the stream publishes the plan, never the wake-up time
+of a timer, so timer jitter never becomes position noise. It also answers "what was
+commanded at time t" for following-error monitoring with a driver latency.
+
+`StreamClock` turns a wake-up time into the tick index to publish (nominal time
+``t0 + i / rate``) and counts ticks that were skipped because a wake-up came late.
+"""
+from __future__ import annotations
+
+import math
+from collections import deque
+from dataclasses import dataclass
+
+import numpy as np
+
+from .segment import MotionState
+
+
+class StreamError(RuntimeError):
+    """The plan cannot answer (time before its first or after its last segment)."""
+
+
+@dataclass(frozen=True)
+class Segment:
+    """One committed period: from ``state`` at ``start`` with decision ``u`` over ``period``."""
+
+    start: float
+    state: MotionState
+    u: np.ndarray
+
+
+class CommandPlan:
+    """Committed segments, oldest first, with sampling at nominal times.
+
+    Args:
+        period: decision period T [s].
+        keep: how many past segments to keep for delayed look-ups.
+    """
+
+    def __init__(self, period: float, keep: int = 64) -> None:
+        self.period = float(period)
+        self._segments: deque[Segment] = deque(maxlen=keep)
+
+    def clear(self) -> None:
+        """Forget every segment."""
+        self._segments.clear()
+
+    def commit(self, segment: Segment) -> None:
+        """Append a segment; it must start where the previous one ends."""
+        if self._segments:
+            last = self._segments[-1]
+            expected = last.start + self.period
+            if abs(segment.start - expected) > 1e-6 * max(1.0, self.period):
+                raise StreamError(f"segment starts at {segment.start:.6f} s, expected {expected:.6f} s")
+        self._segments.append(segment)
+
+    @property
+    def empty(self) -> bool:
+        """True when nothing is committed."""
+        return not self._segments
+
+    @property
+    def end(self) -> float:
+        """Time the last committed segment ends."""
+        if not self._segments:
+            raise StreamError("no segment committed")
+        return self._segments[-1].start + self.period
+
+    @property
+    def start(self) -> float:
+        """Start time of the oldest kept segment."""
+        if not self._segments:
+            raise StreamError("no segment committed")
+        return self._segments[0].start
+
+    def segment_at(self, t: float) -> Segment:
+        """The segment covering time ``t`` (start <= t < start + T; the last one up to its end)."""
+        segs = self._segments
+        if not segs:
+            raise StreamError("no segment committed")
+        first = segs[0].start
+        k = math.floor((t - first) / self.period + 1e-9)
+        if k < 0 or t > self.end + 1e-9:
+            raise StreamError(f"time {t:.6f} s outside the plan [{first:.6f}, {self.end:.6f}] s")
+        return segs[min(k, len(segs) - 1)]
+
+    def sample(self, t: float) -> MotionState:
+        """Commanded position, velocity and acceleration at nominal time ``t``."""
+        seg = self.segment_at(t)
+        p, v, a = seg.state
+        tau = t - seg.start
+        j = (seg.u - a) / self.period
+        return MotionState(p + tau * (v + tau * (0.5 * a + tau * j / 6.0)),
+                           v + tau * (a + 0.5 * j * tau), a + j * tau)
+
+    def jerk_at(self, t: float) -> np.ndarray:
+        """Commanded jerk at time ``t``."""
+        seg = self.segment_at(t)
+        return (seg.u - seg.state.acceleration) / self.period
+
+
+class StreamClock:
+    """Nominal tick times ``t0 + i / rate`` and skipped-tick accounting.
+
+    `due(now)` returns the index of the latest tick whose nominal time has come; ticks
+    between the previously published one and it were skipped (a late wake-up) and are
+    counted.
+    """
+
+    def __init__(self, t0: float, rate: float) -> None:
+        if not (math.isfinite(rate) and rate > 0):
+            raise StreamError(f"stream rate must be positive, got {rate}")
+        self.t0 = float(t0)
+        self.rate = float(rate)
+        self.last_index = -1
+        self.skipped = 0
+
+    def time_of(self, index: int) -> float:
+        """Nominal time of tick ``index``."""
+        return self.t0 + index / self.rate
+
+    def due(self, now: float) -> int | None:
+        """Index of the tick to publish at wake-up time ``now`` (None if none is due yet)."""
+        i = math.floor((now - self.t0) * self.rate + 1e-6)
+        if i <= self.last_index:
+            return None
+        if self.last_index >= 0 and i > self.last_index + 1:
+            self.skipped += i - self.last_index - 1
+        self.last_index = i
+        return i

@@ -1,0 +1,209 @@
+"""The watchdog: triggers, the latched stop and the reset rules.
+
+Each trigger has its own threshold parameter and reason text. The first trigger latches a
+`Trip` (reason, time, message, values); the decision cycle then brakes to rest through the
+limit stage (IEC 60204-1 stop category 2 behaviour: a controlled stop with power kept) and
+holds until a reset. `reset` refuses while a persistent cause is still present (stale
+inputs, following error, an external stop still requested) and says which.
+
+Triggers and their parameters (`WatchdogConfig`):
+
+==================  ========================================  ===========================
+kind                condition                                 parameter
+==================  ========================================  ===========================
+deviation           planned end state vs reference, per       ``deviation_joint`` [rad],
+                    joint or as a norm (in-cycle check)       ``deviation_norm`` [rad]
+following_error     measured joint_states vs the command      ``following_error`` [rad],
+                    ``command_latency`` earlier               ``command_latency`` [s]
+joint_states_stale  no joint_states newer than the timeout    ``joint_states_timeout`` [s]
+feedback_stale      a feature the policy needs is stale       ``feedback_timeout`` [s]
+reference_stale     no reference window newer than timeout,   ``reference_timeout`` [s]
+                    or the window ends before the horizon
+policy_fault        NaN/inf/wrong size output or exception    (always on)
+overruns            too many late decisions in a window       ``max_overruns`` in
+                                                              ``overrun_window`` decisions
+external_stop       ``~/stop`` service or the stop topic      (always on)
+setpoint_guard      an outgoing setpoint failed the guard     (always on)
+==================  ========================================  ===========================
+"""
+from __future__ import annotations
+
+import math
+from collections import deque
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+KINDS = ("deviation", "following_error", "joint_states_stale", "feedback_stale",
+         "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard")
+PERSISTENT = ("following_error", "joint_states_stale", "feedback_stale", "reference_stale",
+              "external_stop")
+
+
+class WatchdogError(ValueError):
+    """A watchdog parameter is invalid."""
+
+
+@dataclass(frozen=True)
+class WatchdogConfig:
+    """Thresholds of every trigger (validated; errors name the parameter)."""
+
+    deviation_joint: float = 0.05
+    deviation_norm: float = 0.08
+    following_error: float = 0.05
+    command_latency: float = 0.012
+    joint_states_timeout: float = 0.1
+    feedback_timeout: float = 0.25
+    reference_timeout: float = 0.25
+    max_overruns: int = 3
+    overrun_window: int = 20
+
+    def __post_init__(self) -> None:
+        for name in ("deviation_joint", "deviation_norm", "following_error",
+                     "joint_states_timeout", "feedback_timeout", "reference_timeout"):
+            x = getattr(self, name)
+            if not (isinstance(x, (int, float)) and math.isfinite(x) and x > 0):
+                raise WatchdogError(f"watchdog parameter '{name}' must be a positive number, got {x!r}")
+        if not (math.isfinite(self.command_latency) and self.command_latency >= 0):
+            raise WatchdogError(f"watchdog parameter 'command_latency' must be >= 0, "
+                                f"got {self.command_latency!r}")
+        if int(self.max_overruns) < 1 or int(self.overrun_window) < int(self.max_overruns):
+            raise WatchdogError("watchdog parameters need 1 <= max_overruns <= overrun_window, got "
+                                f"{self.max_overruns} and {self.overrun_window}")
+
+
+@dataclass(frozen=True)
+class Trip:
+    """A latched stop: what fired, when, why, and the values that made it fire."""
+
+    kind: str
+    time: float
+    message: str
+    values: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class InputAges:
+    """Ages [s] of the latest inputs at one instant (``inf`` when never received)."""
+
+    joint_states: float = math.inf
+    feedback: float = math.inf
+    reference: float = math.inf
+    reference_margin: float = math.inf  # window end minus the last time the horizon needs
+    feedback_needed: bool = False
+
+
+class Watchdog:
+    """Evaluates triggers, latches the first trip, counts events and rules on resets."""
+
+    def __init__(self, config: WatchdogConfig, joint_names: tuple[str, ...]) -> None:
+        self.config = config
+        self.joint_names = joint_names
+        self.trip: Trip | None = None
+        self.events: list[Trip] = []
+        self.counts = {k: 0 for k in KINDS}
+        self.stop_requested: str | None = None
+        self._overruns: deque[bool] = deque(maxlen=int(config.overrun_window))
+        self._deviation_joint = np.full(len(joint_names), float(config.deviation_joint))
+
+    # ------------------------------------------------------------------ trips
+    @property
+    def tripped(self) -> bool:
+        """True while a trip is latched."""
+        return self.trip is not None
+
+    def fire(self, kind: str, time: float, message: str, **values: Any) -> Trip:
+        """Latch a trip (the first one wins; later ones are counted and logged only)."""
+        if kind not in KINDS:
+            raise WatchdogError(f"unknown trigger '{kind}'")
+        event = Trip(kind, time, message, values)
+        self.counts[kind] += 1
+        self.events.append(event)
+        if self.trip is None:
+            self.trip = event
+        return event
+
+    # ------------------------------------------------------------------ checks
+    def deviation(self, planned: np.ndarray, reference: np.ndarray,
+                  continuous: np.ndarray) -> tuple[float, float, str | None]:
+        """Per-joint max and norm of the planned-vs-reference deviation, and a reason if over."""
+        d = planned - reference
+        if continuous.any():
+            d = np.where(continuous, (d + np.pi) % (2 * np.pi) - np.pi, d)
+        ad = np.abs(d)
+        i = int(np.argmax(ad))
+        worst, norm = float(ad[i]), float(np.sqrt(np.dot(d, d)))
+        if ad[i] > self._deviation_joint[i]:
+            return worst, norm, (f"planned deviation from the reference {worst:.4g} rad on joint "
+                                 f"'{self.joint_names[i]}' exceeds deviation_joint "
+                                 f"{self._deviation_joint[i]:.4g} rad")
+        if norm > self.config.deviation_norm:
+            return worst, norm, (f"planned deviation norm {norm:.4g} rad exceeds deviation_norm "
+                                 f"{self.config.deviation_norm:.4g} rad")
+        return worst, norm, None
+
+    def following(self, measured: np.ndarray, commanded: np.ndarray) -> tuple[float, str | None]:
+        """Largest |measured - commanded| and a reason if over ``following_error``."""
+        err = np.abs(measured - commanded)
+        i = int(np.argmax(err))
+        if not np.isfinite(err[i]):
+            return math.inf, f"measured joint_states of joint '{self.joint_names[i]}' is not finite"
+        if err[i] > self.config.following_error:
+            return float(err[i]), (f"following error {err[i]:.4g} rad on joint "
+                                   f"'{self.joint_names[i]}' exceeds following_error "
+                                   f"{self.config.following_error:.4g} rad (command "
+                                   f"{self.config.command_latency * 1e3:.1f} ms earlier)")
+        return float(err[i]), None
+
+    def stale_inputs(self, ages: InputAges) -> list[tuple[str, str]]:
+        """(kind, reason) for every input that is too old now."""
+        c, out = self.config, []
+        if ages.joint_states > c.joint_states_timeout:
+            out.append(("joint_states_stale", _age_text("joint_states", ages.joint_states,
+                                                        "joint_states_timeout", c.joint_states_timeout)))
+        if ages.feedback_needed and ages.feedback > c.feedback_timeout:
+            out.append(("feedback_stale", _age_text("feedback", ages.feedback, "feedback_timeout",
+                                                    c.feedback_timeout)))
+        if ages.reference > c.reference_timeout:
+            out.append(("reference_stale", _age_text("reference/window", ages.reference,
+                                                     "reference_timeout", c.reference_timeout)))
+        elif ages.reference_margin < 0.0:
+            out.append(("reference_stale", "reference/window ends "
+                        f"{-ages.reference_margin * 1e3:.1f} ms before the decision horizon"))
+        return out
+
+    def overrun(self, late: bool) -> str | None:
+        """Record whether a decision was late; a reason when too many were."""
+        self._overruns.append(late)
+        count = sum(self._overruns)
+        if late and count >= self.config.max_overruns:
+            return (f"{count} late decisions in the last {len(self._overruns)} (max_overruns "
+                    f"{self.config.max_overruns} in overrun_window {self.config.overrun_window})")
+        return None
+
+    # ------------------------------------------------------------------ reset
+    def reset(self, persisting: list[tuple[str, str]]) -> tuple[bool, str]:
+        """Clear the latched trip unless a persistent cause is still present.
+
+        ``persisting`` lists (kind, reason) of causes evaluated now by the caller (stale inputs,
+        following error, a policy still failing its test inference...).
+        """
+        if self.stop_requested is not None:
+            persisting = [("external_stop", f"a stop is still requested: {self.stop_requested}")
+                          ] + list(persisting)
+        if persisting:
+            why = "; ".join(reason for _, reason in persisting)
+            return False, f"reset refused: {why}"
+        was = self.trip
+        self.trip = None
+        self._overruns.clear()
+        if was is None:
+            return True, "nothing to reset"
+        return True, f"reset after {was.kind}: {was.message}"
+
+
+def _age_text(what: str, age: float, param: str, limit: float) -> str:
+    if math.isinf(age):
+        return f"no {what} received ({param} {limit:.3g} s)"
+    return f"{what} is {age * 1e3:.0f} ms old (over {param} {limit * 1e3:.0f} ms)"
