@@ -23,7 +23,7 @@ from adaptive_streamer.core.feasibility import FeasibilityError, check_feasibili
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.override import OverrideError, OverrideRamp
 from adaptive_streamer.core.playback import Playback, PlaybackError
-from adaptive_streamer.core.reference import ReferenceError, ReferenceTrajectory
+from adaptive_streamer.core.reference import ReferenceTrajectory, TrajectoryError
 from adaptive_streamer.core.timing import TimingError, time_parameterise
 
 NAMES = ("j1", "j2", "j3")
@@ -210,12 +210,12 @@ def test_exact_peaks_bound_dense_samples():
     ([0.0, 1.0], [[0, 1], [1, 2]], r"expected shape \(2, 1\)"),
 ])
 def test_reference_refuses_bad_samples(times, positions, fragment):
-    with pytest.raises(ReferenceError, match=fragment):
+    with pytest.raises(TrajectoryError, match=fragment):
         ReferenceTrajectory(["j1"], times, positions)
 
 
 def test_periodic_reference_needs_closed_samples():
-    with pytest.raises(ReferenceError, match="refused, not blended.*'j1' starts at 0 and ends at 1"):
+    with pytest.raises(TrajectoryError, match="refused, not blended.*'j1' starts at 0 and ends at 1"):
         ReferenceTrajectory(["j1"], [0, 1, 2], [[0], [2], [1]], ends="periodic")
 
 

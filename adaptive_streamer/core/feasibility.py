@@ -111,7 +111,8 @@ def ensure_feasible(reference: ReferenceTrajectory, limits: JointLimits, slow_do
         raise FeasibilityError("reference leaves the position limits (slowing down cannot fix "
                                "this): " + "; ".join(report.violations()))
     if not slow_down:
-        raise FeasibilityError("reference exceeds the joint limits: " + "; ".join(report.violations())
+        raise FeasibilityError("reference exceeds the joint limits: "
+                               + "; ".join(report.violations())
                                + f"; a slow-down by {report.slow_down_factor(fraction):.4g}x "
                                "would fit (enable the slow-down option to apply it)")
     lam = report.slow_down_factor(fraction)

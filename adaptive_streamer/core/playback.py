@@ -72,7 +72,8 @@ def validate_override(value: float) -> float:
     except (TypeError, ValueError):
         raise PlaybackError(f"speed override must be a number, got {value!r}") from None
     if not (np.isfinite(x) and MIN_OVERRIDE <= x <= MAX_OVERRIDE):
-        raise PlaybackError(f"speed override must be in [{MIN_OVERRIDE}, {MAX_OVERRIDE}], got {value}")
+        raise PlaybackError(f"speed override must be in [{MIN_OVERRIDE}, {MAX_OVERRIDE}], got "
+                            f"{value}")
     return x
 
 

@@ -33,7 +33,7 @@ SPLINE_DEGREE = 5
 LOOP_TOLERANCE = 1e-9  # rad; first and last samples closer than this count as equal
 
 
-class ReferenceError(ValueError):
+class TrajectoryError(ValueError):
     """A reference trajectory's samples are malformed or inconsistent."""
 
 
@@ -70,32 +70,33 @@ class ReferenceTrajectory:
                  positions: Sequence[Sequence[float]] | np.ndarray, ends: str = "rest") -> None:
         names = tuple(str(x) for x in names)
         if not names or len(set(names)) != len(names) or not all(names):
-            raise ReferenceError(f"joint names must be unique and non-empty, got {list(names)}")
+            raise TrajectoryError(f"joint names must be unique and non-empty, got {list(names)}")
         t = np.asarray(times, dtype=float)
         p = np.asarray(positions, dtype=float)
         if t.ndim != 1 or t.size < 2:
-            raise ReferenceError(f"need at least 2 samples with a 1-D time vector, got shape {t.shape}")
+            raise TrajectoryError(f"need at least 2 samples with a 1-D time vector, got shape "
+                                  f"{t.shape}")
         if p.shape != (t.size, len(names)):
-            raise ReferenceError(f"positions: expected shape ({t.size}, {len(names)}) for "
+            raise TrajectoryError(f"positions: expected shape ({t.size}, {len(names)}) for "
                                  f"{t.size} times and joints {list(names)}, got {p.shape}")
         if not np.all(np.isfinite(t)):
-            raise ReferenceError(f"time {int(np.flatnonzero(~np.isfinite(t))[0])} is not finite")
+            raise TrajectoryError(f"time {int(np.flatnonzero(~np.isfinite(t))[0])} is not finite")
         bad = np.argwhere(~np.isfinite(p))
         if bad.size:
             i, j = bad[0]
-            raise ReferenceError(f"sample {i}: joint '{names[j]}' position is {p[i, j]}")
+            raise TrajectoryError(f"sample {i}: joint '{names[j]}' position is {p[i, j]}")
         steps = np.diff(t)
         if np.any(steps <= 0.0):
             i = int(np.flatnonzero(steps <= 0.0)[0]) + 1
-            raise ReferenceError(f"sample {i}: time {t[i]} is not after the previous time "
+            raise TrajectoryError(f"sample {i}: time {t[i]} is not after the previous time "
                                  f"{t[i - 1]} (times must strictly increase)")
         if ends not in ENDS:
-            raise ReferenceError(f"ends must be one of {list(ENDS)}, got {ends!r}")
+            raise TrajectoryError(f"ends must be one of {list(ENDS)}, got {ends!r}")
         if ends == "periodic":
             gap = np.abs(p[-1] - p[0])
             if np.any(gap > LOOP_TOLERANCE):
                 j = int(np.argmax(gap))
-                raise ReferenceError(
+                raise TrajectoryError(
                     f"a periodic (looping) reference needs the last sample to equal the first "
                     f"(it is refused, not blended); joint "
                     f"'{names[j]}' starts at {p[0, j]:.9g} and ends at {p[-1, j]:.9g}")
@@ -143,7 +144,7 @@ class ReferenceTrajectory:
         Times outside the range are clamped to it (the ends hold, at rest for ``ends='rest'``).
         """
         if order not in (0, 1, 2, 3):
-            raise ReferenceError(f"order must be 0..3, got {order}")
+            raise TrajectoryError(f"order must be 0..3, got {order}")
         tt = np.clip(np.asarray(t, dtype=float), 0.0, self.duration)
         return self._derivs[order](tt)
 
@@ -157,7 +158,7 @@ class ReferenceTrajectory:
         The last grid time is at or just past the end; it holds the final point.
         """
         if not (np.isfinite(period) and period > 0.0):
-            raise ReferenceError(f"resampling period must be positive and finite, got {period}")
+            raise TrajectoryError(f"resampling period must be positive and finite, got {period}")
         count = int(np.ceil(self.duration / period - 1e-9)) + 1
         grid = np.arange(count) * period
         p, v, a = self.sample(grid)
@@ -167,16 +168,8 @@ class ReferenceTrajectory:
         """The same path taking ``factor`` times as long (velocity / factor, acceleration /
         factor^2, jerk / factor^3)."""
         if not (np.isfinite(factor) and factor > 0.0):
-            raise ReferenceError(f"time scaling factor must be positive and finite, got {factor}")
+            raise TrajectoryError(f"time scaling factor must be positive and finite, got {factor}")
         return ReferenceTrajectory(self.names, self.times * factor, self.positions, self.ends)
-
-    def select(self, names: Sequence[str]) -> "ReferenceTrajectory":
-        """The reference for ``names`` (a subset and/or reordering of its joints)."""
-        missing = [n for n in names if n not in self.names]
-        if missing:
-            raise ReferenceError(f"unknown joint(s) {missing}; the reference has {list(self.names)}")
-        idx = [self.names.index(n) for n in names]
-        return ReferenceTrajectory(names, self.times, self.positions[:, idx], self.ends)
 
     def peaks(self) -> Peaks:
         """Exact per-joint extremes of position, |velocity|, |acceleration| and |jerk|.
@@ -195,7 +188,8 @@ def _fit(t: np.ndarray, p: np.ndarray, ends: str) -> BSpline:
     n = p.shape[1]
     if ends == "periodic":
         if t.size < 3:
-            raise ReferenceError("ends='periodic' needs at least 3 samples (first == last plus one)")
+            raise TrajectoryError("ends='periodic' needs at least 3 samples (first == last plus "
+                                  "one)")
         return make_interp_spline(t, p, k=SPLINE_DEGREE, bc_type="periodic")
     zero = np.zeros(n)
     rest = [(1, zero), (2, zero)]

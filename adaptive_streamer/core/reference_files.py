@@ -45,7 +45,7 @@ import numpy as np
 import yaml
 
 from .limits import JointLimits
-from .reference import ReferenceError, ReferenceTrajectory
+from .reference import ReferenceTrajectory, TrajectoryError
 from .timing import DEFAULT_FRACTION, TimingError, time_parameterise
 
 DEFAULT_MAX_GAP = 1.0  # s
@@ -145,7 +145,8 @@ def load_yaml(path: str | Path, *, joints: Sequence[str] | None = None,
     except yaml.YAMLError as exc:
         raise ReferenceFileError(f"{p}: not valid YAML: {exc}") from None
     if not isinstance(data, dict):
-        raise ReferenceFileError(f"{p}: expected a mapping with 'joints' and 'points' or 'waypoints'")
+        raise ReferenceFileError(f"{p}: expected a mapping with 'joints' and 'points' or "
+                                 "'waypoints'")
     unknown = set(data) - {"joints", "points", "waypoints"}
     if unknown:
         raise ReferenceFileError(f"{p}: unknown key(s) {sorted(unknown)}; expected 'joints' and "
@@ -178,7 +179,8 @@ def load_yaml(path: str | Path, *, joints: Sequence[str] | None = None,
         if not isinstance(pos, list) or len(pos) != n:
             raise ReferenceFileError(f"{p}: {labels[i]}: expected a list of {n} positions (joints "
                                      f"{names}), got {pos!r}")
-        rows.append([_yaml_number(p, labels[i], f"joint '{names[k]}'", v) for k, v in enumerate(pos)])
+        rows.append([_yaml_number(p, labels[i], f"joint '{names[k]}'", v)
+                     for k, v in enumerate(pos)])
     if kind == "points":
         return _build(str(p), names, times, rows, labels, joints, limits, max_gap, ends)
     if limits is None:
@@ -407,5 +409,5 @@ def _build(src: str, names: Sequence[str], times: Sequence[float],
                                      f"{max_gap:g} s")
     try:
         return ReferenceTrajectory(order, t, pos, ends=ends)
-    except ReferenceError as exc:
+    except TrajectoryError as exc:
         raise ReferenceFileError(f"{src}: {exc}") from None

@@ -24,7 +24,7 @@ from typing import Sequence
 import numpy as np
 
 from .limits import JointLimits
-from .reference import ReferenceError, ReferenceTrajectory
+from .reference import ReferenceTrajectory, TrajectoryError
 
 DEFAULT_FRACTION = 0.8
 
@@ -62,11 +62,12 @@ def time_parameterise(names: Sequence[str], waypoints: Sequence[Sequence[float]]
     chords = np.linalg.norm(np.diff(w, axis=0), axis=1)
     if np.any(chords == 0.0):
         i = int(np.flatnonzero(chords == 0.0)[0]) + 1
-        raise TimingError(f"waypoint {i} repeats waypoint {i - 1}; consecutive waypoints must differ")
+        raise TimingError(f"waypoint {i} repeats waypoint {i - 1}; consecutive waypoints must "
+                          "differ")
     u = np.concatenate([[0.0], np.cumsum(chords)]) / chords.sum()
     try:
         unit = ReferenceTrajectory(names, u, w, ends=ends)
-    except ReferenceError as exc:
+    except TrajectoryError as exc:
         raise TimingError(f"waypoints: {exc}") from None
     peaks = unit.peaks()
     duration = float(np.max(np.concatenate([
@@ -87,8 +88,8 @@ def _check(ref: ReferenceTrajectory, lim: JointLimits, fraction: float) -> None:
             raise TimingError(
                 f"joint '{name}': the spline through the waypoints reaches "
                 f"[{pk.position_min[j]:.6g}, {pk.position_max[j]:.6g}] rad, outside the position "
-                f"limits [{lim.position_min[j]:.6g}, {lim.position_max[j]:.6g}]; move the waypoints "
-                "away from the limit or add waypoints")
+                f"limits [{lim.position_min[j]:.6g}, {lim.position_max[j]:.6g}]; move the "
+                "waypoints away from the limit or add waypoints")
     for label, peak, bound in (("velocity", pk.velocity, lim.velocity_max),
                                ("acceleration", pk.acceleration, lim.acceleration_max),
                                ("jerk", pk.jerk, lim.jerk_max)):

@@ -1,0 +1,249 @@
+"""``reference_server`` node: plays a reference trajectory as a rolling window.
+
+Loads a reference (CSV, own YAML points or waypoints, or a rosbag2 topic; see
+`adaptive_streamer.core.reference_files`), checks it against the joint limits (refusing it,
+or slowing it down when ``slow_down`` is set), and every decision period publishes the
+next ``horizon`` points on ``reference/window`` (trajectory_msgs/JointTrajectory;
+header.stamp = when points[0] applies, points[i].time_from_start = i * decision_period,
+positions/velocities/accelerations filled). Before start the window holds the first point
+at rest; after the end (``end_mode: hold``) it holds the final point at rest.
+
+Also: ``reference/path`` (transient-local, once): the whole reference resampled at the
+decision period (time_from_start = reference time at override 1); services ``~/start``,
+``~/pause``, ``~/resume`` (std_srvs/Trigger); ``speed_override`` settable at runtime
+(refused outside [0.05, 1]); state and progress on ``/diagnostics`` about once a second.
+All times are ROS time (``use_sim_time`` works).
+
+Parameters (read-only unless noted):
+  reference_file      CSV / YAML / rosbag2 path (required)
+  bag_topic           topic to read when reference_file is a bag
+  joint_names         expected joints and their order (default: the file's)
+  limits_file         joint limits YAML or URDF (required; feasibility and waypoint timing)
+  horizon             points per window (default 10)
+  decision_period     spacing of window points and publish period [s] (default 0.05)
+  speed_override      time-scaling factor in [0.05, 1] (default 1.0; settable at runtime)
+  override_ramp_time  duration of each override ramp [s] (default 1.0)
+  end_mode            'hold' or 'loop' (default 'hold'; loop uses a periodic spline)
+  start_mode          'service' (wait for ~/start) or 'immediate' (default 'service')
+  slow_down           slow an infeasible reference down instead of refusing it (default false)
+  limit_fraction      fraction of the limits used by waypoint timing and by the slow-down (0.8)
+  max_gap             largest allowed time between file samples [s]; 0 disables (default 1.0)
+"""
+from __future__ import annotations
+
+import math
+import sys
+from typing import Any, Callable
+
+from rcl_interfaces.msg import SetParametersResult
+from rclpy.node import Node
+from rclpy.parameter import Parameter
+from std_srvs.srv import Trigger
+from trajectory_msgs.msg import JointTrajectory
+
+from adaptive_streamer.core.feasibility import FeasibilityError, ensure_feasible
+from adaptive_streamer.core.limits import JointLimits, LimitsError
+from adaptive_streamer.core.playback import (END_MODES, Playback, PlaybackError,
+                                             validate_override)
+from adaptive_streamer.core.reference_files import ReferenceFileError, load_reference
+
+from .common import ERROR, OK, WARN, DiagnosticsReporter, declare, now_sec, reliable_qos, run_nodes
+from .trajectory_conversions import samples_to_msg, window_to_msg
+
+START_MODES = ("service", "immediate")
+
+
+class ReferenceServerError(RuntimeError):
+    """The reference server cannot start with the given parameters or files."""
+
+
+class ReferenceServer(Node):
+    """Publishes reference windows from a core `Playback`; converts only."""
+
+    def __init__(self, **kwargs: Any) -> None:
+        super().__init__("reference_server", **kwargs)
+        try:
+            self._setup()
+        except Exception:
+            self.destroy_node()
+            raise
+
+    # ------------------------------------------------------------------ startup
+    def _setup(self) -> None:
+        ro = dict(read_only=True)
+        ref_file = declare(self, "reference_file", "", "reference CSV / YAML / rosbag2 path", **ro)
+        topic = declare(self, "bag_topic", "", "topic to read when reference_file is a bag", **ro)
+        joints = declare(self, "joint_names", Parameter.Type.STRING_ARRAY,
+                         "expected joints and their order (default: the file's)", **ro)
+        limits_file = declare(self, "limits_file", "", "joint limits YAML or URDF", **ro)
+        horizon = declare(self, "horizon", 10, "points per window", **ro)
+        period = declare(self, "decision_period", 0.05, "window spacing and publish period [s]",
+                         **ro)
+        override = declare(self, "speed_override", 1.0, "time-scaling factor in [0.05, 1]")
+        ramp = declare(self, "override_ramp_time", 1.0, "duration of each override ramp [s]", **ro)
+        end_mode = declare(self, "end_mode", "hold", "'hold' or 'loop'", **ro)
+        start_mode = declare(self, "start_mode", "service", "'service' or 'immediate'", **ro)
+        slow_down = declare(self, "slow_down", False, "slow an infeasible reference down", **ro)
+        fraction = declare(self, "limit_fraction", 0.8, "fraction of limits for timing/slow-down",
+                           **ro)
+        max_gap = declare(self, "max_gap", 1.0, "largest gap between file samples [s]; 0: off",
+                          **ro)
+
+        if not ref_file:
+            raise ReferenceServerError("parameter 'reference_file' is required (CSV, YAML or "
+                                       "rosbag2 path)")
+        if not limits_file:
+            raise ReferenceServerError("parameter 'limits_file' is required (joint limits YAML "
+                                       "or URDF)")
+        if horizon < 1:
+            raise ReferenceServerError(f"parameter 'horizon': expected a positive number of "
+                                       f"points, got {horizon}")
+        for name, value in (("decision_period", period), ("override_ramp_time", ramp)):
+            if not (math.isfinite(value) and value > 0.0):
+                raise ReferenceServerError(f"parameter '{name}': expected a positive time in "
+                                           f"seconds, got {value}")
+        if end_mode not in END_MODES:
+            raise ReferenceServerError(f"parameter 'end_mode': expected one of {list(END_MODES)}, "
+                                       f"got {end_mode!r}")
+        if start_mode not in START_MODES:
+            raise ReferenceServerError(f"parameter 'start_mode': expected one of "
+                                       f"{list(START_MODES)}, got {start_mode!r}")
+        if not 0.0 < fraction <= 1.0:
+            raise ReferenceServerError(f"parameter 'limit_fraction': expected a value in (0, 1], "
+                                       f"got {fraction}")
+        if max_gap < 0.0:
+            raise ReferenceServerError(f"parameter 'max_gap': expected >= 0 (0 disables), got "
+                                       f"{max_gap}")
+        try:
+            validate_override(override)
+        except PlaybackError as exc:
+            raise ReferenceServerError(f"parameter 'speed_override': {exc}") from None
+        try:
+            limits = JointLimits.from_file(limits_file)
+        except LimitsError as exc:
+            raise ReferenceServerError(f"parameter 'limits_file': {exc}") from None
+        ends = "periodic" if end_mode == "loop" else "rest"
+        try:
+            reference = load_reference(ref_file, topic=topic or None, joints=joints or None,
+                                       limits=limits, max_gap=max_gap or None, ends=ends,
+                                       fraction=fraction)
+            reference, self.slow_down_factor, self.feasibility = ensure_feasible(
+                reference, limits, slow_down=slow_down, fraction=fraction)
+        except (ReferenceFileError, FeasibilityError) as exc:
+            raise ReferenceServerError(f"parameter 'reference_file': {exc}") from None
+        try:
+            self.playback = Playback(reference, period, horizon, end_mode=end_mode,
+                                     override=override, ramp_time=ramp)
+        except PlaybackError as exc:
+            raise ReferenceServerError(f"parameters 'end_mode' / 'reference_file': {exc}") from None
+
+        self.reference = reference
+        self._source = f"{ref_file}" + (f" ({topic})" if topic else "")
+        self._immediate = start_mode == "immediate"
+        self._msg = JointTrajectory()
+        self._published = 0
+        self._error = ""
+        self._last_state = ""
+        self._window_pub = self.create_publisher(JointTrajectory, "reference/window",
+                                                 reliable_qos(1))
+        path_pub = self.create_publisher(JointTrajectory, "reference/path",
+                                         reliable_qos(1, transient_local=True))
+        path_pub.publish(samples_to_msg(reference.resample(period), now_sec(self)))
+        self._path_pub = path_pub
+        self.create_service(Trigger, "~/start", self._service(self.playback.start))
+        self.create_service(Trigger, "~/pause", self._service(self.playback.pause))
+        self.create_service(Trigger, "~/resume", self._service(self.playback.resume))
+        self.add_on_set_parameters_callback(self._validate_params)
+        self.add_post_set_parameters_callback(self._apply_params)
+        self._diag = DiagnosticsReporter(self, "reference_server", values=self._diag_values)
+        self.create_timer(period, self._tick)
+        note = (f"; slowed down {self.slow_down_factor:.4g}x to fit the limits"
+                if self.slow_down_factor > 1.0 else "")
+        self.get_logger().info(
+            f"reference {self._source}: {len(reference.names)} joints, "
+            f"{reference.duration:.3f} s, {self.feasibility.summary()}{note}")
+
+    # ------------------------------------------------------------------ callbacks
+    def _tick(self) -> None:
+        try:
+            t = now_sec(self)
+            if self._immediate and self.playback.state == "waiting":
+                self.playback.start(t)
+            window_to_msg(self.playback.window(t), self._msg)
+            self._window_pub.publish(self._msg)
+            self._published += 1
+            self._error = ""
+            self._update_status()
+        except Exception as exc:  # never let a timer callback raise
+            self._error = f"window not published: {exc}"
+            self._last_state = ""
+            self._diag.set(ERROR, self._error)
+            self.get_logger().error(self._error, throttle_duration_sec=5.0)
+
+    def _update_status(self) -> None:
+        state = self.playback.state
+        if state == self._last_state:
+            return
+        self._last_state = state
+        level = WARN if self.slow_down_factor > 1.0 else OK
+        note = f" (slowed down {self.slow_down_factor:.4g}x)" if self.slow_down_factor > 1.0 else ""
+        self._diag.set(level, state + note)
+
+    def _service(self, request: Callable[[float], str]) -> Callable[[Any, Any], Any]:
+        def handle(req: Trigger.Request, resp: Trigger.Response) -> Trigger.Response:
+            try:
+                resp.message = request(now_sec(self))
+                resp.success = True
+            except PlaybackError as exc:
+                resp.success, resp.message = False, str(exc)
+            except Exception as exc:  # never let a service callback raise
+                resp.success, resp.message = False, f"internal error: {exc}"
+            self.get_logger().info(f"{request.__name__}: {resp.message}")
+            return resp
+        return handle
+
+    def _validate_params(self, params: list[Parameter]) -> SetParametersResult:
+        for p in params:
+            if p.name == "speed_override":
+                try:
+                    validate_override(p.value)
+                except PlaybackError as exc:
+                    return SetParametersResult(successful=False, reason=str(exc))
+        return SetParametersResult(successful=True)
+
+    def _apply_params(self, params: list[Parameter]) -> None:
+        for p in params:
+            if p.name == "speed_override":
+                try:
+                    self.get_logger().info(self.playback.set_override(p.value, now_sec(self)))
+                except Exception as exc:  # never let a parameter callback raise
+                    self.get_logger().error(f"speed_override {p.value} not applied: {exc}")
+
+    def _diag_values(self) -> list[tuple[str, Any]]:
+        st = self.playback.status()
+        fz = self.feasibility
+        return [
+            ("state", st.state),
+            ("progress", st.progress),
+            ("reference_time", st.reference_time),
+            ("duration", st.duration),
+            ("laps", st.laps),
+            ("speed_override", st.override_target),
+            ("override_now", st.override),
+            ("windows_published", self._published),
+            ("source", self._source),
+            ("slow_down_factor", self.slow_down_factor),
+            ("peak_velocity_ratio", float(fz.velocity_ratio.max())),
+            ("peak_acceleration_ratio", float(fz.acceleration_ratio.max())),
+            ("peak_jerk_ratio", float(fz.jerk_ratio.max())),
+            ("last_error", self._error or "none"),
+        ]
+
+
+def main(args: list[str] | None = None) -> int:
+    """Run the reference server until Ctrl-C; a bad setup prints one error line, exit 1."""
+    return run_nodes([ReferenceServer], args=args)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
