@@ -251,8 +251,9 @@ def load_bag(path: str | Path, topic: str, *, joints: Sequence[str] | None = Non
 def _decode(typestore: Any, raw: bytes, msgtype: str) -> Any:
     """CDR bytes -> message, accepting up to 7 bytes of final padding.
 
-    Fast CDR (used by rclpy/rmw_fastrtps, e.g. ``rclpy.serialization.serialize_message``)
-    pads a message to an 8-byte boundary, where rosbags' size check allows only 3 bytes.
+    ``rclpy.serialization.serialize_message`` (Fast CDR, Jazzy) pads a message to an 8-byte
+    boundary, where rosbags' size check allows only 3 bytes; bags written from such bytes
+    would otherwise be refused (messages taken from DDS arrive unpadded).
     Decoding reads lengths from the data, so a shorter buffer that still decodes gives the
     same message; trailing bytes are dropped only until it does.
     """
