@@ -1,0 +1,262 @@
+"""``sim_driver`` node: a simulated robot driver for the demo cell and the tests.
+
+Takes the adapter's driver output on one command topic (chosen by ``command_interface``),
+tracks it with the core plant (`adaptive_streamer.core.sim_plant`: transport delay,
+second-order lag, measurement noise, hold on command timeout) and publishes
+``joint_states`` (sensor_msgs/JointState: name, position, velocity; effort empty) at
+``rate``. All times are ROS time, so it runs under ``use_sim_time``.
+
+Command topics (relative names, remap as usual):
+
+- ``position``: ``driver/position_command``, std_msgs/Float64MultiArray, one position per
+  joint in ``joints`` order [rad];
+- ``velocity``: ``driver/velocity_command``, std_msgs/Float64MultiArray, one velocity per
+  joint [rad/s], integrated by the plant while following;
+- ``trajectory``: ``driver/trajectory_command``, trajectory_msgs/JointTrajectory with exactly
+  one point, executed on receipt (``header.stamp`` is not used): the target moves linearly
+  from where it is to the point's positions (matched to ``joints`` by ``joint_names``) over
+  the point's ``time_from_start`` (0: at once); velocities/accelerations are not used.
+
+A malformed command (wrong length, unknown or missing joints, non-finite values, not one
+point) is dropped, counted and logged. Ticks lie on a grid ``t0 + k / rate`` anchored at
+the first timer call; a late timer call steps every tick it owes (catch-up), a clock jump of
+more than ``MAX_LAG_S`` forward or any jump back re-anchors the grid (and, back, forgets the
+last command, so the plant holds). ``joint_states`` is stamped with the tick time.
+
+Parameters (read-only):
+  joints              joint names (default j1..j6)
+  initial_positions   start positions [rad], one per joint (default all 0)
+  rate                tick and publish rate [Hz] (default 250)
+  command_interface   position | velocity | trajectory (default position)
+  command_timeout     hold when the latest command is older than this [s] (default 0.1)
+  delay_ticks         transport delay [ticks] (default 2)
+  natural_frequency   lag natural frequency wn [rad/s] (default 60)
+  damping             lag damping ratio zeta (default 0.7)
+  position_noise      measured-position noise std [rad] (default 2e-5)
+  velocity_noise      measured-velocity noise std [rad/s] (default 2e-3)
+  seed                noise seed (default 0)
+  command_qos         reliable | best_effort | sensor_data (default reliable)
+  joint_states_qos    reliable | best_effort | sensor_data (default reliable)
+
+Diagnostics (``/diagnostics``, about 1 Hz, name ``sim_driver``): state (following /
+holding), commands received and rejected, timeouts, ticks, catch-up ticks, clock re-anchors.
+"""
+from __future__ import annotations
+
+import math
+from typing import Any, Iterable
+
+from rclpy.node import Node
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Float64MultiArray
+from trajectory_msgs.msg import JointTrajectory
+
+from adaptive_streamer.core.sim_plant import PlantConfig, PlantError, SimPlant
+
+from .common import OK, WARN, DiagnosticsReporter, declare, qos_by_name, run_nodes
+
+DEFAULT_JOINTS = ["j1", "j2", "j3", "j4", "j5", "j6"]
+TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",
+          "trajectory": "driver/trajectory_command"}
+MAX_LAG_S = 0.5          # behind the clock by more than this: re-anchor instead of catching up
+_LOG_THROTTLE_S = 5.0
+
+
+class SimDriverError(ValueError):
+    """The sim_driver parameters are missing, mistyped or out of range."""
+
+
+def _number(node: Node, name: str, default: float, description: str) -> float:
+    value = declare(node, name, default, description, read_only=True, dynamic_typing=True)
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise SimDriverError(f"parameter '{name}': expected a finite number, got {value!r}")
+    return float(value)
+
+
+def _integer(node: Node, name: str, default: int, description: str) -> int:
+    value = declare(node, name, default, description, read_only=True, dynamic_typing=True)
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise SimDriverError(f"parameter '{name}': expected an integer, got {value!r}")
+    return value
+
+
+def _strings(node: Node, name: str, default: list[str], description: str) -> list[str]:
+    value = declare(node, name, default, description, read_only=True, dynamic_typing=True)
+    if not isinstance(value, (list, tuple)) or not value \
+            or not all(isinstance(v, str) and v for v in value):
+        raise SimDriverError(f"parameter '{name}': expected a non-empty list of names, "
+                             f"got {value!r}")
+    if len(set(value)) != len(value):
+        raise SimDriverError(f"parameter '{name}': names must be unique, got {list(value)}")
+    return list(value)
+
+
+def _numbers(node: Node, name: str, count: int, description: str) -> list[float]:
+    value = declare(node, name, [0.0] * count, description, read_only=True,
+                    dynamic_typing=True)
+    if not isinstance(value, (list, tuple)) or len(value) != count \
+            or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
+                       and math.isfinite(v) for v in value):
+        raise SimDriverError(f"parameter '{name}': expected {count} finite numbers (one per "
+                             f"joint), got {value!r}")
+    return [float(v) for v in value]
+
+
+class SimDriver(Node):
+    """Steps a `SimPlant` on a timer and publishes its measured state as ``joint_states``."""
+
+    def __init__(self, **kwargs: Any) -> None:
+        super().__init__("sim_driver", **kwargs)
+        try:
+            self._setup()
+        except Exception:
+            self.destroy_node()
+            raise
+
+    def _setup(self) -> None:
+        self._joints = _strings(self, "joints", DEFAULT_JOINTS, "joint names")
+        n = len(self._joints)
+        q0 = _numbers(self, "initial_positions", n, "start positions [rad]")
+        rate = _number(self, "rate", 250.0, "tick and publish rate [Hz]")
+        if rate <= 0:
+            raise SimDriverError(f"parameter 'rate': must be > 0 Hz, got {rate:g}")
+        interface = declare(self, "command_interface", "position",
+                            "position | velocity | trajectory", read_only=True,
+                            dynamic_typing=True)
+        if interface not in TOPICS:
+            raise SimDriverError(f"parameter 'command_interface': expected one of "
+                                 f"{', '.join(TOPICS)}, got {interface!r}")
+        try:
+            config = PlantConfig(
+                dt=1.0 / rate,
+                natural_frequency=_number(self, "natural_frequency", 60.0, "lag wn [rad/s]"),
+                damping=_number(self, "damping", 0.7, "lag damping ratio"),
+                delay_ticks=_integer(self, "delay_ticks", 2, "transport delay [ticks]"),
+                command_timeout=_number(self, "command_timeout", 0.1,
+                                        "hold when the latest command is older [s]"),
+                position_noise=_number(self, "position_noise", 2e-5, "position noise [rad]"),
+                velocity_noise=_number(self, "velocity_noise", 2e-3, "velocity noise [rad/s]"),
+                interface="velocity" if interface == "velocity" else "position")
+            self.plant = SimPlant(config, q0, seed=_integer(self, "seed", 0, "noise seed"))
+        except PlantError as exc:
+            raise SimDriverError(f"sim_driver parameters: {exc}") from None
+        qos = {}
+        for name in ("command_qos", "joint_states_qos"):
+            value = declare(self, name, "reliable", "reliable | best_effort | sensor_data",
+                            read_only=True, dynamic_typing=True)
+            try:
+                qos[name] = qos_by_name(str(value), depth=10)
+            except ValueError as exc:
+                raise SimDriverError(f"parameter '{name}': {exc}") from None
+        self._interface = interface
+        self._period_ns = int(round(1e9 / rate))
+        self._t0_ns: int | None = None
+        self._ticks = 0
+        self.rejected = 0
+        self.catch_up_ticks = 0
+        self.reanchors = 0
+        self._pub = self.create_publisher(JointState, "joint_states", qos["joint_states_qos"])
+        msg_type = JointTrajectory if interface == "trajectory" else Float64MultiArray
+        sub = self.create_subscription(msg_type, TOPICS[interface], self._on_command,
+                                       qos["command_qos"])
+        self._topic = sub.topic_name
+        self.create_timer(self._period_ns * 1e-9, self._on_tick)
+        self._diag = DiagnosticsReporter(self, "sim_driver", values=self._diag_values)
+        self._update_status()
+        self.get_logger().info(f"simulating {n} joints at {rate:g} Hz, {interface} commands on "
+                               f"{self._topic}")
+
+    # ------------------------------------------------------------------ commands
+    def _on_command(self, msg: Any) -> None:
+        now = self.get_clock().now().nanoseconds * 1e-9
+        try:
+            if self._interface == "trajectory":
+                values = self._trajectory_positions(msg)
+                tfs = msg.points[0].time_from_start
+                self.plant.command(values, now, reach_in=tfs.sec + tfs.nanosec * 1e-9)
+            else:
+                self.plant.command(list(msg.data), now)
+        except (PlantError, SimDriverError) as exc:
+            self.rejected += 1
+            self.get_logger().warning(f"{self._topic}: dropped a command: {exc}",
+                                      throttle_duration_sec=_LOG_THROTTLE_S)
+
+    def _trajectory_positions(self, msg: JointTrajectory) -> list[float]:
+        if len(msg.points) != 1:
+            raise SimDriverError(f"expected a trajectory with exactly one point, got "
+                                 f"{len(msg.points)}")
+        names = list(msg.joint_names)
+        if sorted(names) != sorted(self._joints) or len(set(names)) != len(names):
+            raise SimDriverError(f"joint_names {names} must be the driver's joints "
+                                 f"{self._joints} (any order)")
+        positions = list(msg.points[0].positions)
+        if len(positions) != len(names):
+            raise SimDriverError(f"the point has {len(positions)} positions for "
+                                 f"{len(names)} joint names")
+        by_name = dict(zip(names, positions))
+        return [by_name[j] for j in self._joints]
+
+    # ------------------------------------------------------------------ ticks
+    def _on_tick(self) -> None:
+        now_ns = self.get_clock().now().nanoseconds
+        if self._t0_ns is None:
+            self._anchor(now_ns)
+        owed = (now_ns - self._t0_ns + self._period_ns // 2) // self._period_ns - self._ticks
+        if owed < 0 or owed * self._period_ns > MAX_LAG_S * 1e9:
+            if owed < 0:
+                self.plant.forget_commands()
+            self.reanchors += 1
+            self.get_logger().warning(f"clock jumped by {owed * self._period_ns * 1e-9:+.3f} s; "
+                                      "re-anchoring the tick grid")
+            self._anchor(now_ns)
+            owed = 0
+        if owed > 1:
+            self.catch_up_ticks += owed - 1
+        for _ in range(int(owed)):
+            self._ticks += 1
+            self._step(self._t0_ns + self._ticks * self._period_ns)
+
+    def _anchor(self, now_ns: int) -> None:
+        """Start the tick grid at ``now`` and publish tick 0 there."""
+        self._t0_ns, self._ticks = now_ns, 0
+        self._step(now_ns)
+
+    def _step(self, t_ns: int) -> None:
+        was_following = self.plant.following
+        sample = self.plant.step(t_ns * 1e-9)
+        msg = JointState()
+        msg.header.stamp.sec, msg.header.stamp.nanosec = divmod(t_ns, 1_000_000_000)
+        msg.name = self._joints
+        msg.position = sample.position.tolist()
+        msg.velocity = sample.velocity.tolist()
+        self._pub.publish(msg)
+        if was_following != self.plant.following:
+            self._update_status()
+
+    # ------------------------------------------------------------------ diagnostics
+    def _update_status(self) -> None:
+        p = self.plant
+        if p.following:
+            self._diag.set(OK, f"following {self._interface} commands")
+        elif p.timeouts:
+            self._diag.set(WARN, f"holding: no command for more than "
+                                 f"{p.config.command_timeout:g} s ({p.timeouts} timeout(s))")
+        else:
+            self._diag.set(OK, "holding at the initial positions; waiting for commands")
+
+    def _diag_values(self) -> Iterable[tuple[str, Any]]:
+        p = self.plant
+        return [("state", "following" if p.following else "holding"),
+                ("command_interface", self._interface), ("command_topic", self._topic),
+                ("commands_received", p.commands_received), ("commands_rejected", self.rejected),
+                ("timeouts", p.timeouts), ("ticks", self._ticks),
+                ("catch_up_ticks", self.catch_up_ticks), ("clock_reanchors", self.reanchors)]
+
+
+def main(args: list[str] | None = None) -> int:
+    """Entry point of the ``sim_driver`` executable."""
+    return run_nodes([SimDriver], args)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
