@@ -19,9 +19,11 @@ Boundary limits are plain bounds; limits *inside* a segment are handled exactly 
 planes: after every solve the analytic extrema of each segment of the solution are found
 (velocity extremum where a(t) crosses zero, position extremum where v(t) crosses zero) and a
 linear constraint at exactly that instant is added where the limit is exceeded; repeat until
-no excess is left beyond a tolerance (``LEVELS``, dimensionless). Every cut is a true constraint, so the LP stays an outer
-approximation while its final solution is a (numerically) feasible trajectory: the optimum
-is the exact bound up to the reported residual (``info['max_violation']``, ``info['gap']``).
+no excess is left beyond a tolerance (``LEVELS``, dimensionless). Every cut is a true
+constraint, so the LP optimum is an outer bound, while the returned value is attained by a
+trajectory checked to have no excess (a certified inner value): the exact bound lies
+between them, ``info['gap']`` apart at most; ``info['max_violation']`` is the certifying
+trajectory's largest normalised limit violation (float rounding).
 The reference uses no project code (`to_joint_limits` only builds the project's limits object
 from the test limit sets).
 
@@ -29,7 +31,7 @@ Public API:
     ScalarLimits, LIMIT_SETS, PERIODS, to_joint_limits,
     integrate_segment, segment_extrema, segment_violations, segment_violation,
     admissible_interval, is_viable, position_boundary, velocity_boundary,
-    sample_viable_state, sample_boundary_state, OracleError
+    sample_viable_state, sample_boundary_state, jerk_box, narrowed_cases, OracleError
 """
 from __future__ import annotations
 
@@ -45,7 +47,6 @@ from scipy.optimize import linprog
 HIGHS_OPTIONS = {
     "primal_feasibility_tolerance": 1e-10,
     "dual_feasibility_tolerance": 1e-10,
-    "presolve": True,
 }
 
 
@@ -71,14 +72,16 @@ class ScalarLimits:
     def horizon_periods(self, T: float, speed: float | None = None) -> int:
         """Periods enough to come to rest from any viable state moving at ``|v| <= speed``.
 
-        A stop from (v, a) takes at most |a|/J to bring a to zero, then (|v| + a^2/(2J))/A
-        + A/J at full deceleration (constant-jerk ramps, from memory); with |a| <= A that
-        is below 2.5 A/J + |v|/A. The horizon is 1.5 times that plus 8 periods (the margin
-        is checked against horizons twice as long in test_oracle_lp). ``speed=None`` means
-        any speed up to ``vmax``.
+        The longest trajectory the LP may need brakes to a turning point right at a
+        position limit and then stops the reversal. Braking from (v, a): at most |a|/J to
+        bring a to zero, then (|v| + a^2/(2J))/A + A/J at full deceleration, below
+        2.5 A/J + |v|/A with |a| <= A (constant-jerk ramps, from memory); stopping the
+        reversal from (0, -A) takes 2.5 A/J more; |v| grows by at most A T in the first
+        period. The horizon is 1.5 times the sum plus 8 periods (checked against horizons
+        twice as long in test_oracle_lp). ``speed=None`` means any speed up to ``vmax``.
         """
         speed = self.vmax if speed is None else min(abs(speed), self.vmax)
-        t_stop = 2.5 * self.amax / self.jmax + speed / self.amax
+        t_stop = 5.0 * self.amax / self.jmax + speed / self.amax + T
         return int(math.ceil(1.5 * t_stop / T)) + 8
 
 
@@ -199,12 +202,11 @@ class _Horizon:
     jerk bound is 1 and a period lasts 1); positions are taken relative to ``origin``. In
     these units HiGHS's absolute tolerances are far below the physical resolution needed.
     Unknowns: a_0..a_N, v_0..v_N, q_0..q_N (boundary values) and s_0..s_N >= |v_k| (used
-    only by the tie-break objective of `_optimise`). Every segment starts with velocity and
-    position rows at the sample instants ``samples`` (fractions of a period).
+    only by the tie-break objective of `_optimise`). Limits inside segments come only from
+    cuts (pre-set rows at sample instants were tried: they did not save rounds).
     """
 
-    def __init__(self, T: float, lim: ScalarLimits, n_periods: int, origin: float,
-                 samples: tuple[float, ...] = (0.5,)) -> None:
+    def __init__(self, T: float, lim: ScalarLimits, n_periods: int, origin: float) -> None:
         self.T, self.lim, self.N, self.origin = T, lim, n_periods, origin
         self.ua, self.uv, self.uq = lim.jmax * T, lim.jmax * T ** 2, lim.jmax * T ** 3
         self.A, self.V = lim.amax / self.ua, lim.vmax / self.uv
@@ -214,7 +216,8 @@ class _Horizon:
         k = np.arange(N)
         ia, iv, iq = self.ia, self.iv, self.iq
         one = np.ones(N)
-        # dynamics: v_{k+1} - v_k - (a_k + a_{k+1})/2 = 0 ;  q_{k+1} - q_k - v_k - a_k/3 - a_{k+1}/6 = 0
+        # dynamics: v_{k+1} - v_k - (a_k + a_{k+1})/2 = 0
+        #           q_{k+1} - q_k - v_k - a_k/3 - a_{k+1}/6 = 0
         rows = np.concatenate([np.repeat(k, 4), np.repeat(N + k, 5)])
         cols = np.concatenate([
             np.stack([iv(k + 1), iv(k), ia(k), ia(k + 1)], 1).ravel(),
@@ -224,20 +227,15 @@ class _Horizon:
             np.stack([one, -one, -one, -one / 3, -one / 6], 1).ravel()])
         self.A_eq = sp.csr_matrix((vals, (rows, cols)), shape=(2 * N, self.n_var))
         self.b_eq = np.zeros(2 * N)
-        # jerk: +-(a_{k+1} - a_k) <= 1, then the sample rows
+        # jerk: +-(a_{k+1} - a_k) <= 1
         self.rows: list[tuple[np.ndarray, np.ndarray, float]] = []
         for kk in range(N):
             for sign in (1.0, -1.0):
                 self.rows.append((np.array([ia(kk + 1), ia(kk)]), np.array([sign, -sign]), 1.0))
-            for s in samples:
-                self.add_cut("v", kk, s, +1.0, self.V)
-                self.add_cut("v", kk, s, -1.0, -self.V)
-                if lim.has_position:
-                    self.add_cut("q", kk, s, +1.0, self.qmax)
-                    self.add_cut("q", kk, s, -1.0, self.qmin)
         for kk in range(N + 1):  # s_k >= +-v_k
             for sign in (1.0, -1.0):
-                self.rows.append((np.array([self.iv(kk), self.i_s(kk)]), np.array([sign, -1.0]), 0.0))
+                self.rows.append((np.array([self.iv(kk), self.i_s(kk)]),
+                                  np.array([sign, -1.0]), 0.0))
         self.n_base = len(self.rows)
 
     def ia(self, k: Any) -> Any:
@@ -283,15 +281,23 @@ class _Horizon:
             vals = np.array([1.0, t, t * t / 2 - t ** 3 / 6, t ** 3 / 6])
         self.rows.append((cols, sign * vals, sign * limit))
 
-    def solve(self, objective: np.ndarray, bounds: list) -> Any:
-        """One HiGHS solve with the base rows and the current cuts."""
+    def solve(self, objective: np.ndarray, bounds: list, presolve: bool = True) -> Any:
+        """One HiGHS solve with the base rows and the current cuts.
+
+        A solve that ends in numerical trouble (status 4) is repeated without presolve.
+        """
         rows = np.concatenate([np.full(len(c), i) for i, (c, _, _) in enumerate(self.rows)])
         cols = np.concatenate([c for c, _, _ in self.rows])
         vals = np.concatenate([v for _, v, _ in self.rows])
         A_ub = sp.csr_matrix((vals, (rows, cols)), shape=(len(self.rows), self.n_var))
         b_ub = np.array([b for _, _, b in self.rows])
-        return linprog(objective, A_ub=A_ub, b_ub=b_ub, A_eq=self.A_eq, b_eq=self.b_eq,
-                       bounds=bounds, method="highs", options=HIGHS_OPTIONS)
+        for attempt in (presolve, False):
+            res = linprog(objective, A_ub=A_ub, b_ub=b_ub, A_eq=self.A_eq, b_eq=self.b_eq,
+                          bounds=bounds, method="highs",
+                          options={**HIGHS_OPTIONS, "presolve": attempt})
+            if res.status != 4:
+                break
+        return res
 
     def trajectory(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Boundary (q, v, a) re-integrated exactly from the solution's a_k and v_0, q_0."""
@@ -313,8 +319,9 @@ class _Horizon:
 #: (in-segment excess left uncut, certificate slack) in the LP's dimensionless units (see
 #: `_Horizon`; the slack is relative to max(1, |optimum|)), finest first; see `_optimise`.
 LEVELS = ((1e-11, 1e-12), (1e-10, 1e-11), (1e-9, 1e-10))
-#: Factors by which a certificate band is widened when HiGHS fails on the thin one.
-BAND_WIDENING = (1.0, 1e2, 1e4)
+#: Tie-break solve attempts (band widening factor, HiGHS presolve): presolve can declare a
+#: very thin band infeasible although the plain optimum lies in it; widening is the last resort.
+CALM_ATTEMPTS = ((1.0, True), (1.0, False), (1e2, False), (1e4, False))
 
 
 def _cuts(hz: _Horizon, x: np.ndarray, tol: float) -> list[tuple[str, int, float, float, float]]:
@@ -356,7 +363,8 @@ def _optimise(hz: _Horizon, column: int, sense: float, bounds: list,
     ``z_outer`` minimising sum |v_k| (a tie-break that picks a calm trajectory, braking
     early, no excursions along the limits). If that trajectory has no excess it certifies
     ``z`` (its value of the variable) as attainable: the exact optimum lies in
-    ``[z, z_outer]``, a gap of at most ``slack``. Else both solutions are cut and the round
+    ``[z, z_outer]`` (the band: ``slack``, widened only if HiGHS fails on it). Else both
+    solutions are cut and the round
     repeats. Returns ``(z, info)`` in dimensionless units, or ``None`` when the LP is
     infeasible. ``LEVELS`` lists (excess tolerance, slack), finest first; after
     ``max_iter`` rounds without certificate the next level is used; info reports it (and
@@ -383,12 +391,12 @@ def _optimise(hz: _Horizon, column: int, sense: float, bounds: list,
             if not cuts:
                 certificate = res.x
             else:
-                for widen in BAND_WIDENING:  # HiGHS can stall on a very thin band
+                for widen, presolve in CALM_ATTEMPTS:  # HiGHS can fail on a very thin band
                     held = list(bounds)
                     band = widen * slack * max(1.0, abs(z_outer))
                     held[column] = ((z_outer - band, z_outer) if sense > 0
                                     else (z_outer, z_outer + band))
-                    calm = hz.solve(c_calm, held)
+                    calm = hz.solve(c_calm, held, presolve)
                     if calm.status == 0:
                         break
                 if calm.status == 0:
@@ -396,13 +404,14 @@ def _optimise(hz: _Horizon, column: int, sense: float, bounds: list,
                     if not calm_cuts:
                         z, certificate = float(calm.x[column]), calm.x
                     cuts += calm_cuts
-            for cut in cuts if certificate is None else ():
-                hz.add_cut(*cut)
             if certificate is not None:
                 info = {"iterations": it, "cuts": len(hz.rows) - hz.n_base, "cut_tol": tol,
-                        "gap": abs(z_outer - z), "max_violation": hz.physical_violation(certificate),
+                        "gap": abs(z_outer - z),
+                        "max_violation": hz.physical_violation(certificate),
                         "last_change": abs(history[-1] - history[-2]) if len(history) > 1 else 0.0}
                 return z, info
+            for cut in cuts:
+                hz.add_cut(*cut)
     raise OracleError(f"cutting planes did not converge in {it} iterations "
                       f"(last optima {history[-3:]})")
 
@@ -418,13 +427,16 @@ def admissible_interval(p: float, v: float, a: float, T: float, lim: ScalarLimit
                         n_periods: int | None = None) -> tuple[float, float, dict] | None:
     """Exact admissible interval ``(lo, hi, info)`` of the next acceleration, or ``None``.
 
-    ``None`` means the state is not viable (the LP is infeasible: no admissible decision
-    leads to a state that can still come to rest within the limits; certified, since every
-    constraint of the LP is a true constraint). ``info`` holds per bound (``'lo'``, ``'hi'``)
-    the cutting-plane iterations, the number of cuts, the final maximum normalised violation
-    of the solution trajectory (``max_violation``, as `segment_violations`) and the change of
-    the optimum in the last iteration (``last_change``, rad/s^2); plus the overall maxima and
-    the horizon used (periods). Positions are handled relative to ``p``.
+    ``lo``/``hi`` are attained by checked trajectories; the exact bounds lie at most
+    ``info['gap']`` (rad/s^2) further out. ``None`` means the state is not viable (the LP
+    is infeasible: no admissible decision leads to a state that can still come to rest
+    within the limits; certified, since every constraint of the LP is a true constraint).
+    ``info`` holds per bound (``'lo'``, ``'hi'``) the cutting-plane rounds
+    (``iterations``), the number of cuts, the excess tolerance used (``cut_tol``), the
+    ``gap``, the certifying trajectory's largest normalised violation (``max_violation``,
+    as `segment_violations`) and the change of the optimum in the last round
+    (``last_change``, rad/s^2); plus the overall maxima and the horizon used (periods).
+    Positions are handled relative to ``p``.
     """
     if not _initial_ok(p, v, a, lim):
         return None
@@ -504,12 +516,13 @@ def sample_boundary_state(rng: np.random.Generator, T: float, lim: ScalarLimits,
                           max_tries: int = 50) -> tuple[float, float, float]:
     """A viable state close to the edge of the viable set, where limits narrow the interval.
 
-    ``kind``: ``'position_max'`` / ``'position_min'`` (random v, a; p found with
-    `position_boundary`, then backed off towards the centre) or ``'velocity_max'`` /
-    ``'velocity_min'`` (random p in the middle half of the range, random a; v found with
-    `velocity_boundary`, then backed off). Back-offs are log-uniform around the size that
-    moves the bound by about one jerk step ``J T`` (position ``J T^2 t_stop``, velocity
-    ``J T^2``), so the narrowing ranges from slight to almost a single point.
+    ``kind``: ``'position_max'`` / ``'position_min'`` (random v towards that side, random
+    a; p found with `position_boundary`, then backed off towards the centre) or
+    ``'velocity_max'`` / ``'velocity_min'`` (random p in the middle half of the range,
+    random a mostly towards that side; v found with `velocity_boundary`, then backed off).
+    Back-offs are log-uniform up to the size that moves the bound by about one jerk step
+    ``J T`` (position ``J T^2 t_stop``, velocity ``J T^2``), so the narrowing ranges from
+    slight to almost a single point.
     """
     side = {"position_max": 1, "position_min": -1, "velocity_max": 1, "velocity_min": -1}.get(kind)
     if side is None:
@@ -517,23 +530,52 @@ def sample_boundary_state(rng: np.random.Generator, T: float, lim: ScalarLimits,
                           f"got {kind!r}")
     t_stop = lim.vmax / lim.amax + 2.0 * lim.amax / lim.jmax
     for _ in range(max_tries):
-        a = float(lim.amax * rng.uniform(-1.0, 1.0))
         if kind.startswith("position"):
-            v = float(side * lim.vmax * rng.uniform(-0.2, 1.0))
+            a = float(lim.amax * rng.uniform(-1.0, 1.0))
+            v = float(side * lim.vmax * rng.uniform(0.0, 1.0))
             edge = position_boundary(v, a, T, lim, side)
             if edge is None:
                 continue
-            p = edge - side * 10.0 ** rng.uniform(-1.5, 0.5) * lim.jmax * T * T * t_stop
+            p = edge - side * 10.0 ** rng.uniform(-2.0, 0.0) * lim.jmax * T * T * t_stop
             if not lim.pmin <= p <= lim.pmax:
                 continue
-        else:
+        else:  # mostly accelerating towards the limit: decelerating states sit at |v| = V
+            a = float(side * lim.amax * rng.uniform(-0.3, 1.0))
             centre = 0.0 if not lim.has_position else 0.5 * (lim.pmin + lim.pmax)
             half = 0.0 if not lim.has_position else 0.25 * (lim.pmax - lim.pmin)
             p = float(centre + half * rng.uniform(-1.0, 1.0))
             edge = velocity_boundary(p, a, T, lim, side)
             if edge is None:
                 continue
-            v = edge - side * 10.0 ** rng.uniform(-2.0, 0.5) * lim.jmax * T * T
+            v = edge - side * 10.0 ** rng.uniform(-2.5, 0.0) * lim.jmax * T * T
         if is_viable(p, v, a, T, lim):
             return p, v, a
     raise OracleError(f"no viable {kind} state found in {max_tries} draws for {lim}, T={T}")
+
+
+def jerk_box(a: float, T: float, lim: ScalarLimits) -> tuple[float, float]:
+    """The plain jerk/acceleration box ``[max(-A, a - J T), min(A, a + J T)]``."""
+    return max(-lim.amax, a - lim.jmax * T), min(lim.amax, a + lim.jmax * T)
+
+
+BOUNDARY_KINDS = ("position_max", "position_min", "velocity_max", "velocity_min")
+
+
+def narrowed_cases(rng: np.random.Generator, T: float, lim: ScalarLimits, per_kind: int
+                   ) -> list[tuple[float, float, float, float, float, dict]]:
+    """Viable near-boundary states whose exact interval is narrower than the jerk box.
+
+    Draws ``per_kind`` states of each `sample_boundary_state` kind that applies (position
+    kinds only with finite limits) and keeps those whose exact interval is narrower than
+    `jerk_box` by more than 1e-6 of its width: ``(p, v, a, lo, hi, info)``.
+    """
+    kinds = BOUNDARY_KINDS if lim.has_position else BOUNDARY_KINDS[2:]
+    cases = []
+    for kind in kinds:
+        for _ in range(per_kind):
+            p, v, a = sample_boundary_state(rng, T, lim, kind)
+            lo, hi, info = admissible_interval(p, v, a, T, lim)
+            b_lo, b_hi = jerk_box(a, T, lim)
+            if hi - lo < (1.0 - 1e-6) * (b_hi - b_lo):
+                cases.append((p, v, a, lo, hi, info))
+    return cases

@@ -24,11 +24,6 @@ SHOULDER = o.LIMIT_SETS["shoulder"]
 UNLIMITED = o.LIMIT_SETS["unlimited"]
 
 
-def box(a: float, T: float, lim: o.ScalarLimits) -> tuple[float, float]:
-    """Jerk/acceleration box of the next acceleration."""
-    return max(-lim.amax, a - lim.jmax * T), min(lim.amax, a + lim.jmax * T)
-
-
 def seed(*parts: object) -> int:
     """Deterministic seed from the test parameters."""
     return zlib.crc32(repr(parts).encode())
@@ -165,7 +160,7 @@ def test_velocity_limit_matches_closed_form(name, T):
         edge = o.velocity_boundary(0.0, a, T, free, +1)
         v = edge - float(10 ** rng.uniform(-3, -0.5)) * lim.jmax * T * T
         lo, hi, info = o.admissible_interval(0.0, v, a, T, free)
-        b = box(a, T, free)
+        b = o.jerk_box(a, T, free)
         expected = hi_velocity_closed_form(v, a, T, free)
         narrowed += expected < b[1]
         assert hi == pytest.approx(expected, abs=1e-10 * (b[1] - b[0]) + info["gap"])
@@ -244,7 +239,7 @@ def test_bounds_are_tight_one_step_ahead(name, T, kind):
     rng = np.random.default_rng(seed('tight', name, T, kind))
     p, v, a = o.sample_boundary_state(rng, T, lim, kind)
     lo, hi, _ = o.admissible_interval(p, v, a, T, lim)
-    b = box(a, T, lim)
+    b = o.jerk_box(a, T, lim)
     delta = 1e-6 * (b[1] - b[0])
     args = (T, lim.pmin, lim.pmax, lim.vmax, lim.amax, lim.jmax)
 
@@ -260,18 +255,24 @@ def test_bounds_are_tight_one_step_ahead(name, T, kind):
 @pytest.mark.parametrize("name,T", [("shoulder", 0.008), ("asymmetric", 0.02), ("stiff", 0.05),
                                     ("unlimited", 0.008)])
 def test_horizon_is_long_enough(name, T):
-    # results must not change on a horizon twice as long (the default covers the slowest stop)
+    # results must not change on a horizon twice as long (the default covers the slowest
+    # stop, including a turn-around at a position limit). Cases: near-edge states of every
+    # kind, and states accelerating hard towards a position limit (the longest trajectories)
     lim = o.LIMIT_SETS[name]
     rng = np.random.default_rng(seed("horizon", name, T))
-    kinds = ("position_max", "position_min", "velocity_min") if lim.has_position else (
-        "velocity_max", "velocity_min")
-    for kind in kinds:
-        p, v, a = o.sample_boundary_state(rng, T, lim, kind)
+    states = [c[:3] for c in o.narrowed_cases(rng, T, lim, per_kind=1)]
+    if lim.has_position:
+        t_stop = lim.vmax / lim.amax + 2.0 * lim.amax / lim.jmax
+        for side in (+1, -1):
+            v, a = side * 0.1 * lim.vmax, side * 0.99 * lim.amax
+            edge = o.position_boundary(v, a, T, lim, side)
+            states.append((edge - side * 0.05 * lim.jmax * T * T * t_stop, v, a))
+    for p, v, a in states:
         ref = o.admissible_interval(p, v, a, T, lim)
         alt = o.admissible_interval(p, v, a, T, lim, n_periods=2 * ref[2]["horizon"])
         tol = 1e-10 + ref[2]["gap"] + alt[2]["gap"]
-        assert alt[0] == pytest.approx(ref[0], abs=tol)
-        assert alt[1] == pytest.approx(ref[1], abs=tol)
+        assert alt[0] == pytest.approx(ref[0], abs=tol), (p, v, a)
+        assert alt[1] == pytest.approx(ref[1], abs=tol), (p, v, a)
 
 
 @pytest.mark.parametrize("name", ["shoulder", "asymmetric", "stiff"])
@@ -290,7 +291,7 @@ def test_position_bound_against_the_continuous_lowest_peak(name, T):
         p1, v1, a1 = (float(x) for x in o.integrate_segment(p, v, a, hi, T))
         margin = lim.pmax - lowest_peak(p1, v1, a1, lim)
         assert margin >= -1e-12
-        if hi < box(a, T, lim)[1] - 1e-9:
+        if hi < o.jerk_box(a, T, lim)[1] - 1e-9:
             t_stop = lim.amax / lim.jmax + lim.vmax / lim.amax
             assert margin <= lim.jmax * T * T * t_stop
         margins.append(margin)
@@ -310,7 +311,7 @@ def test_reference_error_and_speed_report():
             t0 = time.perf_counter()
             lo, hi, info = o.admissible_interval(p, v, a, T, lim)
             dt = time.perf_counter() - t0
-            b = box(a, T, lim)
+            b = o.jerk_box(a, T, lim)
             rows.append((name, T, info["max_violation"], info["gap"] / (b[1] - b[0]),
                          info["iterations"], dt))
             assert info["max_violation"] <= 1e-12
