@@ -155,6 +155,10 @@ def test_long_pushes_against_a_position_limit(name):
         p = rng.uniform(lim.pmin, lim.pmax, n) * 0.5 + 0.25 * (lim.pmin + lim.pmax)
         v, a = np.zeros(n), np.zeros(n)
         steps = int(3.0 * (lim.pmax - lim.pmin) / lim.vmax / T) + 50
+        # deciding hi on the viability edge means the hardest braking, which reverses, so
+        # the joint cycles just below the limit: check the push reached it, not where it is
+        # at one particular step
+        highest, lowest = np.full(n, -np.inf), np.full(n, np.inf)
         for step in range(2 * steps):
             r = stage.evaluate(p, v, a)
             assert r.viable.all() and np.all(r.lo <= r.hi)
@@ -163,9 +167,12 @@ def test_long_pushes_against_a_position_limit(name):
                                         lim.jmax)
             assert viol.max() <= TOL, (name, T, step, p[viol.argmax()], v[viol.argmax()])
             p, v, a = o.integrate_segment(p, v, a, u, T)
-            if step == steps - 1:  # pressed against pmax: it got there
-                assert np.all(p > lim.pmax - 1e-3 * (lim.pmax - lim.pmin))
-        assert np.all(p < lim.pmin + 1e-3 * (lim.pmax - lim.pmin))
+            if step < steps:
+                highest = np.maximum(highest, p)
+            else:
+                lowest = np.minimum(lowest, p)
+        assert np.all(highest > lim.pmax - 1e-3 * (lim.pmax - lim.pmin))  # pressed against pmax
+        assert np.all(lowest < lim.pmin + 1e-3 * (lim.pmax - lim.pmin))   # and against pmin
 
 
 def test_stage_viability_agrees_with_the_reference():

@@ -105,14 +105,16 @@ class LimitStage:
         self._JcT2, self._8Jc = self._JcT ** 2, 8.0 * self._Jc
         self._half = np.full(2 * n, 0.5)
         self._Vtol = self._V * (1 + 1e-12)
-        self._utol = 1e-9 * self._A
+        self._utol = 1e-9 * self._A      # a state this close to the viability edge is viable
+        self._umargin = 1e-10 * self._A  # bounds are pulled in by this much (rounding)
         pmax = np.concatenate([limits.position_max, -limits.position_min])
         self._pmax = pmax
         finite = np.isfinite(pmax)
         # nothing can reach a position limit from farther away than one full stop
         far = self._V * (3 * T + 2 * self._A / self._Jc + self._V / self._A) * 1.05 + 1e-9
         self._near_from = np.where(finite, pmax - far, np.inf)
-        self._ptol = (1e-12 * (np.where(finite, np.abs(pmax), 0.0) + 1.0)).tolist()
+        self._ptol = (1e-13 * (np.where(finite, np.abs(pmax), 0.0) + 1.0)).tolist()
+        self._pmax_tol = np.where(finite, pmax + 1e-12 * (np.abs(pmax) + 1.0), np.inf)
         self._consts = list(zip(self._A.tolist(), self._Jc.tolist(),
                                 np.where(finite, pmax, np.inf).tolist()))
         self._check_range(limits)
@@ -141,6 +143,7 @@ class LimitStage:
         over = K > 0.0
         if np.count_nonzero(over):
             U = np.where(over, _segment_peak_bound(Vv, Aa, self._V, self.period), U)
+        U -= self._umargin
         np.minimum(U, box_hi, out=U)
         near = P > self._near_from
         pos_bad = None
@@ -148,8 +151,10 @@ class LimitStage:
             pos_bad = self._position_bound(P, Vv, Aa, U, box_lo, near.nonzero()[0])
         ok = U >= box_lo - self._utol
         ok &= Vv <= self._Vtol
+        ok &= P <= self._pmax_tol
         if pos_bad is not None:
             ok[pos_bad] = False
+        np.maximum(U, box_lo, out=U)  # within the tolerance of the edge: the jerk box wins
         hi = U[:n]
         lo = -U[n:]
         viable = ok[:n] & ok[n:]
@@ -186,7 +191,7 @@ class LimitStage:
         """Map an action in [-1, 1] (clipped; non-finite -> braking) onto [lo, hi]."""
         r = self.evaluate(*state)
         x = np.clip(np.asarray(action, float), -1.0, 1.0)
-        out = r.lo + 0.5 * (x + 1.0) * (r.hi - r.lo)
+        out = np.minimum(np.maximum(r.lo + 0.5 * (x + 1.0) * (r.hi - r.lo), r.lo), r.hi)
         bad = ~np.isfinite(out)
         if np.count_nonzero(bad):
             out = np.where(bad, self._braking_from(state, r), out)
@@ -244,11 +249,12 @@ class LimitStage:
         """Lower U in place where the position limit binds; returns non-viable indices."""
         T, consts, ptol = self.period, self._consts, self._ptol
         Pl, Vl, Al, Ul, Ll = P.tolist(), Vv.tolist(), Aa.tolist(), U.tolist(), box_lo.tolist()
+        margin = self._umargin.tolist()
         bad = []
         for i in idx.tolist():
             A, Jc, pmax = consts[i]
             u = Ul[i]
-            root = _position_root(Pl[i], Vl[i], Al[i], u, Ll[i], T, A, Jc, pmax, ptol[i])
+            root = _position_root(Pl[i], Vl[i], Al[i], u, Ll[i], T, A, Jc, pmax, ptol[i], margin[i])
             if root is None:
                 bad.append(i)
             elif root < u:
@@ -407,42 +413,52 @@ def _exact_root(p: float, v: float, a: float, piece: tuple | None, x: float, T: 
 
 
 def _position_root(p: float, v: float, a: float, u: float, lo: float, T: float, A: float,
-                   Jc: float, pmax: float, tol: float) -> float | None:
-    """Largest u' <= u with M(u') <= pmax (to ``tol``), or None when even ``lo`` is too high.
+                   Jc: float, pmax: float, ptol: float, umargin: float) -> float | None:
+    """Largest verified-feasible u' <= u with M(u') <= pmax, or None when even ``lo`` fails
+    (by more than ``ptol``, the rounding tolerance for a state on the viability edge).
 
     Exact piece roots where they apply; otherwise Newton steps from the infeasible side
-    (never past the root of a convex increasing function) bracketed by regula falsi from
-    the feasible side. Only exact roots or evaluated points are returned.
+    (never past the root of a convex increasing function), safeguarded by bisection towards a
+    known feasible point. Results are pulled in by ``umargin`` (far below any width that
+    matters) so that a successor state reached by deciding exactly the bound stays viable
+    despite rounding; a Newton result is verified before it is returned.
     """
     M, dM, piece = _highest_point(p, v, a, u, T, A, Jc)
-    g = M - pmax
-    if g <= tol:
+    if M - pmax <= 0.0:
         return u
-    x_i, g_i, x_f, g_f = u, g, None, 0.0
+    r = _exact_root(p, v, a, piece, u, T, A, Jc, pmax)
+    if r is not None:
+        return r - umargin
+    x_i, g_i, d_i = u, M - pmax, dM
+    x_f: float | None = None
+    step_tol = 1e-13 * (abs(u) + A)
     for _ in range(_MAX_ITER):
-        r = _exact_root(p, v, a, piece, x_i if x_f is None or g > 0.0 else x_f, T, A, Jc, pmax)
-        if r is not None:
-            return r if r >= lo else None
-        r = x_i - g_i / dM if dM > 0.0 else x_i
-        if x_f is None and r <= lo:
-            M, _, piece = _highest_point(p, v, a, lo, T, A, Jc)
-            g = M - pmax
-            if g > tol:
+        x = x_i - g_i / d_i if d_i > 0.0 else -math.inf
+        if x_f is None and x <= lo:
+            M, _, _ = _highest_point(p, v, a, lo, T, A, Jc)
+            if M - pmax > ptol:
                 return None
-            if g >= -tol:
-                return lo
-            x_f, g_f = lo, g
-            continue
-        if x_f is not None and not x_f < r < x_i:
-            r = x_f - g_f * (x_i - x_f) / (g_i - g_f)
-        M, dMr, piece = _highest_point(p, v, a, r, T, A, Jc)
+            x_f = lo
+        if x_f is not None and not x_f < x < x_i:
+            x = 0.5 * (x_f + x_i)
+        if x_i - x <= step_tol:  # converged from the infeasible side: step back and verify
+            x = x_i - umargin
+            if x_f is not None and x <= x_f:
+                return x_f
+        M, dM, piece = _highest_point(p, v, a, x, T, A, Jc)
         g = M - pmax
-        if abs(g) <= tol:
-            return r
-        if g > 0.0:
-            x_i, g_i, dM = r, g, dMr
+        if g <= 0.0:  # strictly feasible: a decision never relies on the state tolerance
+            if x_i - x <= umargin * 1.000001:
+                return x
+            r = _exact_root(p, v, a, piece, x, T, A, Jc, pmax)
+            if r is not None and x <= r - umargin:
+                return r - umargin
+            x_f = x
         else:
-            x_f, g_f = r, g
-        if x_f is not None and x_i - x_f <= 1e-13 * (abs(x_f) + A):
+            r = _exact_root(p, v, a, piece, x, T, A, Jc, pmax)
+            if r is not None:
+                return r - umargin
+            x_i, g_i, d_i = x, g, dM
+        if x_f is not None and x_i - x_f <= step_tol:
             return x_f
     return x_f
