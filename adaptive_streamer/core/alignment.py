@@ -1,6 +1,7 @@
 """Reference alignment: the reference window evaluated at the adapter's own decision times.
 
-A window holds H points at absolute times ``stamp + time_from_start`` with positions,
+A window (`adaptive_streamer.core.playback.Window`) holds H points at absolute times
+``stamp + times`` with positions,
 velocities and accelerations on the real timeline (speed override already applied). The
 adapter's decision instants rarely coincide with them, so each query time is interpolated
 between the two bracketing points by quintic Hermite interpolation, which matches position,
@@ -11,45 +12,39 @@ runs out).
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
+
+from .playback import Window
 
 
 class AlignmentError(ValueError):
     """A reference window is malformed."""
 
 
-@dataclass(frozen=True)
-class ReferenceWindow:
-    """A received reference window (arrays: times (H,), others (H, n))."""
+def validate_window(window: Window) -> None:
+    """Raise `AlignmentError` unless ``window`` is well formed (shapes, finite, increasing)."""
+    times = np.asarray(window.times)
+    H = times.shape[0] if times.ndim == 1 else 0
+    if H < 1:
+        raise AlignmentError("reference window has no points")
+    for name in ("positions", "velocities", "accelerations"):
+        arr = getattr(window, name)
+        if arr.ndim != 2 or arr.shape[0] != H:
+            raise AlignmentError(f"reference window {name}: expected shape ({H}, n), got {arr.shape}")
+    if not (math.isfinite(window.stamp) and np.all(np.isfinite(times))
+            and np.all(np.isfinite(window.positions)) and np.all(np.isfinite(window.velocities))
+            and np.all(np.isfinite(window.accelerations))):
+        raise AlignmentError("reference window holds NaN or infinite values")
+    if H > 1 and np.any(np.diff(times) <= 0.0):
+        raise AlignmentError("reference window times are not strictly increasing")
 
-    stamp: float
-    times: np.ndarray
-    positions: np.ndarray
-    velocities: np.ndarray
-    accelerations: np.ndarray
 
-    def __post_init__(self) -> None:
-        H = self.times.shape[0] if self.times.ndim == 1 else -1
-        if H < 1:
-            raise AlignmentError("reference window has no points")
-        for name in ("positions", "velocities", "accelerations"):
-            arr = getattr(self, name)
-            if arr.ndim != 2 or arr.shape[0] != H:
-                raise AlignmentError(f"reference window {name}: expected shape ({H}, n), "
-                                     f"got {arr.shape}")
-        if not (np.all(np.isfinite(self.times)) and np.all(np.isfinite(self.positions))
-                and np.all(np.isfinite(self.velocities))
-                and np.all(np.isfinite(self.accelerations))):
-            raise AlignmentError("reference window holds NaN or infinite values")
-        if H > 1 and np.any(np.diff(self.times) <= 0.0):
-            raise AlignmentError("reference window times are not strictly increasing")
-
-    @property
-    def end(self) -> float:
-        """Time of the last point."""
-        return float(self.times[-1])
+def window_end(window: Window) -> float:
+    """Absolute time of the window's last point."""
+    return float(window.stamp + window.times[-1])
 
 
 @dataclass(frozen=True)
@@ -61,9 +56,9 @@ class AlignedReference:
     accelerations: np.ndarray
 
 
-def align(window: ReferenceWindow, query: np.ndarray) -> AlignedReference:
+def align(window: Window, query: np.ndarray) -> AlignedReference:
     """Evaluate ``window`` at the absolute times ``query`` (shape (H,))."""
-    t = window.times
+    t = window.stamp + window.times
     P, V, A = window.positions, window.velocities, window.accelerations
     if t.shape[0] == 1:
         shape = (query.shape[0], P.shape[1])

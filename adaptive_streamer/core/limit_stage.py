@@ -42,7 +42,6 @@ recovery: the strongest braking decision towards the violated side, flagged ``vi
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 
 import numpy as np
 
@@ -56,20 +55,31 @@ class LimitStageError(ValueError):
     """The limits and period cannot be handled safely, or inputs are malformed."""
 
 
-@dataclass(frozen=True)
 class Admissible:
     """Result of `LimitStage.evaluate` (arrays of shape (n,)).
 
     ``lo``/``hi`` bound the admissible next acceleration; ``viable`` is False where the state
     cannot be kept within the limits, and there ``lo = hi = recovery`` (strongest braking
     towards the violated side). Where viable, ``recovery`` is the strongest braking decision
-    inside [lo, hi] in the direction of motion.
+    inside [lo, hi] in the direction of motion (computed on first use).
     """
 
-    lo: np.ndarray
-    hi: np.ndarray
-    viable: np.ndarray
-    recovery: np.ndarray
+    __slots__ = ("lo", "hi", "viable", "_recovery", "_velocity")
+
+    def __init__(self, lo: np.ndarray, hi: np.ndarray, viable: np.ndarray,
+                 recovery: np.ndarray | None = None, velocity: np.ndarray | None = None) -> None:
+        self.lo, self.hi, self.viable = lo, hi, viable
+        self._recovery, self._velocity = recovery, velocity
+
+    @property
+    def recovery(self) -> np.ndarray:
+        """Strongest braking decision (see the class docstring)."""
+        if self._recovery is None:
+            self._recovery = np.where(self._velocity > 0.0, self.lo, self.hi)
+        return self._recovery
+
+    def __repr__(self) -> str:
+        return f"Admissible(lo={self.lo}, hi={self.hi}, viable={self.viable})"
 
 
 class LimitStage:
@@ -102,11 +112,13 @@ class LimitStage:
         self._V, self._A, self._Jc = two(V), two(A_eff), two(Jc)
         self._negA, self._JT, self._halfT = -self._A, two(J) * T, np.full(2 * n, 0.5 * T)
         self._JcT = self._Jc * T
+        self._JcT_margin = self._JcT + 2e-10 * self._A
         self._JcT2, self._8Jc = self._JcT ** 2, 8.0 * self._Jc
         self._half = np.full(2 * n, 0.5)
         self._Vtol = self._V * (1 + 1e-12)
         self._utol = 1e-9 * self._A      # a state this close to the viability edge is viable
         self._umargin = 1e-10 * self._A  # bounds are pulled in by this much (rounding)
+        self._zero = np.zeros(2 * n)
         pmax = np.concatenate([limits.position_max, -limits.position_min])
         self._pmax = pmax
         finite = np.isfinite(pmax)
@@ -136,20 +148,20 @@ class LimitStage:
         # velocity: K = end velocity for u = 0 minus V; K <= 0 -> root of v1 + u^2/(2 Jc) = V
         K = Vv + self._halfT * Aa - self._V
         U = self._JcT2 - self._8Jc * K
-        np.maximum(U, 0.0, out=U)  # K > 0 entries are replaced below
+        np.maximum(U, self._zero, out=U)  # K > 0 entries are replaced below
         np.sqrt(U, out=U)
-        U -= self._JcT
+        U -= self._JcT_margin  # bounds are pulled in by the rounding margin
         U *= self._half
-        over = K > 0.0
+        over = K > self._zero
         if np.count_nonzero(over):
-            U = np.where(over, _segment_peak_bound(Vv, Aa, self._V, self.period), U)
-        U -= self._umargin
+            U = np.where(over, _segment_peak_bound(Vv, Aa, self._V, self.period)
+                         - self._umargin, U)
         np.minimum(U, box_hi, out=U)
         near = P > self._near_from
         pos_bad = None
         if np.count_nonzero(near):
             pos_bad = self._position_bound(P, Vv, Aa, U, box_lo, near.nonzero()[0])
-        ok = U >= box_lo - self._utol
+        ok = U + self._utol >= box_lo
         ok &= Vv <= self._Vtol
         ok &= P <= self._pmax_tol
         if pos_bad is not None:
@@ -165,7 +177,7 @@ class LimitStage:
                 viable = viable & (lo <= hi + self._utol[:n])
                 lo, hi = np.where(crossed, mid, lo), np.where(crossed, mid, hi)
             if np.count_nonzero(viable) == n:
-                return Admissible(lo, hi, viable, np.where(Vv[:n] > 0.0, lo, hi))
+                return Admissible(lo, hi, viable, velocity=Vv[:n])
         recovery = self._recovery(Vv[:n], Aa[:n], box_lo, ok)
         viable = viable & (lo <= hi + self._utol[:n])
         mid = 0.5 * (lo + hi)
