@@ -1,0 +1,289 @@
+"""A streaming session: the decision cycle, the committed plan, the guard and the watchdog.
+
+The adapter node (and the offline replay) drive one `StreamingSession`:
+
+* `begin(t, measured)` initialises the plan from the measured joint state and commits a
+  first holding segment;
+* `sample(t)` returns the commanded setpoint at a nominal stream time; if the next segment
+  was not committed in time (a late decision), the braking decision is committed in its
+  place and counted as an overrun;
+* `decide(now, inputs)` runs the watchdog's input checks (staleness, following error) and
+  one decision cycle, and commits the result if it is still for the current instant (the
+  shadow policy, if any, is stepped on the same inputs);
+* `stop`, `reset` and the trip list drive the latched stop.
+
+Thread-safety: `sample` (stream thread) and `decide` (decision thread) share a lock held
+only while committing or sampling, never while the policy runs.
+"""
+from __future__ import annotations
+
+import math
+import threading
+from dataclasses import dataclass
+
+import numpy as np
+
+from .cycle import CycleConfig, Decision, DecisionCycle
+from .feedback import FeatureVector
+from .guard import SetpointGuard
+from .limit_stage import LimitStage
+from .limits import JointLimits
+from .playback import Window
+from .policies.base import Policy
+from .segment import MotionState, integrate
+from .stream import CommandPlan, Segment, StreamError
+from .watchdog import InputAges, Trip, Watchdog, WatchdogConfig
+
+
+@dataclass(frozen=True)
+class SessionInputs:
+    """The latest inputs at one decision (times are ROS time [s]; None = never received)."""
+
+    window: Window | None
+    window_received: float | None
+    feedback: FeatureVector | None
+    feedback_valid_since: float | None  # last time every needed feature was valid
+    joint_positions: np.ndarray | None
+    joint_stamp: float | None           # when the measured positions were taken
+    joint_received: float | None
+
+
+@dataclass
+class ShadowStats:
+    """Agreement between the shadow policy's decisions and the commanded ones."""
+
+    decisions: int = 0
+    sum_sq_du: float = 0.0
+    max_abs_du: float = 0.0
+    stopped: int = 0
+
+    @property
+    def rms_du(self) -> float:
+        """RMS difference of the decided accelerations [rad/s^2] (NaN before any)."""
+        return math.sqrt(self.sum_sq_du / self.decisions) if self.decisions else math.nan
+
+
+def make_stages(limits: JointLimits, period: float, limit_scale: float,
+                approach_scale: float) -> tuple[LimitStage, LimitStage]:
+    """(running stage, approach stage) for ``limits`` scaled by ``limit_scale``."""
+    running = limits.scaled(limit_scale) if limit_scale < 1.0 else limits
+    return (LimitStage(running, period),
+            LimitStage(limits.scaled(limit_scale * approach_scale), period))
+
+
+class StreamingSession:
+    """Everything between the inputs and the outgoing setpoints (ROS-free).
+
+    Args:
+        limits: the hardware limits (the guard checks against these, unscaled).
+        period: decision period [s].
+        policy: the policy to follow with; ``approach`` a tracker for the approach move.
+        cycle_config, watchdog_config: settings.
+        limit_scale: runtime scale of velocity/acceleration/jerk limits in (0, 1].
+        shadow: an optional policy evaluated on the same inputs, never commanded.
+    """
+
+    def __init__(self, limits: JointLimits, period: float, policy: Policy, approach: Policy,
+                 cycle_config: CycleConfig, watchdog_config: WatchdogConfig,
+                 limit_scale: float = 1.0, shadow: Policy | None = None) -> None:
+        self.limits = limits
+        self.period = float(period)
+        self.limit_scale = float(limit_scale)
+        self.cycle_config = cycle_config
+        self.watchdog = Watchdog(watchdog_config, limits.names)
+        stage, approach_stage = make_stages(limits, period, limit_scale,
+                                            cycle_config.approach_scale)
+        self.cycle = DecisionCycle(stage, approach_stage, policy, approach, self.watchdog,
+                                   cycle_config)
+        self.plan = CommandPlan(period)
+        self.guard = SetpointGuard(limits)
+        self._lock = threading.Lock()
+        self._trips_seen = 0
+        self.late_decisions = 0
+        self.shadow_policy = shadow
+        self.shadow: DecisionCycle | None = None
+        self.shadow_plan = CommandPlan(period)
+        self.shadow_stats = ShadowStats()
+
+    # ------------------------------------------------------------------ lifecycle
+    @property
+    def mode(self) -> str:
+        """The cycle's mode."""
+        return self.cycle.mode
+
+    def begin(self, t: float, measured: MotionState) -> None:
+        """Start at time ``t`` from the measured state: hold one period, then decide."""
+        with self._lock:
+            self.plan.clear()
+            self.shadow_plan.clear()
+            self.shadow = None
+            self.guard.reset()
+            self.cycle.begin(t, measured)
+            first = self.cycle.commit_braking()
+            self.cycle.stats.overruns -= 1  # the holding segment is planned, not late
+            self.plan.commit(Segment(first.time, first.state, first.u))
+
+    def stop(self, now: float, kind: str, message: str) -> Trip:
+        """Latch a stop (external request, guard failure...); the cycle brakes to rest."""
+        trip = self.watchdog.fire(kind, now, message)
+        self.cycle.request_stop()
+        return trip
+
+    def new_trips(self) -> list[Trip]:
+        """Watchdog events since the previous call (for logging and reactions)."""
+        events = self.watchdog.events[self._trips_seen:]
+        self._trips_seen = len(self.watchdog.events)
+        return events
+
+    def reset(self, persisting: list[tuple[str, str]]) -> tuple[bool, str]:
+        """Reset the latched stop unless a cause persists or the arm is still braking."""
+        if self.cycle.mode == "stopping":
+            return False, "reset refused: still braking to rest"
+        ok, msg = self.watchdog.reset(persisting)
+        if ok:
+            self.cycle.reset()
+        return ok, msg
+
+    def swap_policy(self, policy: Policy) -> None:
+        """Follow with ``policy`` from the next decision boundary."""
+        self.cycle.swap_policy(policy)
+
+    def set_limit_scale(self, scale: float) -> None:
+        """New velocity/acceleration/jerk scale; takes effect once the plan fits it."""
+        stage, approach_stage = make_stages(self.limits, self.period, scale,
+                                            self.cycle_config.approach_scale)
+        self.limit_scale = float(scale)
+        self.cycle.set_stages(stage, approach_stage)
+
+    # ------------------------------------------------------------------ stream side
+    def sample(self, t: float) -> tuple[MotionState, str | None]:
+        """Setpoint at nominal time ``t`` and the guard's verdict (None = fine)."""
+        with self._lock:
+            while self.plan.end <= t + 1e-9:  # the next decision is late: brake instead
+                d = self.cycle.commit_braking()
+                self.plan.commit(Segment(d.time, d.state, d.u))
+                self.late_decisions += 1
+                reason = self.watchdog.overrun(True)
+                if reason is not None and not self.watchdog.tripped:
+                    self.watchdog.fire("overruns", t, reason)
+                    self.cycle.request_stop()
+            sp = self.plan.sample(t)
+        reason = self.guard.check(t, sp)
+        if reason is not None and not self.watchdog.tripped:
+            self.stop(t, "setpoint_guard", reason)
+        return sp, reason
+
+    def sample_shadow(self, t: float) -> MotionState | None:
+        """The shadow policy's setpoint at ``t`` (None when not running or not planned)."""
+        with self._lock:
+            if self.shadow is None or self.shadow_plan.empty:
+                return None
+            try:
+                return self.shadow_plan.sample(t)
+            except StreamError:
+                return None
+
+    def commanded_at(self, t: float) -> MotionState | None:
+        """What the stream commanded at time ``t`` (None outside the kept plan)."""
+        with self._lock:
+            try:
+                return self.plan.sample(t)
+            except StreamError:
+                return None
+
+    # ------------------------------------------------------------------ decision side
+    @property
+    def next_decision_time(self) -> float:
+        """Start of the segment the next decision is for."""
+        return self.cycle.t
+
+    @property
+    def points_needed(self) -> int:
+        """Reference points the running policy reads (at least 2: the deviation check)."""
+        return max(2, self.cycle.policy.card.reference_points)
+
+    def input_faults(self, now: float, inputs: SessionInputs, needs_feedback: bool
+                     ) -> list[tuple[str, str]]:
+        """(kind, reason) of every input fault present now (staleness, following error)."""
+        ages = InputAges(
+            joint_states=_age(now, inputs.joint_received),
+            feedback=_age(now, inputs.feedback_valid_since),
+            reference=_age(now, inputs.window_received),
+            reference_margin=(math.inf if inputs.window is None else
+                              float(inputs.window.stamp + inputs.window.times[-1])
+                              - (self.cycle.t + (self.points_needed - 1) * self.period)),
+            feedback_needed=needs_feedback)
+        faults = self.watchdog.stale_inputs(ages)
+        if inputs.joint_positions is not None and inputs.joint_stamp is not None:
+            cmd = self.commanded_at(inputs.joint_stamp - self.watchdog.config.command_latency)
+            if cmd is not None:
+                _, reason = self.watchdog.following(inputs.joint_positions, cmd.position)
+                if reason is not None:
+                    faults.append(("following_error", reason))
+        return faults
+
+    def decide(self, now: float, inputs: SessionInputs) -> Decision | None:
+        """Input checks and one decision cycle; returns the decision if it was committed.
+
+        Only decides when the plan ends within 1.5 periods of ``now`` (so a repeated
+        trigger never runs the plan ahead of the stream).
+        """
+        cycle = self.cycle
+        if cycle.state is None or cycle.t > now + 1.5 * self.period:
+            return None  # already decided ahead (a duplicate trigger)
+        following = cycle.mode in ("approaching", "following")
+        if following and not self.watchdog.tripped:
+            needs = bool(cycle.policy.needs_feedback) and cycle.mode == "following"
+            faults = self.input_faults(now, inputs, needs)
+            if faults:
+                kind, reason = faults[0]
+                self.stop(now, kind, reason)
+        d = cycle.decide(inputs.window, inputs.feedback)
+        with self._lock:
+            committed = cycle.commit(d, now)
+            if committed:
+                self.plan.commit(Segment(d.time, d.state, d.u))
+                self.watchdog.overrun(False)
+        if not committed:
+            return None
+        self._step_shadow(d, inputs)
+        return d
+
+    def _step_shadow(self, main: Decision, inputs: SessionInputs) -> None:
+        if self.shadow_policy is None:
+            return
+        if self.shadow is None:
+            if main.mode != "following" or main.next_mode != "following":
+                return
+            stage, approach_stage = self.cycle.stage, self.cycle.approach_stage
+            self.shadow = DecisionCycle(stage, approach_stage, self.shadow_policy,
+                                        self.cycle.approach,
+                                        Watchdog(self.watchdog.config, self.limits.names),
+                                        self.cycle_config)
+            self.shadow.begin_following(main.time, main.state)
+            self.shadow_plan.clear()
+        d = self.shadow.decide(inputs.window, inputs.feedback)
+        with self._lock:
+            if self.shadow.commit(d):
+                self.shadow_plan.commit(Segment(d.time, d.state, d.u))
+        st = self.shadow_stats
+        if d.mode == "following" and main.mode == "following":
+            du = d.u - main.u
+            st.decisions += 1
+            st.sum_sq_du += float(np.mean(du * du))
+            st.max_abs_du = max(st.max_abs_du, float(np.max(np.abs(du))))
+        if self.shadow.mode in ("stopping", "stopped"):
+            st.stopped += 1
+            self.shadow = None  # restart from the commanded plan next cycle
+
+    def planned_end(self) -> MotionState | None:
+        """Planned state at the end of the committed plan."""
+        with self._lock:
+            if self.plan.empty:
+                return None
+            seg = self.plan.segment_at(self.plan.end - 1e-9)
+            return integrate(*seg.state, seg.u, self.period)
+
+
+def _age(now: float, t: float | None) -> float:
+    return math.inf if t is None else max(0.0, now - t)

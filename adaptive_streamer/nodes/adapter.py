@@ -1,0 +1,642 @@
+"""Node ``adapter`` (lifecycle): runs the policy every decision period and streams setpoints.
+
+A thin shell around `adaptive_streamer.core.session.StreamingSession`: it converts messages,
+owns parameters, timers and services, and calls the core.
+
+Transitions (drive them with the lifecycle services, e.g. from Python with
+`adaptive_streamer.nodes.lifecycle_client`):
+
+* configure: load limits and the policy card, validate everything; refuse with a message.
+* activate: refused unless ``joint_states`` is fresh and the arm nearly still; the plan
+  starts from the measured state, holds, approaches the reference's current point with a
+  jerk-limited move at reduced limits, then follows with the policy.
+* deactivate / shutdown: a controlled stop while the stream keeps running; the managed
+  publishers are deactivated only once at rest (or after ``stop_timeout``).
+
+Threads: a multi-threaded executor; the stream timer has its own callback group (steady
+clock; ROS time under ``use_sim_time``), the decision runs in another (triggered when the
+stream enters a new segment), subscriptions and services in a third. Callbacks only store
+the latest message; every computation is in the core.
+"""
+from __future__ import annotations
+
+import math
+import os
+import sys
+import threading
+import time
+from collections import deque
+from typing import Any
+
+import numpy as np
+import rclpy
+from lifecycle_msgs.msg import State as StateMsg
+from rcl_interfaces.msg import SetParametersResult
+from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
+from rclpy.executors import SingleThreadedExecutor
+from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
+from rclpy.parameter import Parameter
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension, String
+from std_srvs.srv import Trigger
+from trajectory_msgs.msg import JointTrajectory
+
+from adaptive_streamer.core import decision_record
+from adaptive_streamer.core.cycle import CycleConfig
+from adaptive_streamer.core.feedback import FeedbackParser
+from adaptive_streamer.core.limits import JointLimits
+from adaptive_streamer.core.policies import build_policy, load_card, load_policy, policy_for_kind
+from adaptive_streamer.core.policies.base import PolicyInputs, RunningConfig
+from adaptive_streamer.core.segment import MotionState
+from adaptive_streamer.core.session import SessionInputs, StreamingSession
+from adaptive_streamer.core.stream import StreamClock
+from adaptive_streamer.core.watchdog import WatchdogConfig
+
+from . import common
+from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, stamp_to_sec
+from .driver_outputs import DriverOutput, fill_setpoint, setpoint_message
+from .stream_thread import StreamThread
+from .trajectory_conversions import TrajectoryMessageError, msg_to_window
+
+WATCHDOG_PARAMS = ("deviation_joint", "deviation_norm", "following_error", "command_latency",
+                   "joint_states_timeout", "feedback_timeout", "reference_timeout",
+                   "max_overruns", "overrun_window")
+RUNTIME_PARAMS = ("policy", "shadow_policy", "limit_scale", "policy_active")
+
+
+class AdapterNode(LifecycleNode):
+    """The adapter lifecycle node (see the module docstring)."""
+
+    def __init__(self, name: str = "adapter", **kwargs: Any) -> None:
+        super().__init__(name, **kwargs)
+        self._declare_parameters()
+        self._stream_group = MutuallyExclusiveCallbackGroup()
+        self._decide_group = MutuallyExclusiveCallbackGroup()
+        self._io_group = MutuallyExclusiveCallbackGroup()
+        self.session: StreamingSession | None = None
+        self._internal_set = threading.local()
+        self._policy_lock = threading.Lock()
+        self._latest: dict[str, Any] = {}
+        self._window_cache: tuple[Any, Any] = (None, None)
+        self._stream_timer = None
+        self._decide_gc = None
+        self._ticks: StreamClock | None = None
+        self._last_segment = -1
+        self._paused_for: object | None = None
+        self._counters = {"guard_failures": 0, "bad_joint_states": 0, "bad_windows": 0,
+                          "decision_errors": 0, "stream_errors": 0, "policy_swaps_failed": 0}
+        self._decision_times: list[float] = []
+        self._lateness: deque[float] = deque(maxlen=2000)  # tick wake-up minus nominal [s]
+        self._status = "unconfigured"
+        self.add_on_set_parameters_callback(self._on_set_parameters)
+        self._diag = common.DiagnosticsReporter(self, "adapter", values=self._diag_values)
+        self._robot_description: str | None = None
+        self.create_subscription(String, "robot_description", self._on_robot_description,
+                                 common.reliable_qos(1, transient_local=True),
+                                 callback_group=self._io_group)
+        if self.get_parameter("autostart").value:
+            self._autostart_timer = self.create_timer(0.2, self._autostart,
+                                                      callback_group=self._io_group)
+
+    # ------------------------------------------------------------------ parameters
+    def _declare_parameters(self) -> None:
+        d = declare
+        d(self, "policy", "", "path of the policy card; setting it swaps the policy")
+        d(self, "shadow_policy", "", "optional policy card evaluated alongside, never commanded")
+        d(self, "policy_active", "", "read-only: the policy card that really runs")
+        d(self, "limits_file", "", "limits YAML or URDF (empty: robot_description topic)")
+        d(self, "limits_dynamics", "", "limits YAML with acceleration/jerk beside a URDF")
+        d(self, "joints", [""], "joint order (empty: the limits file's order)")
+        d(self, "decision_period", 0.05, "decision period [s] (read at configure)")
+        d(self, "stream_rate", 250.0, "setpoint stream rate [Hz], 125-1000 (read at configure)")
+        d(self, "horizon", 10, "reference points per decision (read at configure)")
+        d(self, "limit_scale", 1.0, "scale of velocity/acceleration/jerk limits in (0, 1]")
+        d(self, "features", [""], "feedback features to read (empty: what the policy needs)")
+        d(self, "outputs", ["position"], "driver output names (see driver_outputs)")
+        d(self, "autostart", False, "configure and activate on start")
+        d(self, "activation_velocity", 0.02, "max |joint velocity| to accept activation [rad/s]")
+        d(self, "stop_timeout", 5.0, "max wait for rest on deactivate [s]")
+        d(self, "reference_pause_service", "reference_server/pause",
+          "Trigger service called (asynchronously) when the watchdog stops the arm; empty: none")
+        d(self, "joint_states_qos", "sensor_data", "QoS of the joint_states subscription")
+        d(self, "feedback_qos", "sensor_data", "QoS of the feedback subscription")
+        d(self, "stream_priority", 10, "SCHED_FIFO priority of the stream thread (0: normal)")
+        d(self, "approach_scale", 0.3, "limit scale of the approach move")
+        d(self, "approach_tolerance", 2e-3, "distance [rad] at which the policy takes over")
+        d(self, "approach_bandwidth", 4.0, "approach tracking bandwidth [rad/s]")
+        defaults = WatchdogConfig()
+        for key in WATCHDOG_PARAMS:
+            d(self, f"watchdog.{key}", getattr(defaults, key), f"watchdog threshold '{key}'")
+
+    def _param(self, name: str) -> Any:
+        return self.get_parameter(name).value
+
+    def _set_internal(self, name: str, value: Any) -> None:
+        self._internal_set.on = True
+        try:
+            self.set_parameters([Parameter(name, value=value)])
+        finally:
+            self._internal_set.on = False
+
+    def _on_set_parameters(self, params: list[Parameter]) -> SetParametersResult:
+        internal = getattr(self._internal_set, "on", False)
+        for p in params:
+            if p.name == "policy_active" and not internal:
+                return SetParametersResult(successful=False,
+                                           reason="policy_active is read-only (set 'policy')")
+            if p.name == "limit_scale":
+                x = p.value
+                if not isinstance(x, (int, float)) or not (0.0 < x <= 1.0):
+                    return SetParametersResult(successful=False,
+                                               reason=f"limit_scale must be in (0, 1], got {x!r}")
+                if self.session is not None:
+                    self.session.set_limit_scale(float(x))
+                    self.get_logger().info(f"limit_scale -> {x:g} (takes effect once the motion fits)")
+            if p.name in ("policy", "shadow_policy") and not internal:
+                path = p.value
+                if not isinstance(path, str):
+                    return SetParametersResult(successful=False, reason=f"{p.name} must be a path")
+                if path and not os.path.isfile(path):
+                    return SetParametersResult(successful=False,
+                                               reason=f"{p.name}: no such policy card file '{path}'")
+                if p.name == "policy" and not path and self.session is not None:
+                    return SetParametersResult(successful=False, reason="policy must name a card")
+                if self.session is not None:
+                    old = self._param(p.name)
+                    threading.Thread(target=self._load_policy, args=(p.name, path, old),
+                                     daemon=True).start()
+        return SetParametersResult(successful=True)
+
+    def _load_policy(self, which: str, path: str, old: str) -> None:
+        """Load and validate a card off the streaming path; swap at a decision boundary."""
+        with self._policy_lock:
+            try:
+                policy = load_policy(path, self._running) if path else None
+            except Exception as exc:
+                self._counters["policy_swaps_failed"] += 1
+                self.get_logger().error(f"{which} '{path}' refused, keeping '{old}': {exc}")
+                self._set_internal(which, old)
+                return
+            session = self.session
+            if session is None:
+                return
+            if which == "policy":
+                session.swap_policy(policy)
+                self._set_internal("policy_active", path)
+            else:
+                session.shadow_policy, session.shadow = policy, None
+            self.get_logger().info(f"{which} -> '{path}' (loaded, switching at the next decision)")
+
+    # ------------------------------------------------------------------ lifecycle
+    def _autostart(self) -> None:
+        state = self._state_machine.current_state[1]
+        if state == "unconfigured":
+            if self.trigger_configure() != TransitionCallbackReturn.SUCCESS:
+                return
+        state = self._state_machine.current_state[1]
+        if state == "inactive":
+            self.trigger_activate()
+        elif state == "active":
+            self._autostart_timer.cancel()
+
+    def on_configure(self, state: LifecycleState) -> TransitionCallbackReturn:
+        try:
+            self._configure()
+        except Exception as exc:
+            self.get_logger().error(f"configure refused: {exc}")
+            self._status = f"configure refused: {exc}"
+            self._diag.set(ERROR, self._status)
+            return TransitionCallbackReturn.FAILURE
+        self._status = "configured"
+        self._diag.set(OK, "configured")
+        return super().on_configure(state)
+
+    def _load_limits(self) -> JointLimits:
+        path = self._param("limits_file")
+        if path:
+            limits = JointLimits.from_file(path, self._param("limits_dynamics") or None)
+        else:
+            if self._robot_description is None:
+                raise ValueError("limits_file is empty and no robot_description was received")
+            dyn = self._param("limits_dynamics")
+            if not dyn:
+                raise ValueError("limits from robot_description need limits_dynamics (a limits "
+                                 "YAML with acceleration and jerk)")
+            limits = JointLimits.from_urdf_string(self._robot_description, dyn)
+        joints = [j for j in self._param("joints") if j]
+        return limits.subset(joints) if joints else limits
+
+    def _configure(self) -> None:
+        limits = self._load_limits()
+        period = float(self._param("decision_period"))
+        rate = float(self._param("stream_rate"))
+        if not 125.0 <= rate <= 1000.0:
+            raise ValueError(f"stream_rate must be within 125-1000 Hz, got {rate:g}")
+        if not (0.001 <= period <= 1.0):
+            raise ValueError(f"decision_period must be within 1 ms - 1 s, got {period:g}")
+        horizon = int(self._param("horizon"))
+        card = self._param("policy")
+        if not card:
+            raise ValueError("parameter 'policy' (path of a policy card) is empty")
+        features = [f for f in self._param("features") if f]
+        parsed = load_card(card)
+        self._running = RunningConfig(limits.names, period, limits, horizon,
+                                      tuple(features or parsed.feedback_features))
+        policy = build_policy(parsed, self._running)
+        shadow = None
+        if self._param("shadow_policy"):
+            shadow = load_policy(self._param("shadow_policy"), self._running)
+        w = 2.0 * float(self._param("approach_bandwidth"))
+        approach = policy_for_kind("tracker", self._running, kp=(w / 2) ** 2, kd=w)
+        wd = WatchdogConfig(**{k: self._param(f"watchdog.{k}") for k in WATCHDOG_PARAMS})
+        cc = CycleConfig(horizon=horizon, approach_scale=float(self._param("approach_scale")),
+                         approach_tolerance=float(self._param("approach_tolerance")),
+                         approach_bandwidth=float(self._param("approach_bandwidth")))
+        self.session = StreamingSession(limits, period, policy, approach, cc, wd,
+                                        float(self._param("limit_scale")), shadow)
+        self._set_internal("policy_active", card)
+        self._joints = list(limits.names)
+        self._rate = rate
+        self._parser = FeedbackParser(self._running.features) if self._running.features else None
+        self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
+                         for name in self._param("outputs") if name]
+        self._setpoint_pub = self.create_lifecycle_publisher(
+            JointTrajectory, "setpoints", common.reliable_qos(1), callback_group=self._stream_group)
+        self._shadow_pub = self.create_lifecycle_publisher(
+            JointTrajectory, "shadow/setpoints", common.reliable_qos(1),
+            callback_group=self._stream_group)
+        self._decision_pub = self.create_lifecycle_publisher(
+            Float64MultiArray, "~/decisions", common.reliable_qos(100),
+            callback_group=self._decide_group)
+        self._setpoint_msg = setpoint_message(self._joints)
+        self._shadow_msg = setpoint_message(self._joints)
+        self._decision_msg = Float64MultiArray()
+        self._decision_msg.layout.dim = [MultiArrayDimension(label=decision_record.LABEL)]
+        self._subs = [
+            self.create_subscription(JointState, "joint_states", self._on_joint_states,
+                                     qos_by_name(self._param("joint_states_qos"), 5),
+                                     callback_group=self._io_group),
+            self.create_subscription(JointTrajectory, "reference/window", self._on_window,
+                                     common.reliable_qos(5), callback_group=self._io_group),
+            self.create_subscription(JointState, "feedback", self._on_feedback,
+                                     qos_by_name(self._param("feedback_qos"), 5),
+                                     callback_group=self._io_group),
+            self.create_subscription(Bool, "stop", self._on_stop_topic, common.reliable_qos(1),
+                                     callback_group=self._io_group),
+        ]
+        self._services = [
+            self.create_service(Trigger, "~/stop", self._on_stop, callback_group=self._io_group),
+            self.create_service(Trigger, "~/reset", self._on_reset, callback_group=self._io_group),
+        ]
+        pause = self._param("reference_pause_service")
+        self._pause_client = (self.create_client(Trigger, pause, callback_group=self._io_group)
+                              if pause else None)
+
+    def on_activate(self, state: LifecycleState) -> TransitionCallbackReturn:
+        session = self.session
+        now = now_sec(self)
+        js = self._latest.get("joint_states")
+        timeout = session.watchdog.config.joint_states_timeout
+        if js is None or now - js[0] > timeout:
+            self.get_logger().error(
+                "activate refused: joint_states is not fresh (none within "
+                f"{timeout * 1e3:.0f} ms)")
+            return TransitionCallbackReturn.FAILURE
+        _, stamp, positions, velocities = js
+        still = float(self._param("activation_velocity"))
+        if velocities is not None and np.max(np.abs(velocities)) > still:
+            i = int(np.argmax(np.abs(velocities)))
+            self.get_logger().error(
+                f"activate refused: joint '{self._joints[i]}' is moving at {velocities[i]:.4g} "
+                f"rad/s (activation_velocity {still:g})")
+            return TransitionCallbackReturn.FAILURE
+        z = np.zeros(len(self._joints))
+        t0 = math.ceil(now * self._rate) / self._rate
+        session.begin(t0, MotionState(positions, z, z))
+        self._ticks = StreamClock(t0, self._rate)
+        self._last_segment = -1
+        self._decide_gc = self.create_guard_condition(self._on_decide,
+                                                      callback_group=self._decide_group)
+        ticks = self._ticks
+        self._stream_timer = StreamThread(lambda: now_sec(self),
+                                          lambda: ticks.time_of(ticks.last_index + 1),
+                                          self._on_stream,
+                                          priority=int(self._param("stream_priority")))
+        self._stream_timer.start()
+        self._status = "active"
+        self._diag.set(OK, "active: approaching the reference")
+        return super().on_activate(state)
+
+    def _stop_and_wait(self) -> bool:
+        session = self.session
+        if session is None or self._stream_timer is None:
+            return True
+        session.cycle.request_stop()
+        deadline = time.monotonic() + float(self._param("stop_timeout"))
+        while time.monotonic() < deadline:
+            if session.mode == "stopped" and session.cycle.at_rest:
+                return True
+            self._on_decide()  # this may run in the executor thread: decide here meanwhile
+            time.sleep(0.005)
+        self.get_logger().error("stop_timeout: deactivating before the plan reached rest")
+        return False
+
+    def on_deactivate(self, state: LifecycleState) -> TransitionCallbackReturn:
+        self._stop_and_wait()
+        self._teardown_timers()
+        self._status = "inactive"
+        self._diag.set(OK, "inactive (at rest)")
+        return super().on_deactivate(state)
+
+    def _teardown_timers(self) -> None:
+        if self._stream_timer is not None:
+            self._stream_timer.stop()
+            self._stream_timer = None
+        if self._decide_gc is not None:
+            self.destroy_guard_condition(self._decide_gc)
+            self._decide_gc = None
+
+    def on_cleanup(self, state: LifecycleState) -> TransitionCallbackReturn:
+        self.session = None
+        self._status = "unconfigured"
+        return super().on_cleanup(state)
+
+    def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
+        if state.state_id == StateMsg.PRIMARY_STATE_ACTIVE:
+            self._stop_and_wait()
+        self._teardown_timers()
+        return super().on_shutdown(state)
+
+    # ------------------------------------------------------------------ inputs
+    def _on_robot_description(self, msg: String) -> None:
+        self._robot_description = msg.data
+
+    def _on_joint_states(self, msg: JointState) -> None:
+        try:
+            joints = getattr(self, "_joints", None)
+            if joints is None:
+                return
+            names = list(msg.name)
+            idx = [names.index(j) for j in joints]
+            pos = np.asarray(msg.position, float)[idx]
+            vel = (np.asarray(msg.velocity, float)[idx] if len(msg.velocity) == len(names)
+                   else None)
+            if not np.all(np.isfinite(pos)):
+                raise ValueError("non-finite position")
+            stamp = stamp_to_sec(msg.header.stamp)
+            now = now_sec(self)
+            self._latest["joint_states"] = (now, stamp if stamp > 0 else now, pos, vel)
+        except (ValueError, IndexError):
+            self._counters["bad_joint_states"] += 1
+
+    def _on_window(self, msg: JointTrajectory) -> None:
+        self._latest["window"] = (now_sec(self), msg)
+
+    def _on_feedback(self, msg: JointState) -> None:
+        self._latest["feedback"] = (now_sec(self), msg)
+
+    def _on_stop_topic(self, msg: Bool) -> None:
+        session = self.session
+        if session is None:
+            return
+        if msg.data:
+            if session.watchdog.stop_requested is None:
+                session.watchdog.stop_requested = "stop topic is true"
+                session.stop(now_sec(self), "external_stop", "stop requested on the stop topic")
+        else:
+            session.watchdog.stop_requested = None
+
+    def _inputs(self, now: float) -> SessionInputs:
+        window, window_rx = None, None
+        w = self._latest.get("window")
+        if w is not None:
+            window_rx, msg = w
+            if self._window_cache[0] is msg:
+                window = self._window_cache[1]
+            else:
+                try:
+                    window = msg_to_window(msg, self._joints)
+                except TrajectoryMessageError as exc:
+                    self._counters["bad_windows"] += 1
+                    self.get_logger().warn(f"reference/window ignored: {exc}",
+                                           throttle_duration_sec=5.0)
+                    window, window_rx = None, None
+                self._window_cache = (msg, window)
+        feedback, valid_since = None, self._latest.get("feedback_valid_since")
+        f = self._latest.get("feedback")
+        if f is not None and self._parser is not None:
+            rx, msg = f
+            try:
+                feedback = self._parser.parse(msg.name, msg.position, stamp_to_sec(msg.header.stamp))
+            except ValueError:
+                feedback = None
+            if feedback is not None and feedback.all_valid:
+                valid_since = feedback.stamp if feedback.stamp is not None else rx
+                self._latest["feedback_valid_since"] = valid_since
+        js = self._latest.get("joint_states")
+        return SessionInputs(window, window_rx, feedback, valid_since,
+                             js[2] if js else None, js[1] if js else None, js[0] if js else None)
+
+    # ------------------------------------------------------------------ stream & decide
+    def _on_stream(self, now: float) -> None:
+        try:
+            clock, session = self._ticks, self.session
+            if clock is None or session is None:
+                return
+            i = clock.due(now)
+            if i is None:
+                return
+            t = clock.time_of(i)
+            self._lateness.append(now - t)
+            sp, reason = session.sample(t)
+            if reason is None:
+                fill_setpoint(self._setpoint_msg, t, sp)
+                self._setpoint_pub.publish(self._setpoint_msg)
+                ahead = None
+                for out in self._outputs:
+                    if out.kind == "trajectory" and ahead is None:
+                        ahead = session.commanded_at(t + out.dt) or sp
+                    out.publish(sp, ahead or sp)
+            else:
+                self._counters["guard_failures"] += 1
+            shadow = session.sample_shadow(t)
+            if shadow is not None:
+                fill_setpoint(self._shadow_msg, t, shadow)
+                self._shadow_pub.publish(self._shadow_msg)
+            k = math.floor((t - clock.t0) / session.period + 1e-9)
+            if k != self._last_segment:
+                self._last_segment = k
+                if self._decide_gc is not None:
+                    self._decide_gc.trigger()
+        except Exception as exc:  # never let an exception escape the stream callback
+            self._counters["stream_errors"] += 1
+            self.get_logger().error(f"stream tick failed: {exc}", throttle_duration_sec=1.0)
+
+    def _on_decide(self) -> None:
+        session = self.session
+        if session is None:
+            return
+        try:
+            t0 = time.perf_counter()
+            now = now_sec(self)
+            d = session.decide(now, self._inputs(now))
+            if d is not None:
+                self._decision_msg.data = decision_record.encode(d).tolist()
+                self._decision_pub.publish(self._decision_msg)
+            self._decision_times.append(time.perf_counter() - t0)
+            if len(self._decision_times) > 2000:
+                del self._decision_times[:1000]
+            self._react(session)
+        except Exception as exc:  # never let an exception escape the decision callback
+            self._counters["decision_errors"] += 1
+            self.get_logger().error(f"decision failed: {exc}", throttle_duration_sec=1.0)
+            if self.session is not None:
+                self.session.stop(now_sec(self), "policy_fault", f"decision failed: {exc}")
+
+    def _react(self, session: StreamingSession) -> None:
+        for trip in session.new_trips():
+            self.get_logger().error(f"watchdog: {trip.kind} at {trip.time:.3f} s: {trip.message}")
+        trip = session.watchdog.trip
+        if trip is not None:
+            self._diag.set(ERROR, f"stopped by {trip.kind}: {trip.message}")
+            if self._paused_for is not trip:
+                self._paused_for = trip
+                self._pause_reference()
+
+    def _pause_reference(self) -> None:
+        client = self._pause_client
+        if client is None:
+            return
+        if not client.service_is_ready():
+            self.get_logger().warn(f"reference pause service '{client.srv_name}' not available")
+            return
+        future = client.call_async(Trigger.Request())
+
+        def done(f: Any) -> None:
+            try:
+                res = f.result()
+                level = self.get_logger().info if res.success else self.get_logger().warn
+                level(f"reference pause: {res.message}")
+            except Exception as exc:
+                self.get_logger().warn(f"reference pause failed: {exc}")
+        future.add_done_callback(done)
+
+    # ------------------------------------------------------------------ services
+    def _on_stop(self, request: Trigger.Request, response: Trigger.Response) -> Trigger.Response:
+        session = self.session
+        if session is None or session.cycle.state is None:
+            response.success, response.message = False, "not streaming (activate first)"
+            return response
+        session.stop(now_sec(self), "external_stop", "stop requested via ~/stop")
+        response.success, response.message = True, "controlled stop started"
+        return response
+
+    def _on_reset(self, request: Trigger.Request, response: Trigger.Response) -> Trigger.Response:
+        session = self.session
+        if session is None or session.cycle.state is None:
+            response.success, response.message = False, "not streaming (activate first)"
+            return response
+        now = now_sec(self)
+        inputs = self._inputs(now)
+        needs = bool(session.cycle.policy.needs_feedback)
+        persisting = [f for f in session.input_faults(now, inputs, needs)
+                      if f[0] != "following_error" or session.watchdog.trip is None
+                      or session.watchdog.trip.kind == "following_error"]
+        probe = self._probe_policy(session, inputs)
+        if probe:
+            persisting.append(("policy_fault", probe))
+        ok, msg = session.reset(persisting)
+        if ok:
+            self._diag.set(OK, "reset: approaching the reference")
+            self._paused_for = None
+        response.success, response.message = ok, msg
+        self.get_logger().info(msg)
+        return response
+
+    def _probe_policy(self, session: StreamingSession, inputs: SessionInputs) -> str | None:
+        """Run the policy once on the current inputs; a reason if it still fails."""
+        st = session.cycle.state
+        if st is None or inputs.window is None:
+            return None
+        from adaptive_streamer.core.alignment import align
+        try:
+            ref = align(inputs.window, session.cycle.t + np.arange(session.cycle_config.horizon)
+                        * session.period)
+            out = session.cycle.policy.act(PolicyInputs(
+                session.cycle.t, st, ref.positions, ref.velocities, ref.accelerations,
+                inputs.feedback, session.cycle.previous_action))
+            out = np.asarray(out, float)
+            if out.shape != (len(self._joints),) or not np.all(np.isfinite(out)):
+                return "the policy still outputs NaN/inf or the wrong size on the current inputs"
+        except Exception as exc:
+            return f"the policy still fails on the current inputs: {exc}"
+        return None
+
+    # ------------------------------------------------------------------ diagnostics
+    def _diag_values(self) -> list[tuple[str, Any]]:
+        s = self.session
+        vals: list[tuple[str, Any]] = [("status", self._status)]
+        if s is None:
+            return vals
+        ts = np.array(self._decision_times[-500:]) * 1e3 if self._decision_times else np.array([np.nan])
+        pt = np.array(s.cycle.stats.policy_times[-500:]) * 1e3 if s.cycle.stats.policy_times else np.array([np.nan])
+        trip = s.watchdog.trip
+        vals += [("mode", s.mode), ("policy_active", self._param("policy_active")),
+                 ("limit_scale", s.limit_scale),
+                 ("decisions", s.cycle.stats.decisions),
+                 ("late_decisions", s.late_decisions),
+                 ("skipped_ticks", self._ticks.skipped if self._ticks else 0),
+                 ("tick_late_ms_p50", _pct(self._lateness, 50)),
+                 ("tick_late_ms_p99", _pct(self._lateness, 99)),
+                 ("decision_ms_p50", float(np.median(ts))),
+                 ("decision_ms_p99", float(np.percentile(ts, 99))),
+                 ("policy_ms_p50", float(np.median(pt))),
+                 ("policy_swaps", s.cycle.stats.policy_swaps),
+                 ("non_viable_states", s.cycle.stats.non_viable),
+                 ("limit_transitions", s.cycle.stats.limit_transitions),
+                 ("trip", "none" if trip is None else trip.kind),
+                 ("trip_message", "" if trip is None else trip.message),
+                 ("trip_time", math.nan if trip is None else trip.time)]
+        vals += [(f"count.{k}", v) for k, v in s.watchdog.counts.items() if v]
+        vals += list(self._counters.items())
+        if s.shadow_policy is not None:
+            st = s.shadow_stats
+            vals += [("shadow.decisions", st.decisions), ("shadow.rms_du", st.rms_du),
+                     ("shadow.max_abs_du", st.max_abs_du), ("shadow.restarts", st.stopped)]
+        for out in getattr(self, "_outputs", []):
+            vals += list(out.status().items())
+        if trip is None and s.mode in ("approaching", "following"):
+            self._diag.set(OK, f"active: {s.mode}")
+        elif s.mode == "stopped" and trip is None:
+            self._diag.set(OK, "stopped (at rest)")
+        if self._counters["guard_failures"] or s.late_decisions:
+            if trip is None:
+                self._diag.set(WARN, f"{s.mode}; guard failures {self._counters['guard_failures']}, "
+                               f"late decisions {s.late_decisions}")
+        return vals
+
+
+def _pct(values: deque[float], q: float) -> float:
+    return float(np.percentile(np.fromiter(values, float), q)) * 1e3 if values else math.nan
+
+
+def make_executor() -> SingleThreadedExecutor:
+    """The executor for the adapter: one thread for subscriptions, services and decisions
+    (the stream has its own thread); the GIL switch interval is shortened so the stream
+    thread gets the interpreter promptly."""
+    sys.setswitchinterval(0.0005)
+    return SingleThreadedExecutor()
+
+
+def main(args: list[str] | None = None) -> int:
+    """Run the adapter node until Ctrl-C (the arm is brought to rest first)."""
+    def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
+        for node in nodes:
+            if isinstance(node, AdapterNode):
+                node._stop_and_wait()
+    return common.run_nodes([AdapterNode], args, executor=make_executor(),
+                            before_shutdown=bring_to_rest)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

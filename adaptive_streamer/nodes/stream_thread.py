@@ -1,0 +1,72 @@
+"""The stream thread: wakes at each nominal tick time and runs the node's tick callback.
+
+Measured on the 2-core target (see README, "Executor layout"): rclpy's multi-threaded
+executor could not serve a 250 Hz timer next to the node's subscriptions (most ticks
+skipped), while one thread that sleeps to absolute tick times keeps the stream on time and
+independent of the executor, which runs subscriptions, services and the decision. The tick
+callback only samples the committed plan and publishes.
+
+Time: ticks are due at ROS time ``t0 + i / rate`` (sim time under ``use_sim_time``, then
+the thread polls the clock in short sleeps, so a paused clock pauses the stream).
+"""
+from __future__ import annotations
+
+import os
+import threading
+import time
+from typing import Callable
+
+
+class StreamThread:
+    """Calls ``tick(now)`` whenever a tick may be due; stops on `stop`.
+
+    Args:
+        now: returns the node's clock in seconds (ROS time).
+        next_due: returns the nominal time of the next tick to publish.
+        tick: the tick callback (publishes at most one setpoint).
+        max_sleep: longest single sleep [s] (bounds the reaction to a stop or sim clock).
+        priority: SCHED_FIFO priority of the thread (0: normal scheduling). Real-time
+            priority for the control thread is common practice; it needs the privilege
+            (root or CAP_SYS_NICE), otherwise the thread runs normally and says so.
+    """
+
+    def __init__(self, now: Callable[[], float], next_due: Callable[[], float],
+                 tick: Callable[[float], None], max_sleep: float = 0.01,
+                 priority: int = 0) -> None:
+        self._now, self._next_due, self._tick = now, next_due, tick
+        self._priority = int(priority)
+        self.priority_note = "stream thread at normal priority"
+        self._max_sleep = max_sleep
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="adaptive_streamer-stream",
+                                        daemon=True)
+
+    def start(self) -> None:
+        """Start ticking."""
+        self._thread.start()
+
+    def stop(self, timeout: float = 1.0) -> None:
+        """Stop and join."""
+        self._stop.set()
+        if self._thread.is_alive() and threading.current_thread() is not self._thread:
+            self._thread.join(timeout)
+
+    @property
+    def running(self) -> bool:
+        """True while the thread runs."""
+        return self._thread.is_alive() and not self._stop.is_set()
+
+    def _run(self) -> None:
+        if self._priority > 0:
+            try:  # this thread only (Linux: pid 0 is the calling thread)
+                os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(self._priority))
+                self.priority_note = f"stream thread at SCHED_FIFO priority {self._priority}"
+            except (OSError, AttributeError) as exc:
+                self.priority_note = (f"stream thread at normal priority (SCHED_FIFO "
+                                      f"{self._priority} refused: {exc})")
+        while not self._stop.is_set():
+            now = self._now()
+            self._tick(now)
+            delay = self._next_due() - self._now()
+            if delay > 0.0:
+                time.sleep(min(delay, self._max_sleep))
