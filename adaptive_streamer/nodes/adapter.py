@@ -539,9 +539,7 @@ class AdapterNode(LifecycleNode):
         now = now_sec(self)
         inputs = self._inputs(now)
         needs = bool(session.cycle.policy.needs_feedback)
-        persisting = [f for f in session.input_faults(now, inputs, needs)
-                      if f[0] != "following_error" or session.watchdog.trip is None
-                      or session.watchdog.trip.kind == "following_error"]
+        persisting = session.input_faults(now, inputs, needs)
         probe = self._probe_policy(session, inputs)
         if probe:
             persisting.append(("policy_fault", probe))
