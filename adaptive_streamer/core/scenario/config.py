@@ -36,7 +36,6 @@ All keys are required. Random streams: the placement draws from
 from __future__ import annotations
 
 import math
-import sys
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping
@@ -48,8 +47,6 @@ from .line_sensor import SensorConfig, SensorError
 from .nominal_path import PassConfig, PathError
 from .panel import Panel, PanelError, draw_placement
 
-PACKAGE = "adaptive_streamer"
-DEMO_SCENARIO = Path("config", "demo", "scenario.yaml")
 
 
 class ScenarioError(ValueError):
@@ -163,17 +160,12 @@ def load_scenario(path: str | Path | None = None) -> Scenario:
 
 
 def default_scenario_path() -> Path:
-    """The demo scenario: installed package share, else the prefix's share, else the source tree."""
-    candidates = []
+    """The demo scenario file in the package's share folder."""
+    from ...share import ShareError, demo_file
     try:
-        from ament_index_python.packages import get_package_share_directory
-        candidates.append(Path(get_package_share_directory(PACKAGE)) / DEMO_SCENARIO)
-    except (ImportError, KeyError, OSError):   # no ament index, unset prefix, not installed
-        pass
-    candidates.append(Path(sys.prefix, "share", PACKAGE) / DEMO_SCENARIO)
-    candidates.append(Path(__file__).resolve().parents[3] / DEMO_SCENARIO)
-    for path in candidates:
-        if path.is_file():
-            return path
-    raise ScenarioError("no demo scenario file found (looked in: "
-                        + ", ".join(str(c) for c in candidates) + "); pass one explicitly")
+        path = demo_file("scenario.yaml")
+    except ShareError as exc:
+        raise ScenarioError(f"no demo scenario file found: {exc}; pass one explicitly") from None
+    if not path.is_file():
+        raise ScenarioError(f"no demo scenario file at {path}; pass one explicitly")
+    return path
