@@ -94,8 +94,15 @@ class AdapterNode(LifecycleNode):
         self.create_subscription(String, "robot_description", self._on_robot_description,
                                  common.reliable_qos(1, transient_local=True),
                                  callback_group=self._io_group)
+        self._autostart_timer = None
         if self.get_parameter("autostart").value:
-            self._autostart_timer = self.create_timer(0.2, self._autostart,
+            self.start_autostart()
+
+    def start_autostart(self) -> None:
+        """Configure and activate from a timer (activation retried until joint_states is
+        fresh and the arm still)."""
+        if self._autostart_timer is None:
+            self._autostart_timer = self.create_timer(0.5, self._autostart,
                                                       callback_group=self._io_group)
 
     # ------------------------------------------------------------------ parameters
@@ -284,7 +291,7 @@ class AdapterNode(LifecycleNode):
             self.create_subscription(Bool, "stop", self._on_stop_topic, common.reliable_qos(1),
                                      callback_group=self._io_group),
         ]
-        self._services = [
+        self._adapter_services = [
             self.create_service(Trigger, "~/stop", self._on_stop, callback_group=self._io_group),
             self.create_service(Trigger, "~/reset", self._on_reset, callback_group=self._io_group),
         ]
@@ -632,7 +639,7 @@ def main(args: list[str] | None = None) -> int:
         for node in nodes:
             if isinstance(node, AdapterNode):
                 node._stop_and_wait()
-    return common.run_nodes([AdapterNode], args, executor=make_executor(),
+    return common.run_nodes([AdapterNode], args, executor=make_executor,
                             before_shutdown=bring_to_rest)
 
 

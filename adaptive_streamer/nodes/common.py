@@ -117,12 +117,14 @@ def _fmt(value: Any) -> str:
 
 
 def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = None,
-              executor: Executor | None = None,
-              before_shutdown: Callable[[list[Node], Executor], None] | None = None) -> int:
+              executor: Callable[[], Executor] | None = None,
+              before_shutdown: Callable[[list[Node], Executor], None] | None = None,
+              after_start: Callable[[list[Node]], None] | None = None) -> int:
     """Init rclpy, build the nodes, spin until Ctrl-C/SIGTERM, shut down cleanly (no traceback).
 
-    ``before_shutdown`` runs after the stop request while the executor still works (e.g. to
-    bring the arm to rest). Returns a process exit code.
+    ``executor`` makes the executor (after rclpy.init; default single-threaded).
+    ``after_start`` runs once the nodes are in the executor; ``before_shutdown`` runs after
+    the stop request (e.g. to bring the arm to rest). Returns a process exit code.
     """
     rclpy.init(args=args, signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
     stop = {"flag": False}
@@ -133,11 +135,13 @@ def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = 
     old = {s: signal.signal(s, _handler) for s in (signal.SIGINT, signal.SIGTERM)}
     nodes: list[Node] = []
     code = 0
-    ex = executor or SingleThreadedExecutor()
+    ex = executor() if executor is not None else SingleThreadedExecutor()
     try:
         nodes = [f() for f in factories]
         for n in nodes:
             ex.add_node(n)
+        if after_start is not None:
+            after_start(nodes)
         while not stop["flag"] and rclpy.ok():
             ex.spin_once(timeout_sec=0.1)
         if before_shutdown is not None:

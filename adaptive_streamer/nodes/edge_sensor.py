@@ -22,6 +22,7 @@ Parameters (read-only):
   panel_angle_deg    real rotation [deg]; NaN (default) = drawn from the seed
   joint_states_qos   reliable | best_effort | sensor_data (default reliable)
   output_qos         reliable | best_effort | sensor_data (default reliable)
+  dropout            fault injection (settable at runtime): while true no reading is published
 
 Diagnostics (``/diagnostics``, about 1 Hz, name ``edge_sensor``): placement, seed, joint
 states received/rejected, samples, published, out of range, the last reading.
@@ -109,6 +110,7 @@ class EdgeSensor(Node):
         self.create_subscription(JointState, "joint_states", self._on_joint_state,
                                  qos["joint_states_qos"])
         self.create_timer(1.0 / scenario.sensor.rate, self._on_tick)
+        declare(self, "dropout", False, "fault injection: publish no readings while true")
         self._diag = DiagnosticsReporter(self, "edge_sensor", values=self._diag_values)
         self._diag.set(OK, "waiting for joint_states")
         self.get_logger().info(
@@ -151,8 +153,9 @@ class EdgeSensor(Node):
             offset, angle, along = true_edge_reading(DEMO_ARM, self.panel, self._q)
             self.sensor.sample(self._q_stamp, offset[0], angle[0], along[0])
             self._sampled_stamp = self._q_stamp
+        dropout = self.get_parameter("dropout").value
         for reading in self.sensor.due(now):
-            if not reading.valid:
+            if not reading.valid or dropout:
                 continue
             msg = PointStamped()
             sec_to_stamp(reading.stamp, msg.header.stamp)

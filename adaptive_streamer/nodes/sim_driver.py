@@ -37,6 +37,8 @@ Parameters (read-only):
   seed                noise seed (default 0)
   command_qos         reliable | best_effort | sensor_data (default reliable)
   joint_states_qos    reliable | best_effort | sensor_data (default reliable)
+  stall               fault injection (settable at runtime): while true, joint_states is not
+                      published (the plant keeps running), as when a driver's feedback stalls
 
 Diagnostics (``/diagnostics``, about 1 Hz, name ``sim_driver``): state (following /
 holding), commands received and rejected, timeouts, ticks, catch-up ticks, clock re-anchors.
@@ -156,6 +158,7 @@ class SimDriver(Node):
         self.catch_up_ticks = 0
         self.reanchors = 0
         self._pub = self.create_publisher(JointState, "joint_states", qos["joint_states_qos"])
+        declare(self, "stall", False, "fault injection: stop publishing joint_states while true")
         msg_type = JointTrajectory if interface == "trajectory" else Float64MultiArray
         sub = self.create_subscription(msg_type, TOPICS[interface], self._on_command,
                                        qos["command_qos"])
@@ -229,7 +232,8 @@ class SimDriver(Node):
         msg.name = self._joints
         msg.position = sample.position.tolist()
         msg.velocity = sample.velocity.tolist()
-        self._pub.publish(msg)
+        if not self.get_parameter("stall").value:
+            self._pub.publish(msg)
         if was_following != self.plant.following:
             self._update_status()
 

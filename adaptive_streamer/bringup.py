@@ -1,0 +1,314 @@
+"""``adaptive-streamer bringup``: start the nodes of a ROS 2 params file, as a launch file would.
+
+Each top-level key of the params file names a node (``adapter``, ``/cell/adapter``...; the
+last path element must be one of `NODE_KINDS`, the package's node names). By default every
+node runs in its own process (``--one-process`` shares one, for small machines). Paths in
+the file may use ``$(share)`` for the package's share folder.
+
+The adapter is configured and activated through its lifecycle services (unless its
+``autostart`` parameter does it), retried until ``joint_states`` is fresh. On Ctrl-C (or
+SIGTERM) the adapter is deactivated first, which brings the arm to rest while the stream and
+the driver keep running; then every child is stopped, cleanly, without a traceback.
+"""
+from __future__ import annotations
+
+import importlib
+import os
+import signal
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from .share import expand
+
+NODE_KINDS = {
+    "adapter": ("adaptive_streamer.nodes.adapter", "AdapterNode"),
+    "reference_server": ("adaptive_streamer.nodes.reference_server", "ReferenceServer"),
+    "sensor_bridge": ("adaptive_streamer.nodes.sensor_bridge", "SensorBridge"),
+    "sim_driver": ("adaptive_streamer.nodes.sim_driver", "SimDriver"),
+    "edge_sensor": ("adaptive_streamer.nodes.edge_sensor", "EdgeSensor"),
+    "watchdog": ("adaptive_streamer.nodes.watchdog_monitor", "WatchdogMonitor"),
+    "recorder": ("adaptive_streamer.nodes.recorder", "RecorderNode"),
+}
+STOP_TIMEOUT = 10.0
+
+
+class BringupError(ValueError):
+    """The params file cannot be brought up."""
+
+
+@dataclass(frozen=True)
+class NodeEntry:
+    """One node of a params file."""
+
+    kind: str        # key of NODE_KINDS
+    namespace: str   # '' or '/cell'
+    params: dict[str, Any]
+
+    @property
+    def fqn(self) -> str:
+        """Fully qualified node name."""
+        return f"{self.namespace}/{self.kind}"
+
+
+def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
+    """Nodes of a params file and its text with ``$(share)`` expanded."""
+    path = Path(path)
+    try:
+        text = expand(path.read_text())
+    except OSError as exc:
+        raise BringupError(f"cannot read params file '{path}': {exc.strerror}") from None
+    try:
+        data = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        raise BringupError(f"{path}: not valid YAML: {exc}") from None
+    if not isinstance(data, dict) or not data:
+        raise BringupError(f"{path}: expected a ROS 2 params file (node: ros__parameters: ...)")
+    nodes = []
+    for key, body in data.items():
+        key = str(key)
+        if key in ("/**", "**"):
+            continue
+        if not isinstance(body, dict) or "ros__parameters" not in body:
+            raise BringupError(f"{path}: '{key}' has no 'ros__parameters' mapping")
+        parts = [p for p in key.split("/") if p]
+        kind = parts[-1]
+        if kind not in NODE_KINDS:
+            raise BringupError(f"{path}: unknown node '{kind}' (from '{key}'); this package's "
+                               f"nodes are {sorted(NODE_KINDS)}")
+        ns = "/" + "/".join(parts[:-1]) if len(parts) > 1 else ""
+        nodes.append(NodeEntry(kind, ns, dict(body["ros__parameters"] or {})))
+    if not nodes:
+        raise BringupError(f"{path}: names no node")
+    return nodes, text
+
+
+def ros_args(params_file: str, namespace: str) -> list[str]:
+    """rclpy arguments for a node reading ``params_file`` in ``namespace``."""
+    args = ["--ros-args", "--params-file", params_file]
+    if namespace:
+        args += ["-r", f"__ns:={namespace}"]
+    return args
+
+
+def child_command(kinds: list[str], params_file: str, namespace: str = "") -> list[str]:
+    """Command line of a child process running the nodes ``kinds`` (one executor)."""
+    return [sys.executable, "-m", "adaptive_streamer.bringup", "--child", ",".join(kinds), "--",
+            *ros_args(params_file, namespace)]
+
+
+def run_child(kinds: list[str], args: list[str]) -> int:
+    """Entry of a child process: run one node (or several in one executor) until SIGINT."""
+    if len(kinds) == 1:
+        module, _ = NODE_KINDS[kinds[0]]
+        return int(importlib.import_module(module).main(args) or 0)
+    from .nodes import common
+    factories = []
+    for kind in kinds:
+        module, cls = NODE_KINDS[kind]
+        factories.append(getattr(importlib.import_module(module), cls))
+    return common.run_nodes(factories, args)
+
+
+def run_one_process(entries: list[NodeEntry], params_file: str) -> int:
+    """All nodes in this process (one executor; the adapter keeps its stream thread)."""
+    from .nodes import common
+    from .nodes.adapter import AdapterNode, make_executor
+
+    namespaces = {e.namespace for e in entries}
+    if len(namespaces) > 1:
+        raise BringupError("--one-process needs all nodes in one namespace, got "
+                           f"{sorted(namespaces)}")
+    ns = namespaces.pop()
+    factories = []
+    for e in entries:
+        module, cls = NODE_KINDS[e.kind]
+        klass = getattr(importlib.import_module(module), cls)
+        factories.append(lambda k=klass: k())
+
+    def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
+        for node in nodes:
+            if isinstance(node, AdapterNode):
+                node._stop_and_wait()
+
+    def activate(nodes: list) -> None:
+        for node in nodes:
+            if isinstance(node, AdapterNode):
+                node.start_autostart()
+
+    return common.run_nodes(factories, ros_args(params_file, ns), executor=make_executor,
+                            before_shutdown=bring_to_rest, after_start=activate)
+
+
+class Processes:
+    """Child processes of a bringup, stopped in order."""
+
+    def __init__(self) -> None:
+        self.children: list[tuple[NodeEntry, subprocess.Popen]] = []
+
+    def start(self, entry: NodeEntry, params_file: str, group: list[str] | None = None,
+              **popen: Any) -> None:
+        """Start ``entry`` (with the nodes ``group`` sharing its process) in its own session,
+        so a terminal Ctrl-C reaches only the parent."""
+        kinds = group or [entry.kind]
+        proc = subprocess.Popen(child_command(kinds, params_file, entry.namespace),
+                                start_new_session=True, **popen)
+        self.children.append((entry, proc))
+
+    def dead(self) -> list[tuple[NodeEntry, int]]:
+        """Children that exited, with their exit codes."""
+        return [(e, p.returncode) for e, p in self.children if p.poll() is not None]
+
+    def stop(self, timeout: float = STOP_TIMEOUT) -> list[str]:
+        """SIGINT every child (reverse start order), then SIGKILL after ``timeout``."""
+        for _, proc in reversed(self.children):
+            if proc.poll() is None:
+                proc.send_signal(signal.SIGINT)
+        deadline = time.monotonic() + timeout
+        notes = []
+        for entry, proc in reversed(self.children):
+            try:
+                proc.wait(max(0.1, deadline - time.monotonic()))
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait()
+                notes.append(f"{entry.fqn} did not stop within {timeout:g} s and was killed")
+            else:
+                if proc.returncode not in (0, -signal.SIGINT):
+                    notes.append(f"{entry.fqn} exited with code {proc.returncode}")
+        return notes
+
+
+def bringup(params: str | Path, one_process: bool = False, record: str | None = None,
+            activate_timeout: float = 30.0, ready: Any = None) -> int:
+    """Run the nodes of ``params`` until Ctrl-C/SIGTERM; returns an exit code."""
+    entries, text = read_params(params)
+    tmp = tempfile.NamedTemporaryFile("w", suffix=".yaml", prefix="adaptive_streamer_params_",
+                                      delete=False)
+    tmp.write(text)
+    tmp.close()
+    try:
+        if record:
+            entries = entries + [recorder_entry(entries, record)]
+            tmp_text = text + "\n" + yaml.safe_dump({_key(entries[-1]): {
+                "ros__parameters": entries[-1].params}})
+            Path(tmp.name).write_text(tmp_text)
+        if one_process:
+            return run_one_process(entries, tmp.name)
+        return _run_processes(entries, tmp.name, activate_timeout, ready)
+    finally:
+        os.unlink(tmp.name)
+
+
+def recorder_entry(entries: list[NodeEntry], out: str) -> NodeEntry:
+    """The recorder node recording into ``out`` (in the nodes' namespace)."""
+    ns = entries[0].namespace if entries else ""
+    return NodeEntry("recorder", ns, {"output": str(Path(out).resolve())})
+
+
+def _key(entry: NodeEntry) -> str:
+    return f"{entry.namespace}/{entry.kind}" if entry.namespace else entry.kind
+
+
+def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout: float,
+                   ready: Any) -> int:
+    import rclpy
+    from rclpy.node import Node
+
+    from .nodes.lifecycle_client import LifecycleClient, LifecycleClientError
+
+    stop = {"flag": False}
+
+    def _handler(signum: int, frame: Any) -> None:  # noqa: ARG001
+        stop["flag"] = True
+
+    old = {s: signal.signal(s, _handler) for s in (signal.SIGINT, signal.SIGTERM)}
+    procs = Processes()
+    code = 0
+    rclpy.init(signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
+    node = Node("bringup")
+    adapters = [e for e in entries if e.kind == "adapter"]
+    clients = [LifecycleClient(node, e.fqn) for e in adapters
+               if not e.params.get("autostart", False)]
+    try:
+        for entry in entries:
+            procs.start(entry, params_file)
+            print(f"bringup: started {entry.fqn} (pid {procs.children[-1][1].pid})", flush=True)
+        for client in clients:
+            _activate(client, activate_timeout, stop)
+        if ready is not None:
+            ready()
+        while not stop["flag"]:
+            dead = procs.dead()
+            if dead:
+                for entry, rc in dead:
+                    print(f"bringup: {entry.fqn} exited (code {rc}); stopping the rest",
+                          file=sys.stderr)
+                code = 1
+                break
+            rclpy.spin_once(node, timeout_sec=0.2)
+        for client in clients:  # bring the arm to rest while the driver still runs
+            try:
+                if client.state(2.0) == "active":
+                    print(f"bringup: deactivating {client.target} (controlled stop)", flush=True)
+                    client.deactivate()
+            except LifecycleClientError as exc:
+                print(f"bringup: {exc}", file=sys.stderr)
+    except LifecycleClientError as exc:
+        print(f"bringup: {exc}", file=sys.stderr)
+        code = 1
+    finally:
+        notes = procs.stop()
+        for note in notes:
+            print(f"bringup: {note}", file=sys.stderr)
+        node.destroy_node()
+        rclpy.shutdown()
+        for s, h in old.items():
+            signal.signal(s, h)
+    print("bringup: stopped" + ("" if code == 0 and not notes else " (with errors)"), flush=True)
+    return code or (1 if notes else 0)
+
+
+def _activate(client: Any, timeout: float, stop: dict) -> None:
+    """configure, then activate with retries (activation waits for fresh joint_states)."""
+    from .nodes.lifecycle_client import LifecycleClientError
+
+    if not client.wait(timeout):
+        raise LifecycleClientError(f"{client.target}: lifecycle services did not appear")
+    state = client.state()
+    if state == "unconfigured" and not client.configure():
+        raise LifecycleClientError(f"{client.target}: configure refused (see its log)")
+    deadline = time.monotonic() + timeout
+    while not stop["flag"]:
+        if client.state() == "active" or client.activate():
+            print(f"bringup: {client.target} active", flush=True)
+            return
+        if time.monotonic() > deadline:
+            raise LifecycleClientError(f"{client.target}: activate refused for {timeout:g} s "
+                                       "(joint_states missing or the arm moving; see its log)")
+        time.sleep(0.5)
+
+
+def _child_main() -> int:
+    argv = sys.argv[1:]
+    if len(argv) < 2 or argv[0] != "--child":
+        print("usage: python -m adaptive_streamer.bringup --child KIND[,KIND...] -- ROS_ARGS",
+              file=sys.stderr)
+        return 2
+    kinds = argv[1].split(",")
+    unknown = [k for k in kinds if k not in NODE_KINDS]
+    if unknown:
+        print(f"unknown node kind(s) {unknown}; known: {sorted(NODE_KINDS)}", file=sys.stderr)
+        return 2
+    rest = argv[3:] if len(argv) > 2 and argv[2] == "--" else argv[2:]
+    return run_child(kinds, rest)
+
+
+if __name__ == "__main__":
+    raise SystemExit(_child_main())

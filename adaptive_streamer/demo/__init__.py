@@ -1,0 +1,1 @@
+"""The demo: an invented bead-dispensing cell run end to end over real DDS, with a report."""

@@ -1,0 +1,142 @@
+"""The demo's effective configuration: params file, policy card, limits, seed, notes."""
+from __future__ import annotations
+
+import argparse
+import copy
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from ..core.feasibility import FeasibilityError, ensure_feasible
+from ..core.limits import JointLimits, LimitsError
+from ..core.policies import PolicyError, load_card
+from ..core.reference_files import ReferenceFileError, load_reference
+from ..core.scenario.config import load_scenario
+from ..share import demo_file, expand
+
+KIND_CARDS = {"onnx": "policy_edge.yaml", "linear_feedback": "policy_feedback.yaml",
+              "tracker": "policy_reference_only.yaml"}
+REFERENCE_ONLY_CARD = "policy_reference_only.yaml"
+FAULT_CARDS = {"nan_policy": "faults/nan_policy.yaml", "slow_policy": "faults/slow_policy.yaml"}
+SLOW_DOWN_FRACTION = 0.8
+
+
+class DemoError(RuntimeError):
+    """The demo cannot run as asked (the message says why)."""
+
+
+@dataclass
+class DemoConfig:
+    """Everything a demo run needs, resolved."""
+
+    params: dict[str, Any]            # node name -> ros__parameters
+    policy_card: Path
+    policy_label: str
+    limits_file: Path
+    limits: JointLimits
+    seed: int
+    reference_duration: float         # seconds, after any slow-down
+    stream_rate: float
+    decision_period: float
+    notes: list[str] = field(default_factory=list)
+
+    def write_params(self, path: Path) -> Path:
+        """Write the effective params file."""
+        path.write_text(yaml.safe_dump({k: {"ros__parameters": v} for k, v in self.params.items()},
+                                       sort_keys=False))
+        return path
+
+
+def _card_for(policy: str | None, limits_given: bool, notes: list[str]) -> tuple[Path, str]:
+    """Resolve --policy (card path or kind) to a card file."""
+    if policy is None:
+        kind = "onnx"
+        if limits_given:
+            kind = "linear_feedback"
+            notes.append("the ONNX policy was trained for config/demo/limits.yaml, so with "
+                         "--limits the demo runs the linear_feedback policy")
+        return demo_file(KIND_CARDS[kind]), kind
+    if policy in KIND_CARDS:
+        return demo_file(KIND_CARDS[policy]), policy
+    if policy == "hold":
+        return Path(), "hold"
+    path = Path(policy)
+    if not path.is_file():
+        raise DemoError(f"--policy '{policy}': no such card file, and not one of the kinds "
+                        f"{sorted(KIND_CARDS) + ['hold']}")
+    return path.resolve(), path.name
+
+
+def _retarget(card: Path, kind: str, limits_file: Path, joints: tuple[str, ...],
+              period: float, workdir: Path) -> Path:
+    """A copy of ``card`` made for ``limits_file`` (or a built-in hold card)."""
+    if kind == "hold":
+        data: dict[str, Any] = {"policy_card": 1, "name": "hold (demo)", "kind": "hold",
+                                "joints": list(joints), "decision_period": period}
+    else:
+        data = yaml.safe_load(card.read_text())
+        if data.get("kind") == "onnx":
+            raise DemoError(f"policy card {card} is an ONNX policy trained for its own limits; "
+                            "it cannot run with --limits (choose --policy linear_feedback or "
+                            "tracker, or retrain the model for those limits)")
+        if "model" in data:
+            data["model"] = str((card.parent / data["model"]).resolve())
+    data["limits"] = str(limits_file)
+    out = workdir / f"card_{kind}.yaml"
+    out.write_text(yaml.safe_dump(data, sort_keys=False))
+    return out
+
+
+def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
+    """Resolve the demo options into a `DemoConfig` (files written into ``workdir``)."""
+    notes: list[str] = []
+    params_path = demo_file("params.yaml")
+    data = yaml.safe_load(expand(params_path.read_text()))
+    params = {k: copy.deepcopy(v["ros__parameters"]) for k, v in data.items()}
+    adapter, ref = params["adapter"], params["reference_server"]
+    period = float(adapter.get("decision_period", 0.05))
+    rate = float(adapter.get("stream_rate", 250.0))
+    limits_file = Path(args.limits).resolve() if args.limits else Path(adapter["limits_file"])
+    try:
+        limits = JointLimits.from_file(limits_file)
+    except LimitsError as exc:
+        raise DemoError(str(exc)) from None
+    card, label = _card_for(args.policy, args.limits is not None, notes)
+    if args.limits or label == "hold":
+        card = _retarget(card, label, limits_file, tuple(params["sim_driver"]["joints"]), period,
+                         workdir)
+    try:
+        load_card(card)
+    except PolicyError as exc:
+        raise DemoError(str(exc)) from None
+    adapter["policy"] = str(card)
+    adapter["limits_file"] = str(limits_file)
+    ref["limits_file"] = str(limits_file)
+    try:
+        reference = load_reference(ref["reference_file"], limits=limits)
+        _, factor, report = ensure_feasible(reference, limits, slow_down=True,
+                                            fraction=SLOW_DOWN_FRACTION)
+    except (ReferenceFileError, FeasibilityError, LimitsError) as exc:
+        raise DemoError(f"the demo reference does not fit the limits: {exc}") from None
+    if factor > 1.0:
+        ref["slow_down"] = True
+        ref["limit_fraction"] = SLOW_DOWN_FRACTION
+        notes.append(f"the reference needs {100 * report.peak_ratio:.0f}% of the limits in "
+                     f"{limits_file.name}; it is slowed down {factor:.2f}x to stay within "
+                     f"{100 * SLOW_DOWN_FRACTION:.0f}% of them")
+    scenario = load_scenario(params["edge_sensor"]["scenario"])
+    seed = int(args.seed) if args.seed is not None else int(params["edge_sensor"].get("seed", scenario.seed))
+    params["edge_sensor"]["seed"] = seed
+    params["sim_driver"]["seed"] = seed
+    return DemoConfig(params, card, label, limits_file, limits, seed,
+                      reference.duration * factor, rate, period, notes)
+
+
+def fault_card(fault: str) -> Path:
+    """Card of a fault-injection policy."""
+    path = demo_file(FAULT_CARDS[fault])
+    if not path.is_file():
+        raise DemoError(f"fault policy card {path} is missing (run scripts/make_demo_policy.py)")
+    return path

@@ -1,0 +1,169 @@
+"""The demo's observer and operator: an rclpy node that records what the stack does and
+drives it (lifecycle, start, fault injection). It only converts and stores; the figures
+are computed in `adaptive_streamer.demo.summary`.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import rclpy
+from diagnostic_msgs.msg import DiagnosticArray
+from geometry_msgs.msg import PointStamped
+from rcl_interfaces.msg import Parameter as ParameterMsg
+from rcl_interfaces.msg import ParameterType, ParameterValue
+from rcl_interfaces.srv import SetParameters
+from rclpy.node import Node
+from sensor_msgs.msg import JointState
+from std_msgs.msg import Float64MultiArray
+from std_srvs.srv import Trigger
+from trajectory_msgs.msg import JointTrajectory
+
+from ..core import decision_record
+from ..core.cycle import Decision
+from ..nodes.common import reliable_qos, stamp_to_sec
+from ..nodes.lifecycle_client import LifecycleClient
+from ..nodes.trajectory_conversions import fill_trajectory, msg_to_window
+
+
+@dataclass
+class Recorded:
+    """Everything the monitor received (lists of tuples, turned into arrays later)."""
+
+    setpoints: list[tuple[float, float, list, list, list]] = field(default_factory=list)
+    joint_states: list[tuple[float, list]] = field(default_factory=list)
+    decisions: list[Decision] = field(default_factory=list)
+    readings: list[tuple[float, float, float]] = field(default_factory=list)
+    diagnostics: dict[str, dict[str, str]] = field(default_factory=dict)
+    diag_messages: dict[str, str] = field(default_factory=dict)
+
+
+class DemoMonitor(Node):
+    """Subscribes to the stack's outputs; clients for the operator's actions."""
+
+    def __init__(self, joints: list[str]) -> None:
+        super().__init__("demo_monitor")
+        self.joints = joints
+        self.data = Recorded()
+        self.recording = False
+        q = reliable_qos(200)
+        self.create_subscription(JointTrajectory, "setpoints", self._on_setpoint, q)
+        self.create_subscription(JointState, "joint_states", self._on_joint_state, 50)
+        self.create_subscription(Float64MultiArray, "adapter/decisions", self._on_decision, q)
+        self.create_subscription(PointStamped, "edge_sensor/offset", self._on_reading, 50)
+        self.create_subscription(DiagnosticArray, "/diagnostics", self._on_diag, 50)
+        self._last_window: JointTrajectory | None = None
+        self.create_subscription(JointTrajectory, "reference/window", self._on_window, 5)
+        self._window_pub = self.create_publisher(JointTrajectory, "reference/window", 5)
+        self.adapter = LifecycleClient(self, "adapter")
+        self._triggers = {name: self.create_client(Trigger, name)
+                          for name in ("reference_server/start", "adapter/stop", "adapter/reset")}
+        self._param_clients: dict[str, Any] = {}
+
+    # ------------------------------------------------------------------ receiving
+    def _on_setpoint(self, msg: JointTrajectory) -> None:
+        if self.recording and msg.points:
+            pt = msg.points[0]
+            self.data.setpoints.append((time.monotonic(), stamp_to_sec(msg.header.stamp),
+                                        list(pt.positions), list(pt.velocities),
+                                        list(pt.accelerations)))
+
+    def _on_joint_state(self, msg: JointState) -> None:
+        if self.recording:
+            names = list(msg.name)
+            try:
+                q = [msg.position[names.index(j)] for j in self.joints]
+            except (ValueError, IndexError):
+                return
+            self.data.joint_states.append((stamp_to_sec(msg.header.stamp), q))
+
+    def _on_decision(self, msg: Float64MultiArray) -> None:
+        if self.recording:
+            try:
+                self.data.decisions.append(decision_record.decode(np.asarray(msg.data)))
+            except decision_record.DecisionRecordError:
+                pass
+
+    def _on_reading(self, msg: PointStamped) -> None:
+        if self.recording:
+            self.data.readings.append((stamp_to_sec(msg.header.stamp), msg.point.y, msg.point.z))
+
+    def _on_diag(self, msg: DiagnosticArray) -> None:
+        for status in msg.status:
+            self.data.diagnostics[status.name] = {kv.key: kv.value for kv in status.values}
+            self.data.diag_messages[status.name] = status.message
+
+    def _on_window(self, msg: JointTrajectory) -> None:
+        self._last_window = msg
+
+    # ------------------------------------------------------------------ acting
+    def spin_for(self, seconds: float) -> None:
+        """Spin this node for a while."""
+        end = time.monotonic() + seconds
+        while time.monotonic() < end:
+            rclpy.spin_once(self, timeout_sec=min(0.05, max(0.0, end - time.monotonic())))
+
+    def wait_for(self, what: str, condition: Any, timeout: float) -> bool:
+        """Spin until ``condition()`` or ``timeout``."""
+        end = time.monotonic() + timeout
+        while time.monotonic() < end:
+            if condition():
+                return True
+            rclpy.spin_once(self, timeout_sec=0.05)
+        return bool(condition())
+
+    def trigger(self, name: str, timeout: float = 5.0) -> tuple[bool, str]:
+        """Call a std_srvs/Trigger service and wait for its answer."""
+        client = self._triggers[name]
+        if not client.wait_for_service(timeout):
+            return False, f"service {name} not available"
+        future = client.call_async(Trigger.Request())
+        if not self.wait_for(name, future.done, timeout):
+            return False, f"no answer from {name}"
+        res = future.result()
+        return bool(res.success), res.message
+
+    def set_param(self, node: str, name: str, value: bool | str, timeout: float = 5.0) -> bool:
+        """Set one bool or string parameter of ``node`` (asynchronously answered)."""
+        client = self._param_clients.get(node)
+        if client is None:
+            client = self._param_clients[node] = self.create_client(
+                SetParameters, f"{node}/set_parameters")
+        if not client.wait_for_service(timeout):
+            return False
+        if isinstance(value, bool):
+            pv = ParameterValue(type=ParameterType.PARAMETER_BOOL, bool_value=value)
+        else:
+            pv = ParameterValue(type=ParameterType.PARAMETER_STRING, string_value=value)
+        future = client.call_async(SetParameters.Request(parameters=[ParameterMsg(name=name, value=pv)]))
+        self.wait_for("set_parameters", future.done, timeout)
+        return bool(future.done() and future.result().results[0].successful)
+
+    def publish_jumped_window(self, joint: int, offset: float) -> bool:
+        """Publish the latest reference window again with one joint offset (a faulty source)."""
+        msg = self._last_window
+        if msg is None:
+            return False
+        w = msg_to_window(msg)
+        pos = w.positions.copy()
+        pos[:, joint] += offset
+        out = JointTrajectory()
+        fill_trajectory(out, w.stamp, w.names, w.times, pos, w.velocities, w.accelerations)
+        for _ in range(3):
+            self._window_pub.publish(out)
+            self.spin_for(0.01)
+        return True
+
+    def adapter_status(self) -> dict[str, str]:
+        """Latest adapter diagnostics values."""
+        return self.data.diagnostics.get("adapter", {})
+
+    def reference_status(self) -> dict[str, str]:
+        """Latest reference_server diagnostics values."""
+        return self.data.diagnostics.get("reference_server", {})
+
+    def last_mode(self) -> str:
+        """Mode of the latest decision record ('' before any)."""
+        return self.data.decisions[-1].next_mode if self.data.decisions else ""

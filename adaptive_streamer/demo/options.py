@@ -1,0 +1,61 @@
+"""Command-line options of ``adaptive-streamer demo`` and the fault-injection spec."""
+from __future__ import annotations
+
+import argparse
+from dataclasses import dataclass
+
+FAULTS = {
+    "feedback_dropout": "the edge sensor stops publishing (feedback goes stale)",
+    "reference_jump": "a reference window jumps by 0.2 rad on one joint (faulty reference source)",
+    "joint_state_stall": "the driver stops publishing joint_states",
+    "nan_policy": "the policy is swapped for one that outputs NaN during motion",
+    "slow_policy": "the policy is swapped for one that takes longer than a decision period",
+}
+
+
+class OptionError(ValueError):
+    """A demo option is malformed."""
+
+
+@dataclass(frozen=True)
+class Injection:
+    """A fault and when to inject it (seconds after the pass starts)."""
+
+    fault: str
+    at: float
+
+
+def parse_injection(spec: str) -> Injection:
+    """``FAULT@SECONDS`` -> `Injection` (the fault names are `FAULTS`)."""
+    fault, sep, when = spec.partition("@")
+    if not sep or fault not in FAULTS:
+        raise OptionError(f"--inject '{spec}': expected FAULT@SECONDS with FAULT one of "
+                          f"{sorted(FAULTS)}")
+    try:
+        at = float(when)
+    except ValueError:
+        raise OptionError(f"--inject '{spec}': '{when}' is not a number of seconds") from None
+    if not at >= 0.0:
+        raise OptionError(f"--inject '{spec}': the time must be >= 0 s")
+    return Injection(fault, at)
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    """Options of ``demo``."""
+    parser.add_argument("--duration", type=float, default=None, metavar="S",
+                        help="stop the pass after S seconds (default: the whole pass)")
+    parser.add_argument("--policy", default=None, metavar="CARD|KIND",
+                        help="policy card, or a kind: onnx (default), linear_feedback, "
+                             "tracker (reference only), hold")
+    parser.add_argument("--limits", default=None, metavar="FILE",
+                        help="joint limits YAML to run with (the reference is slowed to fit)")
+    parser.add_argument("--record", default=None, metavar="DIR",
+                        help="record every stack topic to a rosbag2 (MCAP) bag in DIR")
+    parser.add_argument("--report", default="demo_report", metavar="DIR",
+                        help="folder for the plots and summary (default: demo_report)")
+    parser.add_argument("--inject", action="append", default=[], metavar="FAULT@SECONDS",
+                        help="inject a fault: " + "; ".join(f"{k}: {v}" for k, v in FAULTS.items()))
+    parser.add_argument("--seed", type=int, default=None,
+                        help="scenario seed (panel placement, sensor noise; default: the "
+                             "scenario file's)")
+    parser.add_argument("--no-progress", action="store_true", help="no progress bar")

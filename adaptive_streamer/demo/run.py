@@ -1,0 +1,238 @@
+"""``adaptive-streamer demo``: one dispensing pass of the simulated cell over real DDS.
+
+Processes: the cell (reference_server, sim_driver, edge_sensor, sensor_bridge) in one, the
+adapter in its own (so its stream timing is not shared with the simulator's), a recorder
+with ``--record``; this process observes and operates (`DemoMonitor`). Sequence: wait for
+``joint_states``, configure and activate the adapter (it approaches the start point), start
+the reference once the adapter follows, inject the requested faults, end when the pass is
+done and the arm at rest (or on ``--duration``, or after a watchdog stop), deactivate,
+stop everything; then compute the figures, write the report and print the summary.
+"""
+from __future__ import annotations
+
+import argparse
+import math
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from ..bringup import NodeEntry, Processes
+from ..core.scenario.config import load_scenario
+from ..safety import CAUTIONS
+from .config import DemoConfig, DemoError, build_config, fault_card
+from .options import FAULTS, Injection, OptionError, parse_injection
+
+CELL_NODES = ["reference_server", "sim_driver", "edge_sensor", "sensor_bridge"]
+STARTUP_TIMEOUT = 30.0
+SETTLE = 0.5       # seconds at rest after the pass before ending
+REST_VELOCITY = 1e-4
+
+
+def run_demo(args: argparse.Namespace) -> int:
+    """Run the demo; returns 0 when the pass ran with zero limit violations."""
+    print(CAUTIONS, flush=True)
+    try:
+        injections = sorted((parse_injection(s) for s in args.inject), key=lambda i: i.at)
+    except OptionError as exc:
+        raise DemoError(str(exc)) from None
+    workdir = Path(tempfile.mkdtemp(prefix="adaptive_streamer_demo_"))
+    try:
+        cfg = build_config(args, workdir)
+        for note in cfg.notes:
+            print(f"note: {note}", flush=True)
+        for inj in injections:
+            print(f"fault to inject at +{inj.at:g} s: {inj.fault} ({FAULTS[inj.fault]})")
+            if inj.fault in ("nan_policy", "slow_policy"):
+                fault_card(inj.fault)
+        return _run(cfg, args, injections, workdir)
+    finally:
+        shutil.rmtree(workdir, ignore_errors=True)
+
+
+def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
+         workdir: Path) -> int:
+    import rclpy
+
+    from .monitor import DemoMonitor
+    params_file = str(cfg.write_params(workdir / "params.yaml"))
+    procs = Processes()
+    logs = workdir / "logs"
+    logs.mkdir()
+    rclpy.init(signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
+    joints = list(cfg.params["sim_driver"]["joints"])
+    monitor = DemoMonitor(joints)
+    bar = None
+    try:
+        for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
+            procs.start(NodeEntry(name if name != "cell" else group[0], "", {}), params_file,
+                        group=group, stdout=(logs / f"{name}.log").open("w"),
+                        stderr=subprocess.STDOUT)
+        if args.record:
+            _start_recorder(procs, args.record, workdir, logs)
+        _bring_up_adapter(monitor, procs)
+        monitor.recording = True
+        if not monitor.wait_for("following", lambda: monitor.last_mode() == "following",
+                                STARTUP_TIMEOUT):
+            raise DemoError("the adapter did not reach the start of the reference "
+                            f"(mode '{monitor.last_mode()}'): {_tail(logs / 'adapter.log')}")
+        ok, msg = monitor.trigger("reference_server/start")
+        if not ok:
+            raise DemoError(f"reference_server/start refused: {msg}")
+        t_start = monitor.get_clock().now().nanoseconds * 1e-9
+        limit = cfg.reference_duration + 5.0 if args.duration is None else float(args.duration)
+        print(f"dispensing pass: {cfg.reference_duration:.1f} s with policy {cfg.policy_label}",
+              flush=True)
+        bar = _progress(cfg.reference_duration, args.no_progress)
+        t_end = _follow_pass(monitor, procs, cfg, injections, t_start, limit, bar, logs)
+        if bar is not None:
+            bar.close()
+            bar = None
+        if monitor.adapter.state(5.0) == "active":
+            monitor.adapter.deactivate()
+        monitor.recording = False
+    finally:
+        if bar is not None:
+            bar.close()
+        procs.stop()
+        monitor.destroy_node()
+        rclpy.shutdown()
+    return _report(cfg, monitor, args, t_start, t_end)
+
+
+def _start_recorder(procs: Processes, out: str, workdir: Path, logs: Path) -> None:
+    from ..bringup import recorder_entry
+    import yaml
+    entry = recorder_entry([], out)
+    path = workdir / "recorder.yaml"
+    path.write_text(yaml.safe_dump({"recorder": {"ros__parameters": entry.params}}))
+    procs.start(entry, str(path), stdout=(logs / "recorder.log").open("w"),
+                stderr=subprocess.STDOUT)
+    print(f"recording to {Path(out).resolve()}", flush=True)
+
+
+def _bring_up_adapter(monitor, procs: Processes) -> None:
+    adapter = monitor.adapter
+    if not monitor.wait_for("joint_states", lambda: adapter.wait(0.2) and _alive(procs),
+                            STARTUP_TIMEOUT):
+        raise DemoError("the adapter's lifecycle services did not appear")
+    if not adapter.configure():
+        raise DemoError("the adapter refused to configure (see its log)")
+    deadline = time.monotonic() + STARTUP_TIMEOUT
+    while not adapter.activate():
+        if time.monotonic() > deadline or not _alive(procs):
+            raise DemoError("the adapter refused to activate (no fresh joint_states?)")
+        monitor.spin_for(0.5)
+
+
+def _alive(procs: Processes) -> bool:
+    dead = procs.dead()
+    if dead:
+        entry, code = dead[0]
+        raise DemoError(f"process {entry.kind} exited early with code {code}")
+    return True
+
+
+def _progress(total: float, disabled: bool):
+    from tqdm import tqdm
+    return tqdm(total=round(total, 1), unit="s", desc="pass", disable=disabled,
+                bar_format="{desc}: {percentage:3.0f}%|{bar}| {n:.1f}/{total:.1f} s {postfix}")
+
+
+def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, injections: list[Injection],
+                 t_start: float, limit: float, bar, logs: Path) -> float:
+    pending = list(injections)
+    rest_since = None
+    stopped_at = None
+    while True:
+        monitor.spin_for(0.05)
+        _alive(procs)
+        now = monitor.get_clock().now().nanoseconds * 1e-9
+        elapsed = now - t_start
+        while pending and elapsed >= pending[0].at:
+            _inject(monitor, pending.pop(0))
+        mode = monitor.last_mode()
+        if bar is not None:
+            bar.n = round(min(elapsed, cfg.reference_duration), 1)
+            bar.set_postfix_str(mode)
+            bar.refresh()
+        at_rest = bool(monitor.data.setpoints) and \
+            max(abs(x) for x in monitor.data.setpoints[-1][3]) < REST_VELOCITY
+        finished = monitor.reference_status().get("state") == "finished"
+        if mode in ("stopping", "stopped") and stopped_at is None:
+            stopped_at = now
+        if (finished or stopped_at is not None) and at_rest and mode != "stopping":
+            rest_since = rest_since or now
+            if now - rest_since >= SETTLE:
+                return now
+        else:
+            rest_since = None
+        if elapsed >= limit:
+            return now
+
+
+def _inject(monitor, inj: Injection) -> None:
+    print(f"\ninjecting {inj.fault} at +{inj.at:g} s: {FAULTS[inj.fault]}", flush=True)
+    if inj.fault == "feedback_dropout":
+        ok = monitor.set_param("edge_sensor", "dropout", True)
+    elif inj.fault == "joint_state_stall":
+        ok = monitor.set_param("sim_driver", "stall", True)
+    elif inj.fault == "reference_jump":
+        ok = monitor.publish_jumped_window(joint=1, offset=0.2)
+    else:
+        ok = monitor.set_param("adapter", "policy", str(fault_card(inj.fault)))
+    if not ok:
+        print(f"warning: could not inject {inj.fault}", file=sys.stderr)
+
+
+def _reference_only(cfg: DemoConfig) -> tuple[np.ndarray, np.ndarray]:
+    """(times from the pass start, lateral error [m]) of the same pass without adaptation,
+    by the offline closed loop (the same core code as the live adapter, no DDS)."""
+    from ..core.scenario.closed_loop import run_closed_loop
+    from .config import REFERENCE_ONLY_CARD
+    from ..share import demo_file
+    res = run_closed_loop(demo_file(REFERENCE_ONLY_CARD), seed=cfg.seed, limits=cfg.limits_file)
+    return res.pass_times, res.pass_lateral_error
+
+
+def _report(cfg: DemoConfig, monitor, args: argparse.Namespace, t_start: float,
+            t_end: float) -> int:
+    from .report import plot_deviation, plot_joints, plot_lateral, plot_timing, write_summary
+    from .summary import Series, summarise
+    from ..core.scenario.metrics import lateral_error
+
+    series = Series.of(monitor.data, len(cfg.limits))
+    scenario = load_scenario(cfg.params["edge_sensor"]["scenario"])
+    panel = scenario.panel(cfg.seed)
+    t_ref, e_ref = _reference_only(cfg)
+    window = (t_start, min(t_end, t_start + cfg.reference_duration))
+    summary = summarise(series, cfg.limits, panel, cfg.stream_rate, window, e_ref,
+                        cfg.policy_label, cfg.seed, monitor.adapter_status(), cfg.notes)
+    out = Path(args.report)
+    out.mkdir(parents=True, exist_ok=True)
+    wd = cfg.params["adapter"].get("watchdog", {})
+    plots = plot_joints(series, cfg.limits, out, t_start)
+    plots.append(plot_deviation(series, (float(wd.get("deviation_joint", math.nan)),
+                                         float(wd.get("deviation_norm", math.nan))), out, t_start))
+    in_pass = (series.js_t >= window[0]) & (series.js_t <= window[1])
+    plots.append(plot_lateral(series.js_t[in_pass] - t_start,
+                              lateral_error(series.js_q[in_pass], panel) if in_pass.any()
+                              else np.zeros(0), t_ref, e_ref, out))
+    plots.append(plot_timing(series, cfg.stream_rate, out))
+    md, html_path = write_summary(summary, cfg.limits, plots, out, CAUTIONS)
+    from .summary import format_summary
+    print()
+    print(format_summary(summary, cfg.limits))
+    print(f"report: {md} ({html_path.name}, {len(plots)} plots)")
+    return 0 if summary.stream.total_violations == 0 else 1
+
+
+def _tail(path: Path, lines: int = 5) -> str:
+    try:
+        return " | ".join(path.read_text().strip().splitlines()[-lines:])
+    except OSError:
+        return ""

@@ -1,0 +1,148 @@
+"""Figures of a demo run, from what the monitor recorded (ROS-free)."""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..core.cycle import Decision
+from ..core.limits import JointLimits
+from ..core.scenario.metrics import lateral_error
+from ..core.scenario.panel import Panel
+from ..core.stream_metrics import StreamReport, check_stream, period_stats
+from .monitor import Recorded
+
+
+@dataclass
+class ErrorFigures:
+    """Lateral placement error over the pass [mm]."""
+
+    rms: float
+    max: float
+    samples: int
+
+    @staticmethod
+    def of(err_m: np.ndarray) -> "ErrorFigures":
+        """Figures of an error series in metres."""
+        if err_m.size == 0:
+            return ErrorFigures(math.nan, math.nan, 0)
+        e = np.abs(err_m) * 1e3
+        return ErrorFigures(float(np.sqrt(np.mean(e * e))), float(e.max()), int(e.size))
+
+
+@dataclass
+class DemoSummary:
+    """What the demo prints and writes."""
+
+    policy: str
+    seed: int
+    adapted: ErrorFigures
+    reference_only: ErrorFigures
+    stream: StreamReport
+    period: dict[str, float]
+    decision_ms: dict[str, float]
+    events: list[tuple[float, str, str]]
+    notes: list[str] = field(default_factory=list)
+    adapter_diag: dict[str, str] = field(default_factory=dict)
+    pass_window: tuple[float, float] = (math.nan, math.nan)
+
+    @property
+    def improvement(self) -> float:
+        """Adapted RMS over reference-only RMS (lower is better)."""
+        return self.adapted.rms / self.reference_only.rms if self.reference_only.rms else math.nan
+
+
+@dataclass
+class Series:
+    """The recorded data as arrays."""
+
+    sp_arrival: np.ndarray
+    sp_t: np.ndarray
+    sp_p: np.ndarray
+    sp_v: np.ndarray
+    sp_a: np.ndarray
+    js_t: np.ndarray
+    js_q: np.ndarray
+    decisions: list[Decision]
+
+    @staticmethod
+    def of(data: Recorded, n: int) -> "Series":
+        """Arrays from the monitor's lists (sorted by stamp)."""
+        sp = sorted(data.setpoints, key=lambda s: s[1])
+        js = sorted(data.joint_states, key=lambda s: s[0])
+
+        def arr(rows: list, k: int) -> np.ndarray:
+            return np.array([r[k] for r in rows], float).reshape(len(rows), -1) if rows \
+                else np.zeros((0, n))
+        return Series(np.array([s[0] for s in sp]), np.array([s[1] for s in sp]),
+                      arr(sp, 2), arr(sp, 3), arr(sp, 4),
+                      np.array([j[0] for j in js]), arr(js, 1), list(data.decisions))
+
+
+def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
+              pass_window: tuple[float, float], reference_only_err: np.ndarray,
+              policy: str, seed: int, adapter_diag: dict[str, str],
+              notes: list[str]) -> DemoSummary:
+    """The demo's figures."""
+    t0, t1 = pass_window
+    in_pass = (series.js_t >= t0) & (series.js_t <= t1)
+    adapted = ErrorFigures.of(lateral_error(series.js_q[in_pass], panel)) if in_pass.any() \
+        else ErrorFigures.of(np.zeros(0))
+    stream = check_stream(series.sp_t, series.sp_p, series.sp_v, series.sp_a, limits, rate)
+    pt = np.array([d.policy_time for d in series.decisions if d.mode == "following"]) * 1e3
+    decision_ms = {"policy_p50": _pct(pt, 50), "policy_p99": _pct(pt, 99),
+                   "cycle_p50": _num(adapter_diag.get("decision_ms_p50")),
+                   "cycle_p99": _num(adapter_diag.get("decision_ms_p99"))}
+    events = [(d.time, d.verdict, d.message) for d in series.decisions if d.verdict != "ok"]
+    if adapter_diag.get("trip", "none") != "none" and not events:
+        events.append((_num(adapter_diag.get("trip_time")), adapter_diag["trip"],
+                       adapter_diag.get("trip_message", "")))
+    return DemoSummary(policy, seed, adapted, ErrorFigures.of(reference_only_err), stream,
+                       period_stats(series.sp_arrival, rate), decision_ms, events, notes,
+                       adapter_diag, pass_window)
+
+
+def _pct(x: np.ndarray, q: float) -> float:
+    return float(np.percentile(x, q)) if x.size else math.nan
+
+
+def _num(text: str | None) -> float:
+    try:
+        return float(text) if text is not None else math.nan
+    except ValueError:
+        return math.nan
+
+
+def format_summary(s: DemoSummary, limits: JointLimits) -> str:
+    """The plain-text summary printed at the end of the demo."""
+    lines = [f"policy: {s.policy}   seed: {s.seed}"]
+    lines.append(f"lateral placement error  adapted: RMS {s.adapted.rms:.2f} mm, max "
+                 f"{s.adapted.max:.2f} mm   reference only: RMS {s.reference_only.rms:.2f} mm, "
+                 f"max {s.reference_only.max:.2f} mm   (adapted/reference-only RMS "
+                 f"{s.improvement:.2f})")
+    st = s.stream
+    lines.append(f"setpoints checked: {st.samples} over {st.duration:.1f} s, limit or "
+                 f"consistency violations: {st.total_violations}, skipped ticks: "
+                 f"{st.skipped_ticks}")
+    lines.append("limit usage (peak % of limit):")
+    lines.append("  joint     " + "".join(f"{n:>8s}" for n in limits.names))
+    for label, arr in (("|v|", st.peak_velocity), ("|a|", st.peak_acceleration),
+                       ("|j|", st.peak_jerk)):
+        if arr is not None:
+            lines.append(f"  {label:8s}  " + "".join(f"{100 * x:7.1f}%" for x in arr))
+    d = s.decision_ms
+    lines.append(f"decision compute: policy p50 {d['policy_p50']:.3f} ms, p99 "
+                 f"{d['policy_p99']:.3f} ms; whole cycle p50 {d['cycle_p50']:.3f} ms, p99 "
+                 f"{d['cycle_p99']:.3f} ms")
+    lines.append(f"stream period error (arrival): p50 {s.period['p50_ms']:.3f} ms, p99 "
+                 f"{s.period['p99_ms']:.3f} ms, max {s.period['max_ms']:.3f} ms")
+    if s.events:
+        lines.append("watchdog events:")
+        for t, kind, msg in s.events:
+            lines.append(f"  {kind} at {t - s.pass_window[0]:+.2f} s from the pass start: {msg}")
+    else:
+        lines.append("watchdog events: none")
+    for note in s.notes:
+        lines.append(f"note: {note}")
+    return "\n".join(lines)
