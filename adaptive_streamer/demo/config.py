@@ -12,6 +12,7 @@ import yaml
 from ..core.feasibility import FeasibilityError, ensure_feasible
 from ..core.limits import JointLimits, LimitsError
 from ..core.policies import PolicyError, load_card
+from ..core.reference import ReferenceTrajectory
 from ..core.reference_files import ReferenceFileError, load_reference
 from ..core.scenario.config import load_scenario
 from ..share import demo_file, expand
@@ -38,6 +39,7 @@ class DemoConfig:
     limits: JointLimits
     seed: int
     reference_duration: float         # seconds, after any slow-down
+    reference: ReferenceTrajectory    # the pass as the reference server will play it
     stream_rate: float
     decision_period: float
     notes: list[str] = field(default_factory=list)
@@ -116,8 +118,8 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     ref["limits_file"] = str(limits_file)
     try:
         reference = load_reference(ref["reference_file"], limits=limits)
-        _, factor, report = ensure_feasible(reference, limits, slow_down=True,
-                                            fraction=SLOW_DOWN_FRACTION)
+        played, factor, report = ensure_feasible(reference, limits, slow_down=True,
+                                                 fraction=SLOW_DOWN_FRACTION)
     except (ReferenceFileError, FeasibilityError, LimitsError) as exc:
         raise DemoError(f"the demo reference does not fit the limits: {exc}") from None
     if factor > 1.0:
@@ -131,7 +133,7 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     params["edge_sensor"]["seed"] = seed
     params["sim_driver"]["seed"] = seed
     return DemoConfig(params, card, label, limits_file, limits, seed,
-                      reference.duration * factor, rate, period, notes)
+                      played.duration, played, rate, period, notes)
 
 
 def fault_card(fault: str) -> Path:

@@ -4,6 +4,7 @@ are computed in `adaptive_streamer.demo.summary`.
 """
 from __future__ import annotations
 
+import threading
 import time
 from dataclasses import dataclass, field
 from typing import Any
@@ -15,6 +16,7 @@ from geometry_msgs.msg import PointStamped
 from rcl_interfaces.msg import Parameter as ParameterMsg
 from rcl_interfaces.msg import ParameterType, ParameterValue
 from rcl_interfaces.srv import SetParameters
+from rclpy.executors import SingleThreadedExecutor
 from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
@@ -48,16 +50,16 @@ class DemoMonitor(Node):
         self.joints = joints
         self.data = Recorded()
         self.recording = False
-        q = reliable_qos(200)
+        q = reliable_qos(1000)
         self.create_subscription(JointTrajectory, "setpoints", self._on_setpoint, q)
-        self.create_subscription(JointState, "joint_states", self._on_joint_state, 50)
+        self.create_subscription(JointState, "joint_states", self._on_joint_state, q)
         self.create_subscription(Float64MultiArray, "adapter/decisions", self._on_decision, q)
         self.create_subscription(PointStamped, "edge_sensor/offset", self._on_reading, 50)
         self.create_subscription(DiagnosticArray, "/diagnostics", self._on_diag, 50)
         self._last_window: JointTrajectory | None = None
         self.create_subscription(JointTrajectory, "reference/window", self._on_window, 5)
         self._window_pub = self.create_publisher(JointTrajectory, "reference/window", 5)
-        self.adapter = LifecycleClient(self, "adapter")
+        self.adapter = LifecycleClient(self, "adapter", spun_elsewhere=True)
         self._triggers = {name: self.create_client(Trigger, name)
                           for name in ("reference_server/start", "adapter/stop", "adapter/reset")}
         self._param_clients: dict[str, Any] = {}
@@ -99,19 +101,31 @@ class DemoMonitor(Node):
         self._last_window = msg
 
     # ------------------------------------------------------------------ acting
-    def spin_for(self, seconds: float) -> None:
-        """Spin this node for a while."""
-        end = time.monotonic() + seconds
-        while time.monotonic() < end:
-            rclpy.spin_once(self, timeout_sec=min(0.05, max(0.0, end - time.monotonic())))
+    def start(self) -> None:
+        """Spin this node in a background thread (every callback, as messages arrive)."""
+        self._executor = SingleThreadedExecutor()
+        self._executor.add_node(self)
+        self._thread = threading.Thread(target=self._executor.spin, daemon=True,
+                                        name="demo-monitor")
+        self._thread.start()
 
-    def wait_for(self, what: str, condition: Any, timeout: float) -> bool:
-        """Spin until ``condition()`` or ``timeout``."""
+    def stop(self) -> None:
+        """Stop the background executor."""
+        self._executor.shutdown(timeout_sec=2.0)
+
+    @staticmethod
+    def spin_for(seconds: float) -> None:
+        """Let the background executor work for a while."""
+        time.sleep(seconds)
+
+    @staticmethod
+    def wait_for(what: str, condition: Any, timeout: float) -> bool:  # noqa: ARG004
+        """Wait until ``condition()`` or ``timeout``."""
         end = time.monotonic() + timeout
         while time.monotonic() < end:
             if condition():
                 return True
-            rclpy.spin_once(self, timeout_sec=0.05)
+            time.sleep(0.02)
         return bool(condition())
 
     def trigger(self, name: str, timeout: float = 5.0) -> tuple[bool, str]:

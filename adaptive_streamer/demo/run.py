@@ -66,6 +66,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
     rclpy.init(signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
     joints = list(cfg.params["sim_driver"]["joints"])
     monitor = DemoMonitor(joints)
+    monitor.start()
     bar = None
     try:
         for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
@@ -99,6 +100,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
         if bar is not None:
             bar.close()
         procs.stop()
+        monitor.stop()
         monitor.destroy_node()
         rclpy.shutdown()
     return _report(cfg, monitor, args, t_start, t_end)
@@ -190,12 +192,11 @@ def _inject(monitor, inj: Injection) -> None:
 
 
 def _reference_only(cfg: DemoConfig) -> tuple[np.ndarray, np.ndarray]:
-    """(times from the pass start, lateral error [m]) of the same pass without adaptation,
-    by the offline closed loop (the same core code as the live adapter, no DDS)."""
+    """(times from the pass start, lateral error [m]) of the same pass without adaptation
+    (the tracker), by the offline closed loop: the same core code as the live adapter, the
+    same seed, limits and reference, no DDS."""
     from ..core.scenario.closed_loop import run_closed_loop
-    from .config import REFERENCE_ONLY_CARD
-    from ..share import demo_file
-    res = run_closed_loop(demo_file(REFERENCE_ONLY_CARD), seed=cfg.seed, limits=cfg.limits_file)
+    res = run_closed_loop("tracker", seed=cfg.seed, limits=cfg.limits, reference=cfg.reference)
     return res.pass_times, res.pass_lateral_error
 
 

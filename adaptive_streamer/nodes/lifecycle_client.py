@@ -14,8 +14,9 @@ Example (any rclpy node can host the clients)::
     ...
     adapter.deactivate()                             # controlled stop, returns at rest
 
-Calls spin ``node`` until the answer arrives (or ``timeout``); do not call them from a
-callback of the same executor.
+Calls spin ``node`` until the answer arrives (or ``timeout``); with ``spun_elsewhere=True``
+(the node is spun by an executor in another thread) they only wait. Do not call them from a
+callback of the executor that spins ``node``.
 """
 from __future__ import annotations
 
@@ -40,8 +41,9 @@ class LifecycleClientError(RuntimeError):
 class LifecycleClient:
     """Clients for ``<target>/change_state`` and ``<target>/get_state``."""
 
-    def __init__(self, node: Node, target: str) -> None:
+    def __init__(self, node: Node, target: str, spun_elsewhere: bool = False) -> None:
         self._node = node
+        self._spun_elsewhere = spun_elsewhere
         self.target = target.rstrip("/")
         self._change = node.create_client(ChangeState, f"{self.target}/change_state")
         self._get = node.create_client(GetState, f"{self.target}/get_state")
@@ -89,5 +91,8 @@ class LifecycleClient:
             if resend and now - sent > 1.0:
                 future = client.call_async(request)
                 sent = now
-            rclpy.spin_once(self._node, timeout_sec=0.05)
+            if self._spun_elsewhere:
+                time.sleep(0.01)
+            else:
+                rclpy.spin_once(self._node, timeout_sec=0.05)
         return future.result()
