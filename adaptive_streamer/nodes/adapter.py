@@ -340,9 +340,14 @@ class AdapterNode(LifecycleNode):
             return True
         session.cycle.request_stop()
         deadline = time.monotonic() + float(self._param("stop_timeout"))
+        rest_from: float | None = None  # the plan is at rest from this time on
         while time.monotonic() < deadline:
             if session.mode == "stopped" and session.cycle.at_rest:
-                return True
+                if rest_from is None:
+                    rest_from = session.next_decision_time
+                ticks = self._ticks  # the plan runs ahead: wait until the stream got there
+                if ticks is None or ticks.time_of(ticks.last_index) >= rest_from - 1e-9:
+                    return True
             self._on_decide()  # this may run in the executor thread: decide here meanwhile
             time.sleep(0.005)
         self.get_logger().error("stop_timeout: deactivating before the plan reached rest")

@@ -1,0 +1,169 @@
+"""The adapter lifecycle node over real rclpy/DDS with the simulated cell.
+
+Configure refusals, activation refused while the arm moves or joint_states is stale,
+approach then hand-over to the policy, limit_scale changes mid-run, deactivation mid-motion
+(a controlled stop while streaming; publishers deactivated at rest). Every streamed sample
+is checked by an independent subscriber (`adapter_harness.check_stream`: finite
+differences on the nominal stamps against the streamed derivatives and the limits).
+"""
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import pytest
+import rclpy
+from lifecycle_msgs.msg import Transition
+from std_msgs.msg import Float64MultiArray
+
+import adapter_harness as h
+
+pytestmark = pytest.mark.ros
+
+
+@pytest.fixture(scope="module")
+def cell(tmp_path_factory):
+    rclpy.init()
+    folder = tmp_path_factory.mktemp("adapter_node")
+    tracker = h.write_card(folder, "tracker", "tracker")
+    # generous deviation thresholds: the limit_scale test makes the plan lag on purpose
+    c = h.Cell(folder, tracker, watchdog__deviation_joint=0.5, watchdog__deviation_norm=1.0)
+    c.wait_cell()
+    yield c
+    c.close()
+    rclpy.shutdown()
+
+
+def adapter_logs(cell: h.Cell, since: int) -> list[str]:
+    return [m for name, m in cell.probe.logs[since:] if name == "adapter"]
+
+
+def test_configure_refuses_bad_files_and_names_them(cell):
+    assert cell.state() == "unconfigured"
+    good_limits = str(h.LIMITS_FILE)
+    n_logs = len(cell.probe.logs)
+    assert all(r.successful for r in cell.set_params(limits_file="/nonexistent/limits.yaml"))
+    assert not cell.transition(Transition.TRANSITION_CONFIGURE)
+    assert cell.state() == "unconfigured"
+    logs = adapter_logs(cell, n_logs)
+    assert any("configure refused" in m and "/nonexistent/limits.yaml" in m for m in logs), logs
+    # a card made for other joints: refused, the message names the card and the joints
+    other = h.REPO / "test" / "data" / "policies" / "hold3.card.yaml"
+    good_policy = cell.get_param("policy")
+    cell.set_params(limits_file=good_limits, policy=str(other))
+    n_logs = len(cell.probe.logs)
+    assert not cell.transition(Transition.TRANSITION_CONFIGURE)
+    logs = adapter_logs(cell, n_logs)
+    assert any("hold3.card.yaml" in m and "joints" in m for m in logs), logs
+    # a policy path that does not exist is refused at once (the parameter keeps its value)
+    res = cell.set_params(policy="/nonexistent/card.yaml")[0]
+    assert not res.successful and "/nonexistent/card.yaml" in res.reason
+    cell.set_params(policy=good_policy)
+    assert cell.transition(Transition.TRANSITION_CONFIGURE)
+    assert cell.state() == "inactive"
+
+
+def test_activation_refused_while_joint_states_is_stale(cell):
+    assert cell.state() == "inactive"
+    cell.probe.js_block = True
+    try:
+        time.sleep(0.5)  # older than watchdog.joint_states_timeout (0.3 s here)
+        n_logs = len(cell.probe.logs)
+        assert not cell.transition(Transition.TRANSITION_ACTIVATE)
+        assert cell.state() == "inactive"
+        logs = adapter_logs(cell, n_logs)
+        assert any("activate refused" in m and "joint_states" in m for m in logs), logs
+        assert not cell.probe.setpoints, "streamed while inactive"
+    finally:
+        cell.probe.js_block = False
+
+
+def test_activation_refused_while_the_arm_moves(cell):
+    # move the simulated arm directly (the adapter's publishers are inactive): j2 ramps away
+    msg = Float64MultiArray()
+    start = h.P0.copy()
+    t0 = time.monotonic()
+    refused = None
+    n_logs = len(cell.probe.logs)
+    while time.monotonic() - t0 < 3.0:
+        s = time.monotonic() - t0
+        target = start.copy()
+        target[1] -= 0.25 * min(s, 1.6)   # 0.25 rad/s for 1.6 s
+        msg.data = target.tolist()
+        cell.probe.driver_pub.publish(msg)
+        if refused is None and s > 0.6:
+            refused = cell.transition(Transition.TRANSITION_ACTIVATE)
+        time.sleep(0.004)
+    assert refused is False
+    logs = adapter_logs(cell, n_logs)
+    assert any("activate refused" in m and "'j2' is moving" in m for m in logs), logs
+    assert cell.state() == "inactive"
+    assert not cell.probe.setpoints, "streamed while inactive"
+
+
+def test_activation_approaches_then_hands_over_to_the_policy(cell):
+    # the arm now rests about 0.4 rad from the reference start on j2: approach first
+    time.sleep(0.3)  # the driver timed out and holds
+    assert cell.transition(Transition.TRANSITION_ACTIVATE)
+    cell.wait_mode("following", timeout=30.0)
+    approach = list(cell.probe.setpoints)
+    assert approach, "nothing streamed"
+    # the approach runs at approach_scale (0.3) of the velocity/acceleration/jerk limits
+    check = h.check_stream(approach, scale=0.3)
+    assert check.ok, check.describe()
+    assert np.abs(approach[0].position - h.P0)[1] > 0.3           # it started away ...
+    assert np.allclose(approach[-1].position, h.P0, atol=5e-3)   # ... and reached the reference
+    cell.start_reference()
+    time.sleep(2.5)
+    check = h.check_stream(cell.probe.setpoints)
+    assert check.ok, check.describe()
+    assert check.peak_ratio["velocity"] > 0.05, "the reference did not move the arm"
+    assert check.off_grid == 0
+    print("follow:", check.describe())
+    # the driver output carries exactly the streamed positions
+    streamed = {tuple(s.position) for s in cell.probe.setpoints}
+    outputs = cell.probe.driver_positions[-200:]
+    assert outputs and all(o in streamed for o in outputs)
+
+
+def test_limit_scale_takes_effect_smoothly_and_is_respected(cell):
+    assert cell.mode() == "following"
+    res = cell.set_params(limit_scale=1.5)[0]
+    assert not res.successful and "limit_scale" in res.reason
+    t_set = cell.now()
+    assert cell.set_params(limit_scale=0.1)[0].successful
+    cell.wait_diag(lambda v: v.get("limit_scale") == "0.1", "limit_scale 0.1 on /diagnostics")
+    time.sleep(2.0)
+    t_back = cell.now()
+    assert cell.set_params(limit_scale=1.0)[0].successful
+    time.sleep(1.0)
+    everything = h.check_stream(cell.samples_since(t_set - 0.5))
+    assert everything.ok, everything.describe()
+    # from one full stop after the change on, the scaled limits hold (a stop from the
+    # hardware limits takes V/A + A/J < 0.5 s for these limits)
+    scaled = [s for s in cell.samples_since(t_set + 0.6) if s.stamp < t_back]
+    check = h.check_stream(scaled, scale=0.1)
+    assert check.ok, check.describe()
+    assert check.peak_ratio["velocity"] > 0.9, "the scaled limit never bound: test too weak"
+    print("scaled:", check.describe())
+    assert cell.mode() == "following"
+
+
+def test_deactivate_mid_motion_stops_smoothly_then_deactivates_publishers(cell):
+    assert cell.mode() == "following"
+    fast = [s for s in cell.probe.setpoints[-25:]]
+    assert max(np.abs(s.velocity).max() for s in fast) > 0.05, "not moving"
+    t_req = cell.now()
+    assert cell.transition(Transition.TRANSITION_DEACTIVATE)
+    assert cell.state() == "inactive"
+    count, outputs = len(cell.probe.setpoints), len(cell.probe.driver_positions)
+    time.sleep(0.5)
+    assert len(cell.probe.setpoints) == count, "setpoints after deactivation"
+    assert len(cell.probe.driver_positions) == outputs, "driver output after deactivation"
+    stop = cell.samples_since(t_req - 0.2)
+    check = h.check_stream(stop)
+    assert check.ok, check.describe()
+    # the last setpoint (and the driver's last command) is at rest
+    assert h.at_rest(stop[-1:]), (stop[-1].velocity, stop[-1].acceleration)
+    assert cell.probe.driver_positions[-1] == tuple(stop[-1].position)
+    cell.wait_diag(lambda v: v.get("status") == "inactive", "inactive on /diagnostics")
