@@ -4,7 +4,7 @@ What runs, and how it mirrors the live nodes (all times on one simulated clock, 
 microseconds, so the run is reproducible bit for bit for a given seed):
 
 * **reference_server**: a `Playback` of the demo reference publishes a `Window` of
-  ``horizon`` points every decision period, ``window_phase`` periods after the adapter's
+  ``window_points`` points every decision period, ``window_phase`` periods after the adapter's
   decision instants (the two timers are not synchronised live); it is started at
   ``start_delay`` (before that the window holds the first point at rest).
 * **adapter**: one `StreamingSession` (policy + limit stage + watchdog + guard). The stream
@@ -25,8 +25,8 @@ microseconds, so the run is reproducible bit for bit for a given seed):
 
 At each driver tick the order is: driver tick, sensor tick, bridge staleness check,
 reference window, stream tick and decision. The task metric is `lateral_error` of the
-*measured* joints (what the live demo reads from ``joint_states``), reported over the
-*bead*: the driver ticks at which the reference is moving.
+*measured* joints (what the live demo reads from ``joint_states``) over the *pass*: from the
+reference start for the reference's duration, as the live demo reports it.
 
 `run_closed_loop` returns a `ClosedLoopResult` (arrays and a `ClosedLoopSummary`).
 """
@@ -41,6 +41,7 @@ import numpy as np
 
 from ..alignment import align
 from ..cycle import CycleConfig, Decision
+from ..feasibility import ensure_feasible
 from ..feedback import FeatureTable, FeedbackParser, FilterSpec, InputSpec, Verdict
 from ..limits import JointLimits
 from ..playback import Playback
@@ -61,7 +62,6 @@ from .panel import Panel
 
 EDGE_FEATURES = ("edge_offset", "edge_angle")
 """Feature names of the demo's line sensor in the feedback vector (offset [m], angle [rad])."""
-BEAD_VELOCITY = 1e-6  # rad/s; the reference counts as moving above this on any joint
 _US = 1_000_000
 
 
@@ -73,17 +73,25 @@ class ClosedLoopError(ValueError):
 class CellSettings:
     """Timing and node settings of the simulated cell (defaults: the demo's).
 
-    ``plant`` is the sim_driver's plant (its ``dt`` is replaced by ``1 / driver_rate``);
-    ``edge_filter`` and ``edge_max_age`` are the sensor_bridge's settings for the edge
-    input; ``watchdog`` the adapter's thresholds; ``settle`` the time simulated after the
+    ``horizon`` is the adapter's (reference points per decision), ``window_points`` the
+    reference_server's (points per published window); ``start_delay`` is when the
+    reference starts (the live demo starts it as soon as the adapter follows);
+    ``slow_down`` and ``limit_fraction`` are the reference_server's (an infeasible
+    reference is refused, or slowed down to that fraction of the limits); ``plant`` is the
+    sim_driver's plant (its ``dt`` is replaced by ``1 / driver_rate``); ``edge_filter`` and
+    ``edge_max_age`` are the sensor_bridge's settings for the edge input; ``watchdog`` the
+    adapter's thresholds; ``settle`` the time simulated after the
     reference ends when no duration is given.
     """
 
     decision_period: float = 0.05
     horizon: int = 10
+    window_points: int = 12
     stream_rate: float = 250.0
     driver_rate: float = 250.0
-    start_delay: float = 1.0
+    start_delay: float = 0.2
+    slow_down: bool = False
+    limit_fraction: float = 0.8
     override_ramp_time: float = 1.0
     window_phase: float = 0.5
     settle: float = 1.0
@@ -123,8 +131,8 @@ class LimitUsage:
 class ClosedLoopSummary:
     """The figures of one run (lengths in metres, angles in radians)."""
 
-    lateral_rms: float          # over the bead
-    lateral_max: float          # max |error| over the bead
+    lateral_rms: float          # over the pass
+    lateral_max: float          # max |error| over the pass
     limit_usage: LimitUsage
     deviation_joint_max: float  # largest planned deviation from the reference, one joint
     deviation_norm_max: float   # largest planned deviation norm
@@ -142,7 +150,10 @@ class ClosedLoopResult:
     Stream grid (``times``, N): commanded position/velocity/acceleration (N, n).
     Driver grid (``measured_times``, M): measured and true joint positions (M, n), the
     reference at those times (M, n) and its velocity (M, n), the lateral error of the
-    measured joints (M,) and the bead mask (M,). ``decisions`` are the committed decisions
+    measured joints (M,). The pass starts at ``pass_start``; ``in_pass`` (M,) marks the
+    driver ticks within ``[pass_start, pass_start + reference duration]`` and
+    `pass_times` / `pass_lateral_error` are those ticks (times from the pass start) and
+    their errors. ``decisions`` are the committed decisions
     the session returned; ``feedback`` is what each of them saw: (D, f) feature values
     (NaN where invalid or absent).
     """
@@ -158,11 +169,22 @@ class ClosedLoopResult:
     reference: np.ndarray
     reference_velocity: np.ndarray
     lateral: np.ndarray
-    bead: np.ndarray
+    pass_start: float
+    in_pass: np.ndarray
     decisions: list[Decision]
     feedback: np.ndarray
     trips: list[Trip]
     summary: ClosedLoopSummary
+
+    @property
+    def pass_times(self) -> np.ndarray:
+        """Driver tick times within the pass, from the pass start [s]."""
+        return self.measured_times[self.in_pass] - self.pass_start
+
+    @property
+    def pass_lateral_error(self) -> np.ndarray:
+        """Lateral error [m] of the measured joints at `pass_times`."""
+        return self.lateral[self.in_pass]
 
 
 def demo_file(name: str) -> Path:
@@ -199,7 +221,8 @@ def approach_policy(running: RunningConfig, bandwidth: float) -> Policy:
     return policy_for_kind("tracker", running, kp=(w / 2) ** 2, kd=w)
 
 
-def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int, duration: float | None = None,
+def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int,
+                    duration: float | None = None,
                     limits: JointLimits | str | Path | None = None, *,
                     settings: CellSettings | None = None, scenario: Scenario | None = None,
                     reference: ReferenceTrajectory | str | Path | None = None,
@@ -227,6 +250,8 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int, duratio
         limits = JointLimits.from_file(limits or demo_file("limits.yaml"))
     if reference is None or isinstance(reference, (str, Path)):
         reference = load_reference(reference or demo_file("reference.csv"), limits=limits)
+    reference, _, _ = ensure_feasible(reference, limits, slow_down=cfg.slow_down,
+                                      fraction=cfg.limit_fraction)
     if reference.names != limits.names:
         raise ClosedLoopError(f"reference joints {list(reference.names)} differ from the "
                               f"limits' joints {list(limits.names)}")
@@ -253,7 +278,7 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int, duratio
                     approach_tolerance=cfg.approach_tolerance,
                     approach_bandwidth=cfg.approach_bandwidth),
         cfg.watchdog)
-    playback = Playback(reference, period, cfg.horizon, override=1.0,
+    playback = Playback(reference, period, cfg.window_points, override=1.0,
                         ramp_time=cfg.override_ramp_time)
     q0 = (np.asarray(initial_positions, float) if initial_positions is not None
           else reference.positions[0].copy())
@@ -269,11 +294,11 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int, duratio
     js = (0.0, 0.0, first.position)          # (received, stamp, positions)
     sampled_stamp: float | None = None
     window_rx = (window_phase_us - period_us) / _US   # the server was up before the adapter
-    window: Window | None = playback.window(window_rx)
+    window = playback.window(window_rx)
     fb_msg: tuple[tuple[str, ...], np.ndarray, float] | None = None
     valid_since: float | None = None
     last_fresh = table.fresh(0.0)
-    started = False
+    pass_start = math.nan
     segment = -1
 
     m_t, m_q, m_true, r_p, r_v = [], [], [], [], []
@@ -316,9 +341,9 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int, duratio
         if us % stale_us == 0 and not np.array_equal(table.fresh(t), last_fresh):
             publish_feedback(t)
         if (us - window_phase_us) % period_us == 0:
-            if not started and t >= cfg.start_delay - 1e-9:
+            if math.isnan(pass_start) and t >= cfg.start_delay - 1e-9:
                 playback.start(t)
-                started = True
+                pass_start = t
             window, window_rx = playback.window(t), t
         if us % stream_us == 0:
             sp, _ = session.sample(t)
@@ -349,12 +374,13 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int, duratio
     measured = np.array(m_q)
     ref_v = np.array(r_v)
     lateral = lateral_error(measured, panel)
-    bead = np.any(np.abs(ref_v) > BEAD_VELOCITY, axis=1)
     mt = np.array(m_t)
+    in_pass = (mt >= pass_start - 1e-9) & (mt <= pass_start + reference.duration + 1e-9)
     summary = _summarise(session, limits, commanded, np.array(s_j), mt, measured, lateral,
-                         bead, decisions, sensor)
+                         in_pass, decisions, sensor)
     return ClosedLoopResult(seed, pol.card.name, panel, times, commanded, mt, measured,
-                            np.array(m_true), np.array(r_p), ref_v, lateral, bead, decisions,
+                            np.array(m_true), np.array(r_p), ref_v, lateral, pass_start,
+                            in_pass, decisions,
                             np.array(seen).reshape(len(seen), len(running.features)),
                             list(session.watchdog.events), summary)
 
@@ -371,7 +397,7 @@ def limit_usage(limits: JointLimits, commanded: MotionState, jerk: np.ndarray) -
 
 def _summarise(session: StreamingSession, limits: JointLimits, commanded: MotionState,
                jerk: np.ndarray, measured_times: np.ndarray, measured: np.ndarray,
-               lateral: np.ndarray, bead: np.ndarray, decisions: list[Decision],
+               lateral: np.ndarray, in_pass: np.ndarray, decisions: list[Decision],
                sensor: LineSensor) -> ClosedLoopSummary:
     latency = session.watchdog.config.command_latency
     follow = 0.0
@@ -382,10 +408,10 @@ def _summarise(session: StreamingSession, limits: JointLimits, commanded: Motion
     dev = np.array([(d.deviation_max, d.deviation_norm) for d in decisions
                     if d.mode == "following" and math.isfinite(d.deviation_max)])
     dev_joint, dev_norm = (dev.max(axis=0) if dev.size else (0.0, 0.0))
-    on_bead = lateral[bead]
+    on_pass = lateral[in_pass]
     return ClosedLoopSummary(
-        lateral_rms=float(np.sqrt(np.mean(on_bead ** 2))) if on_bead.size else math.nan,
-        lateral_max=float(np.max(np.abs(on_bead))) if on_bead.size else math.nan,
+        lateral_rms=float(np.sqrt(np.mean(on_pass ** 2))) if on_pass.size else math.nan,
+        lateral_max=float(np.max(np.abs(on_pass))) if on_pass.size else math.nan,
         limit_usage=limit_usage(limits, commanded, jerk),
         deviation_joint_max=float(dev_joint), deviation_norm_max=float(dev_norm),
         following_error_max=follow,

@@ -1,0 +1,224 @@
+#!/usr/bin/env python3
+"""Build the demo's fault-injection policies (``config/demo/faults/``) from the edge model.
+
+Both wrap the learned edge follower (``config/demo/policy_edge.onnx``, built by
+``scripts/make_demo_policy.py``) and use its card's observation, so they load against the
+demo's adapter like the real policy and pass the load-time test inference (at rest at the
+centre of the ranges, features 0; `adaptive_streamer.core.policies.neutral_inputs`):
+
+* ``nan_policy.yaml`` / ``.onnx`` (``--inject nan_policy@S``): the edge model's action,
+  replaced by NaN on every joint while the reference moves: any joint's reference velocity
+  at the decision instant above `NAN_THRESHOLD` of its limit (row 0 of the
+  ``reference_velocity`` block, which is ``v_ref / v_max``). While the reference stands
+  still it is the edge model, so it loads (and a reset's probe with the reference paused
+  passes); once the pass moves the cycle sees NaN and stops with a ``policy_fault``.
+  (The arm's own velocity would not do: the edge corrections at rest move the joints as
+  fast as the pass does.)
+* ``slow_policy.yaml`` / ``.onnx`` (``--inject slow_policy@S``): the edge model's action
+  plus 0 times the sum of a long computation: a Loop of `SLOW_STEPS` products
+  ``X <- tanh(X W)`` of `SLOW_SIZE` x `SLOW_SIZE` float32 matrices drawn in the graph
+  (RandomNormal with fixed seeds, so the file stays small; ``X0`` also depends on the
+  observation so nothing can be folded at load). About 2 ``SLOW_SIZE^3`` x `SLOW_STEPS`
+  flops per inference: late decisions, then an ``overruns`` stop.
+
+The script checks both with onnxruntime (1 thread): outputs vs the edge model, NaN
+behaviour on a still and a moving observation, and prints the slow model's inference time
+(a timing is printed, never asserted).
+
+    python scripts/make_fault_policies.py [--out DIR]
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+from onnx import TensorProto, helper, numpy_helper
+
+from adaptive_streamer.core.limits import JointLimits
+from adaptive_streamer.core.observation import ObservationLayout
+from adaptive_streamer.core.policies import load_card, load_policy
+from adaptive_streamer.core.policies.base import RunningConfig, neutral_inputs
+from adaptive_streamer.core.scenario.closed_loop import EDGE_FEATURES
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "config" / "demo"
+NAN_THRESHOLD = 0.005   # fraction of the velocity limit
+SLOW_SIZE = 512         # matrix size of the slow model's products
+SLOW_STEPS = 100        # products per inference (about 140 ms on one core of the build machine)
+OPSET = 17
+TIMED_RUNS = 5
+
+
+def _edge_graph(model: onnx.ModelProto) -> tuple[list, list, str, str]:
+    """Nodes, initialisers, input and output names of the edge model."""
+    g = model.graph
+    return list(g.node), list(g.initializer), g.input[0].name, g.output[0].name
+
+
+def _finish(nodes: list, inits: list, name: str, inp: str, size: int, n: int,
+            out: str) -> onnx.ModelProto:
+    graph = helper.make_graph(
+        nodes, name, [helper.make_tensor_value_info(inp, TensorProto.FLOAT, [1, size])],
+        [helper.make_tensor_value_info(out, TensorProto.FLOAT, [1, n])], inits)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)],
+                              producer_name="adaptive_streamer scripts/make_fault_policies.py")
+    model.ir_version = 8
+    onnx.checker.check_model(model, full_check=True)
+    return model
+
+
+def nan_model(edge: onnx.ModelProto, velocity: slice, size: int, n: int) -> onnx.ModelProto:
+    """The edge model with its action replaced by NaN when max |obs[velocity]| > threshold."""
+    nodes, inits, inp, out = _edge_graph(edge)
+    for node in nodes:                       # rename the edge output to an inner name
+        node.output[:] = ["edge_action" if o == out else o for o in node.output]
+    inits += [numpy_helper.from_array(np.array([velocity.start], np.int64), "v_start"),
+              numpy_helper.from_array(np.array([velocity.stop], np.int64), "v_stop"),
+              numpy_helper.from_array(np.array([1], np.int64), "v_axis"),
+              numpy_helper.from_array(np.array(NAN_THRESHOLD, np.float32), "v_threshold"),
+              numpy_helper.from_array(np.array(np.nan, np.float32), "nan")]
+    nodes += [helper.make_node("Slice", [inp, "v_start", "v_stop", "v_axis"], ["v"]),
+              helper.make_node("Abs", ["v"], ["v_abs"]),
+              helper.make_node("ReduceMax", ["v_abs"], ["v_max"], axes=[1], keepdims=1),
+              helper.make_node("Greater", ["v_max", "v_threshold"], ["moving"]),
+              helper.make_node("Where", ["moving", "nan", "edge_action"], [out])]
+    return _finish(nodes, inits, "demo_fault_nan_when_moving", inp, size, n, out)
+
+
+def slow_model(edge: onnx.ModelProto, size: int, n: int) -> onnx.ModelProto:
+    """The edge model plus 0 x sum(tanh(X W) iterated SLOW_STEPS times)."""
+    nodes, inits, inp, out = _edge_graph(edge)
+    for node in nodes:
+        node.output[:] = ["edge_action" if o == out else o for o in node.output]
+    k = SLOW_SIZE
+    scale = float(1.0 / np.sqrt(k))
+    body = helper.make_graph(
+        [helper.make_node("Identity", ["cond_in"], ["cond_out"]),
+         helper.make_node("MatMul", ["x_in", "w"], ["xw"]),
+         helper.make_node("Tanh", ["xw"], ["x_out"])],
+        "slow_step",
+        [helper.make_tensor_value_info("i", TensorProto.INT64, []),
+         helper.make_tensor_value_info("cond_in", TensorProto.BOOL, []),
+         helper.make_tensor_value_info("x_in", TensorProto.FLOAT, [k, k])],
+        [helper.make_tensor_value_info("cond_out", TensorProto.BOOL, []),
+         helper.make_tensor_value_info("x_out", TensorProto.FLOAT, [k, k])])
+    inits += [numpy_helper.from_array(np.array(SLOW_STEPS, np.int64), "steps"),
+              numpy_helper.from_array(np.array(True), "always"),
+              numpy_helper.from_array(np.array(0.0, np.float32), "zero")]
+    nodes += [
+        helper.make_node("RandomNormal", [], ["w"], shape=[k, k], scale=scale, seed=1.0,
+                         dtype=TensorProto.FLOAT),
+        helper.make_node("RandomNormal", [], ["x_draw"], shape=[k, k], seed=2.0,
+                         dtype=TensorProto.FLOAT),
+        helper.make_node("ReduceSum", [inp], ["obs_sum"], keepdims=0),
+        helper.make_node("Mul", ["obs_sum", "zero"], ["obs_zero"]),
+        helper.make_node("Add", ["x_draw", "obs_zero"], ["x0"]),
+        helper.make_node("Loop", ["steps", "always", "x0"], ["x_last"], body=body),
+        helper.make_node("ReduceSum", ["x_last"], ["x_sum"], keepdims=0),
+        helper.make_node("Mul", ["x_sum", "zero"], ["nothing"]),
+        helper.make_node("Add", ["edge_action", "nothing"], [out]),
+    ]
+    return _finish(nodes, inits, "demo_fault_slow", inp, size, n, out)
+
+
+def fault_card(name: str, title: str, text: str, edge_card_text: str) -> str:
+    """A card for a fault model: the edge card's fields, its own name, description, model."""
+    keep = []
+    skip = False
+    for line in edge_card_text.splitlines():
+        if line.startswith(("#", "policy_card:", "name:", "model:", "limits:", "description:")):
+            skip = line.startswith("description:")
+            continue
+        if skip and line.startswith("  "):
+            continue
+        skip = False
+        keep.append(line)
+    return (f"# {title}\n# Written by scripts/make_fault_policies.py (demo fault injection); "
+            "format: adaptive_streamer/core/policies/card.py.\n"
+            f"policy_card: 1\nname: demo_fault_{name}\ndescription: |\n"
+            + "\n".join(f"  {x}" for x in text.splitlines()) + "\n"
+            + f"model: {name}.onnx\nlimits: ../limits.yaml\n" + "\n".join(keep) + "\n")
+
+
+def session(path: Path) -> ort.InferenceSession:
+    """An onnxruntime session on 1 thread."""
+    so = ort.SessionOptions()
+    so.intra_op_num_threads = 1
+    so.inter_op_num_threads = 1
+    return ort.InferenceSession(str(path), so, providers=["CPUExecutionProvider"])
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point; see the module docstring."""
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--out", type=Path, default=DEMO / "faults")
+    args = ap.parse_args(argv)
+    out: Path = args.out
+    out.mkdir(parents=True, exist_ok=True)
+    edge_card_path = DEMO / "policy_edge.yaml"
+    card = load_card(edge_card_path)
+    edge = onnx.load(str(card.model))
+    layout = ObservationLayout.from_card(card)
+    n = len(card.joints)
+    block = next(s for b, s in zip(layout.blocks, layout.slices)
+                 if b.kind == "reference_velocity")
+    velocity = slice(block.start, block.start + n)      # row 0: at the decision instant
+    text = edge_card_path.read_text()
+    models = {
+        "nan_policy": (nan_model(edge, velocity, layout.size, n),
+                       "Fault injection: NaN actions once the arm moves.",
+                       f"The demo edge model, but every action is NaN while the reference moves "
+                       f"(a joint's\nreference velocity above {100 * NAN_THRESHOLD:g}% of its "
+                       "limit). Finite while the reference stands\nstill, so it loads and a reset "
+                       "probe with the reference paused passes.\nExpected: a policy_fault stop "
+                       "as soon as the pass moves."),
+        "slow_policy": (slow_model(edge, layout.size, n),
+                        "Fault injection: a policy far slower than the decision period.",
+                        f"The demo edge model plus 0 x a Loop of {SLOW_STEPS} products of "
+                        f"{SLOW_SIZE}x{SLOW_SIZE} matrices\n(about "
+                        f"{2 * SLOW_SIZE ** 3 * SLOW_STEPS / 1e9:.0f} GFLOP per inference). "
+                        "Expected: late decisions, the stream brakes\nin their place, then an "
+                        "overruns stop."),
+    }
+    limits = JointLimits.from_file(DEMO / "limits.yaml")
+    running = RunningConfig(limits.names, card.decision_period, limits, 10, EDGE_FEATURES)
+    still = layout.build(neutral_inputs(running))[None]
+    moving = still.copy()
+    moving[0, velocity.start] = 2 * NAN_THRESHOLD
+    edge_sess = session(card.model)
+    ok = True
+    for name, (model, title, desc) in models.items():
+        path = out / f"{name}.onnx"
+        onnx.save(model, str(path))
+        card_path = out / f"{name}.yaml"
+        card_path.write_text(fault_card(name, title, desc, text))
+        load_policy(card_path, running)          # loads and passes the test inference
+        sess = session(path)
+        want = edge_sess.run(None, {"obs": still})[0]
+        got = sess.run(None, {"obs": still})[0]
+        runs = []
+        for _ in range(TIMED_RUNS):
+            t0 = time.perf_counter()
+            got_moving = sess.run(None, {"obs": moving})[0]
+            runs.append(time.perf_counter() - t0)
+        elapsed = float(np.median(runs))
+        same = bool(np.array_equal(got, want))
+        print(f"wrote {card_path} and {path} ({path.stat().st_size} bytes): at rest "
+              f"{'equal to' if same else 'DIFFERENT from'} the edge model; moving: "
+              f"{'NaN' if np.isnan(got_moving).all() else 'finite'}; one inference "
+              f"{1e3 * elapsed:.1f} ms (median of {TIMED_RUNS}, 1 thread)")
+        ok &= same
+        ok &= bool(np.isnan(got_moving).all()) == (name == "nan_policy")
+    if not ok:
+        print("error: a fault model does not behave as described", file=sys.stderr)
+        return 1
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
