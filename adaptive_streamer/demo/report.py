@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import html
+import json
 import math
 from pathlib import Path
 
@@ -124,9 +125,23 @@ def plot_timing(series: Series, rate: float, out: Path) -> Path:
     return path
 
 
+def summary_json(summary: DemoSummary) -> dict:
+    """The headline figures as plain data (summary.json)."""
+    st = summary.stream
+    return {"policy": summary.policy, "seed": summary.seed,
+            "lateral_rms_mm": summary.adapted.rms, "lateral_max_mm": summary.adapted.max,
+            "reference_only_rms_mm": summary.reference_only.rms,
+            "reference_only_max_mm": summary.reference_only.max,
+            "setpoints": st.samples, "violations": st.total_violations,
+            "violations_by_kind": st.violations,
+            "watchdog_events": [{"time": t, "kind": k, "message": m} for t, k, m in summary.events],
+            "decision_ms": summary.decision_ms, "period_ms": summary.period}
+
+
 def write_summary(summary: DemoSummary, limits: JointLimits, plots: list[Path], out: Path,
                   cautions: str) -> tuple[Path, Path]:
-    """summary.md and summary.html next to the plots."""
+    """summary.md, summary.html and summary.json next to the plots."""
+    (out / "summary.json").write_text(json.dumps(summary_json(summary), indent=2, default=float))
     text = format_summary(summary, limits)
     md = ["# Demo run", "", "```", text, "```", ""]
     md += [f"![{p.stem}]({p.name})" for p in plots]
