@@ -1,0 +1,170 @@
+"""The adapter's streaming session, built from its parameters without ROS.
+
+`build_session` does what the adapter node's configure step does (``nodes/adapter.py``,
+``AdapterNode._configure``): the same parameter names and defaults, the same limits,
+running configuration, policy, approach tracker, watchdog and cycle settings, so a replay
+decides as the live node did. `load_params_file` reads the adapter's section of a standard
+ROS 2 params file.
+
+Policies: a card path, or a built-in kind (``tracker``, ``hold``) given as ``--policy``.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+import yaml
+
+from adaptive_streamer.core.cycle import CycleConfig
+from adaptive_streamer.core.feedback import FeedbackParser
+from adaptive_streamer.core.limits import JointLimits
+from adaptive_streamer.core.policies import (BUILT_IN_KINDS, build_policy, load_card,
+                                             load_policy, policy_for_kind)
+from adaptive_streamer.core.policies.base import RunningConfig
+from adaptive_streamer.core.session import StreamingSession
+from adaptive_streamer.core.watchdog import WatchdogConfig
+
+WATCHDOG_PARAMS = ("deviation_joint", "deviation_norm", "following_error", "command_latency",
+                   "joint_states_timeout", "feedback_timeout", "reference_timeout",
+                   "max_overruns", "overrun_window")
+_WD = WatchdogConfig()
+DEFAULTS: dict[str, Any] = {
+    "policy": "", "shadow_policy": "", "limits_file": "", "limits_dynamics": "",
+    "joints": [""], "decision_period": 0.05, "stream_rate": 250.0, "horizon": 10,
+    "limit_scale": 1.0, "features": [""], "outputs": ["position"],
+    "approach_scale": 0.3, "approach_tolerance": 2e-3, "approach_bandwidth": 4.0,
+    **{f"watchdog.{k}": getattr(_WD, k) for k in WATCHDOG_PARAMS},
+}
+
+
+class SetupError(ValueError):
+    """The adapter parameters or the policy cannot make a session (names the parameter)."""
+
+
+@dataclass
+class SessionSetup:
+    """A configured session and what was used to build it."""
+
+    session: StreamingSession
+    running: RunningConfig
+    parser: FeedbackParser | None
+    rate: float
+    policy_label: str
+    params: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def joints(self) -> tuple[str, ...]:
+        """Joint order of the session."""
+        return self.running.joints
+
+    @property
+    def period(self) -> float:
+        """Decision period [s]."""
+        return self.running.decision_period
+
+
+def _flatten(data: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for k, v in data.items():
+        key = f"{prefix}{k}"
+        if isinstance(v, Mapping):
+            out.update(_flatten(v, key + "."))
+        else:
+            out[key] = v
+    return out
+
+
+def load_params_file(path: str | Path, node: str = "adapter") -> dict[str, Any]:
+    """The ``ros__parameters`` of ``node`` (its base name, or ``/**``) in a params file."""
+    from adaptive_streamer.share import expand
+
+    p = Path(path)
+    try:
+        data = yaml.safe_load(expand(p.read_text()))
+    except OSError as exc:
+        raise SetupError(f"cannot read params file '{p}': {exc.strerror}") from None
+    except yaml.YAMLError as exc:
+        raise SetupError(f"params file '{p}': not valid YAML: {exc}") from None
+    if not isinstance(data, Mapping):
+        raise SetupError(f"params file '{p}': expected a mapping of node names")
+    base = node.strip("/").split("/")[-1]
+    merged: dict[str, Any] = {}
+    found = False
+    for key in ("/**", base, f"/{base}", node, node.strip("/")):
+        section = data.get(key)
+        if isinstance(section, Mapping) and isinstance(section.get("ros__parameters"), Mapping):
+            merged.update(_flatten(section["ros__parameters"]))
+            found = True
+    if not found:
+        raise SetupError(f"params file '{p}': no section for node '{base}' (expected "
+                         f"'{base}: {{ros__parameters: ...}}'); sections: {sorted(map(str, data))}")
+    return merged
+
+
+def _get(params: Mapping[str, Any], name: str) -> Any:
+    return params.get(name, DEFAULTS[name])
+
+
+def _limits(params: Mapping[str, Any], robot_description: str | None) -> JointLimits:
+    path = _get(params, "limits_file")
+    dyn = _get(params, "limits_dynamics") or None
+    if path:
+        limits = JointLimits.from_file(path, dyn)
+    else:
+        if robot_description is None:
+            raise SetupError("limits_file is empty and the bag has no robot_description")
+        if not dyn:
+            raise SetupError("limits from robot_description need limits_dynamics (a limits "
+                             "YAML with acceleration and jerk)")
+        limits = JointLimits.from_urdf_string(robot_description, dyn)
+    joints = [j for j in _get(params, "joints") if j]
+    return limits.subset(joints) if joints else limits
+
+
+def build_session(params: Mapping[str, Any], policy: str | None = None,
+                  robot_description: str | None = None) -> SessionSetup:
+    """The session the adapter builds at configure for ``params``.
+
+    ``policy`` (a card path or a built-in kind) replaces the ``policy`` parameter.
+    """
+    try:
+        limits = _limits(params, robot_description)
+        period = float(_get(params, "decision_period"))
+        rate = float(_get(params, "stream_rate"))
+        if not 125.0 <= rate <= 1000.0:
+            raise SetupError(f"stream_rate must be within 125-1000 Hz, got {rate:g}")
+        if not (0.001 <= period <= 1.0):
+            raise SetupError(f"decision_period must be within 1 ms - 1 s, got {period:g}")
+        horizon = int(_get(params, "horizon"))
+        card = policy if policy else _get(params, "policy")
+        if not card:
+            raise SetupError("parameter 'policy' (path of a policy card) is empty; pass "
+                             "--policy CARD|KIND")
+        features = [f for f in _get(params, "features") if f]
+        if card in BUILT_IN_KINDS:
+            running = RunningConfig(limits.names, period, limits, horizon, tuple(features))
+            main = policy_for_kind(card, running)
+            label = f"built-in {card}"
+        else:
+            parsed = load_card(card)
+            running = RunningConfig(limits.names, period, limits, horizon,
+                                    tuple(features or parsed.feedback_features))
+            main = build_policy(parsed, running)
+            label = str(card)
+        shadow_card = _get(params, "shadow_policy")
+        shadow = load_policy(shadow_card, running) if shadow_card else None
+        w = 2.0 * float(_get(params, "approach_bandwidth"))
+        approach = policy_for_kind("tracker", running, kp=(w / 2) ** 2, kd=w)
+        wd = WatchdogConfig(**{k: _get(params, f"watchdog.{k}") for k in WATCHDOG_PARAMS})
+        cc = CycleConfig(horizon=horizon, approach_scale=float(_get(params, "approach_scale")),
+                         approach_tolerance=float(_get(params, "approach_tolerance")),
+                         approach_bandwidth=float(_get(params, "approach_bandwidth")))
+        session = StreamingSession(limits, period, main, approach, cc, wd,
+                                   float(_get(params, "limit_scale")), shadow)
+    except SetupError:
+        raise
+    except (ValueError, TypeError, RuntimeError) as exc:  # Limits/Policy/Card/Watchdog errors
+        raise SetupError(str(exc)) from None
+    parser = FeedbackParser(running.features) if running.features else None
+    return SessionSetup(session, running, parser, rate, label, dict(params))

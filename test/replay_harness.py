@@ -1,0 +1,145 @@
+"""A short live run of the real stack, recorded to a bag, for the record/replay tests.
+
+Processes (real nodes over DDS, wall-clock ROS time):
+
+* cell: reference_server (the demo reference, starts at once), sim_driver (the demo arm,
+  position interface), edge_sensor (the demo line sensor) and sensor_bridge (its offset
+  and angle as the ``feedback`` features ``edge_offset``/``edge_angle``) in one process;
+* adapter (own process, autostart) with a linear-feedback policy card written here
+  (the demo limits; a small gain from ``edge_offset`` onto j1, so feedback changes the
+  decisions);
+* recorder (own process, `adaptive_streamer.replay.recorder.Recorder`).
+
+`live_recording` runs it once per test process and caches the bag.
+"""
+from __future__ import annotations
+
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import yaml
+
+from adaptive_streamer.replay.recorder import Recorder
+from adaptive_streamer.share import demo_file
+
+JOINTS = ["j1", "j2", "j3", "j4", "j5", "j6"]
+FOLLOW_S = 4.0       # seconds of recording once the adapter follows (short: shared cores)
+START_WAIT_S = 60.0  # upper bound for process start and DDS discovery; not a speed check
+
+CELL = """
+import sys
+from adaptive_streamer.nodes.common import run_nodes
+from adaptive_streamer.nodes.edge_sensor import EdgeSensor
+from adaptive_streamer.nodes.reference_server import ReferenceServer
+from adaptive_streamer.nodes.sensor_bridge import SensorBridge
+from adaptive_streamer.nodes.sim_driver import SimDriver
+sys.exit(run_nodes([ReferenceServer, SimDriver, EdgeSensor, SensorBridge], sys.argv[1:]))
+"""
+
+_CACHE: dict[str, Path] = {}
+
+
+class _NoAliases(yaml.SafeDumper):
+    """YAML without anchors/aliases (rcl's params parser refuses them)."""
+
+    def ignore_aliases(self, data: object) -> bool:
+        return True
+
+
+def start_positions() -> list[float]:
+    """The first row of the demo reference (the arm starts there, at rest)."""
+    with demo_file("reference.csv").open() as f:
+        for line in f:
+            if line[:1].isdigit() or line[:1] == "-":
+                return [float(x) for x in line.split(",")[1:]]
+    raise RuntimeError("demo reference has no rows")
+
+
+def write_card(folder: Path, gain: float = 2.0) -> Path:
+    """A linear-feedback card for the demo arm (edge_offset -> j1)."""
+    card = {"policy_card": 1, "name": "replay_test_feedback", "kind": "linear_feedback",
+            "joints": JOINTS, "decision_period": 0.05,
+            "limits": str(demo_file("limits.yaml")),
+            "feedback_gain": {"features": ["edge_offset"],
+                              "matrix": [[gain]] + [[0.0]] * (len(JOINTS) - 1)}}
+    path = folder / "feedback.card.yaml"
+    path.write_text(yaml.safe_dump(card, sort_keys=False))
+    return path
+
+
+def write_params(folder: Path, card: Path) -> Path:
+    """A params file for the cell and the adapter."""
+    params = {
+        "reference_server": {"ros__parameters": {
+            "reference_file": str(demo_file("reference.csv")), "joint_names": JOINTS,
+            "limits_file": str(demo_file("limits.yaml")), "horizon": 10,
+            "decision_period": 0.05, "start_mode": "immediate", "end_mode": "hold"}},
+        "sim_driver": {"ros__parameters": {
+            "joints": JOINTS, "initial_positions": start_positions(), "rate": 250.0,
+            "command_interface": "position"}},
+        "edge_sensor": {"ros__parameters": {"scenario": str(demo_file("scenario.yaml"))}},
+        "sensor_bridge": {"ros__parameters": {
+            "inputs": ["edge"], "publish_rate": 0.0, "feedback_qos": "reliable",
+            "edge": {"topic": "edge_sensor/offset", "type": "geometry_msgs/msg/PointStamped",
+                     "fields": ["point.y", "point.z"],
+                     "features": ["edge_offset", "edge_angle"], "max_age": 0.2}}},
+        "adapter": {"ros__parameters": {
+            "policy": str(card), "limits_file": str(demo_file("limits.yaml")),
+            "decision_period": 0.05, "stream_rate": 250.0, "horizon": 10,
+            "autostart": True, "outputs": ["position"], "stream_priority": 0}},
+    }
+    path = folder / "params.yaml"
+    path.write_text(yaml.dump(params, Dumper=_NoAliases, sort_keys=False))
+    return path
+
+
+def _stop(proc: subprocess.Popen, timeout: float = 20.0) -> None:
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGINT)
+        try:
+            proc.wait(timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+
+
+def record_live_run(folder: Path, follow_s: float = FOLLOW_S, compression: str = "zstd",
+                    chunk_size: int = 64 * 1024) -> Path:
+    """Run the stack, record it, stop it; returns the bag folder."""
+    folder.mkdir(parents=True, exist_ok=True)
+    card = write_card(folder)
+    params = write_params(folder, card)
+    ros = ["--ros-args", "--params-file", str(params)]
+    logs = (folder / "cell.log").open("w"), (folder / "adapter.log").open("w")
+    cell = subprocess.Popen([sys.executable, "-c", CELL, *ros], stdout=logs[0],
+                            stderr=subprocess.STDOUT)
+    rec = Recorder(folder / "bag", compression=compression, chunk_size=chunk_size)
+    adapter = None
+    try:
+        rec.start(START_WAIT_S)
+        if not rec.wait_for(["joint_states", "reference/window", "feedback"], START_WAIT_S):
+            raise RuntimeError(f"the cell did not come up: {rec.recording}; see {folder}")
+        adapter = subprocess.Popen([sys.executable, "-m", "adaptive_streamer.nodes.adapter",
+                                    *ros], stdout=logs[1], stderr=subprocess.STDOUT)
+        if not rec.wait_for(["adapter/decisions", "setpoints"], START_WAIT_S):
+            raise RuntimeError(f"the adapter did not stream: {rec.recording}; see {folder}")
+        rec.wait_run_info(START_WAIT_S)
+        time.sleep(follow_s)
+    finally:
+        if adapter is not None:
+            _stop(adapter)
+        rec.stop()
+        _stop(cell)
+        for f in logs:
+            f.close()
+    return rec.bag
+
+
+def live_recording(tmp_root: Path) -> Path:
+    """The cached live recording of this test process (recorded on first use)."""
+    if "bag" not in _CACHE:
+        _CACHE["bag"] = record_live_run(tmp_root / "live")
+    return _CACHE["bag"]
