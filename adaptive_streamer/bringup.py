@@ -206,10 +206,12 @@ def bringup(params: str | Path, one_process: bool = False, record: str | None = 
         os.unlink(tmp.name)
 
 
-def recorder_entry(entries: list[NodeEntry], out: str) -> NodeEntry:
-    """The recorder node recording into ``out`` (in the nodes' namespace)."""
+def recorder_entry(entries: list[NodeEntry], out: str, label: str = "bringup") -> NodeEntry:
+    """The recorder node writing a new bag ``<out>/<label>_<UTC time>`` (in the nodes'
+    namespace)."""
     ns = entries[0].namespace if entries else ""
-    return NodeEntry("recorder", ns, {"output": str(Path(out).resolve())})
+    stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
+    return NodeEntry("recorder", ns, {"output": str(Path(out).resolve() / f"{label}_{stamp}")})
 
 
 def _key(entry: NodeEntry) -> str:

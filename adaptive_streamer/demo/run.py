@@ -69,12 +69,11 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
     monitor.start()
     bar = None
     try:
-        for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
-            procs.start(NodeEntry(name if name != "cell" else group[0], "", {}), params_file,
-                        group=group, stdout=(logs / f"{name}.log").open("w"),
-                        stderr=subprocess.STDOUT)
         if args.record:
             _start_recorder(procs, args.record, workdir, logs)
+        for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
+            procs.start(NodeEntry(group[0], "", {}), params_file, group=group,
+                        stdout=(logs / f"{name}.log").open("w"), stderr=subprocess.STDOUT)
         _bring_up_adapter(monitor, procs)
         monitor.recording = True
         if not monitor.wait_for("following", lambda: monitor.last_mode() == "following",
@@ -106,15 +105,25 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
     return _report(cfg, monitor, args, t_start, t_end)
 
 
-def _start_recorder(procs: Processes, out: str, workdir: Path, logs: Path) -> None:
-    from ..bringup import recorder_entry
+def _start_recorder(procs: Processes, out: str, workdir: Path, logs: Path) -> Path:
+    """Start the recorder in its own process and wait until it is ready; the bag folder."""
     import yaml
-    entry = recorder_entry([], out)
+
+    from ..bringup import recorder_entry
+    entry = recorder_entry([], out, "demo")
     path = workdir / "recorder.yaml"
     path.write_text(yaml.safe_dump({"recorder": {"ros__parameters": entry.params}}))
-    procs.start(entry, str(path), stdout=(logs / "recorder.log").open("w"),
-                stderr=subprocess.STDOUT)
-    print(f"recording to {Path(out).resolve()}", flush=True)
+    log = logs / "recorder.log"
+    procs.start(entry, str(path), stdout=log.open("w"), stderr=subprocess.STDOUT)
+    deadline = time.monotonic() + STARTUP_TIMEOUT
+    while "recorder: ready" not in log.read_text():
+        if time.monotonic() > deadline:
+            raise DemoError(f"the recorder did not start: {_tail(log)}")
+        _alive(procs)
+        time.sleep(0.1)
+    bag = Path(entry.params["output"])
+    print(f"recording to {bag}", flush=True)
+    return bag
 
 
 def _bring_up_adapter(monitor, procs: Processes) -> None:

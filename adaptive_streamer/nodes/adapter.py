@@ -36,6 +36,7 @@ from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
 from rclpy.executors import SingleThreadedExecutor
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
 from rclpy.parameter import Parameter
+from rclpy.serialization import deserialize_message
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension, String
 from std_srvs.srv import Trigger
@@ -282,7 +283,7 @@ class AdapterNode(LifecycleNode):
         self._subs = [
             self.create_subscription(JointState, "joint_states", self._on_joint_states,
                                      qos_by_name(self._param("joint_states_qos"), 5),
-                                     callback_group=self._io_group),
+                                     callback_group=self._io_group, raw=True),
             self.create_subscription(JointTrajectory, "reference/window", self._on_window,
                                      common.reliable_qos(5), callback_group=self._io_group),
             self.create_subscription(JointState, "feedback", self._on_feedback,
@@ -302,12 +303,19 @@ class AdapterNode(LifecycleNode):
     def on_activate(self, state: LifecycleState) -> TransitionCallbackReturn:
         session = self.session
         now = now_sec(self)
-        js = self._latest.get("joint_states")
+        js = self._joint_state()
         timeout = session.watchdog.config.joint_states_timeout
         if js is None or now - js[0] > timeout:
             self.get_logger().error(
                 "activate refused: joint_states is not fresh (none within "
                 f"{timeout * 1e3:.0f} ms)")
+            return TransitionCallbackReturn.FAILURE
+        window = self._latest.get("window")
+        ref_timeout = session.watchdog.config.reference_timeout
+        if window is None or now - window[0] > ref_timeout:
+            self.get_logger().error(
+                "activate refused: no fresh reference/window (none within "
+                f"{ref_timeout * 1e3:.0f} ms); is the reference server running?")
             return TransitionCallbackReturn.FAILURE
         _, stamp, positions, velocities = js
         still = float(self._param("activation_velocity"))
@@ -383,23 +391,34 @@ class AdapterNode(LifecycleNode):
     def _on_robot_description(self, msg: String) -> None:
         self._robot_description = msg.data
 
-    def _on_joint_states(self, msg: JointState) -> None:
+    def _on_joint_states(self, data: bytes) -> None:
+        """Store the raw message (parsed only when a decision needs it, see `_joint_state`)."""
+        self._latest["joint_states_raw"] = (now_sec(self), data)
+
+    def _joint_state(self) -> tuple[float, float, np.ndarray, np.ndarray | None] | None:
+        """Latest joint state: (received, stamp, positions, velocities) in joint order."""
+        raw = self._latest.get("joint_states_raw")
+        cached = self._latest.get("joint_states")
+        if raw is None or (cached is not None and cached[0] == raw[0]):
+            return cached
+        rx, data = raw
         try:
-            joints = getattr(self, "_joints", None)
-            if joints is None:
-                return
+            msg = deserialize_message(data, JointState)
             names = list(msg.name)
-            idx = [names.index(j) for j in joints]
+            idx = [names.index(j) for j in self._joints]
             pos = np.asarray(msg.position, float)[idx]
             vel = (np.asarray(msg.velocity, float)[idx] if len(msg.velocity) == len(names)
                    else None)
             if not np.all(np.isfinite(pos)):
                 raise ValueError("non-finite position")
             stamp = stamp_to_sec(msg.header.stamp)
-            now = now_sec(self)
-            self._latest["joint_states"] = (now, stamp if stamp > 0 else now, pos, vel)
-        except (ValueError, IndexError):
+        except (ValueError, IndexError, TypeError):
             self._counters["bad_joint_states"] += 1
+            self._latest["joint_states_raw"] = None
+            return self._latest.get("joint_states")
+        parsed = (rx, stamp if stamp > 0 else rx, pos, vel)
+        self._latest["joint_states"] = parsed
+        return parsed
 
     def _on_window(self, msg: JointTrajectory) -> None:
         self._latest["window"] = (now_sec(self), msg)
@@ -445,7 +464,7 @@ class AdapterNode(LifecycleNode):
             if feedback is not None and feedback.all_valid:
                 valid_since = feedback.stamp if feedback.stamp is not None else rx
                 self._latest["feedback_valid_since"] = valid_since
-        js = self._latest.get("joint_states")
+        js = self._joint_state()
         return SessionInputs(window, window_rx, feedback, valid_since,
                              js[2] if js else None, js[1] if js else None, js[0] if js else None)
 

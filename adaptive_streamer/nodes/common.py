@@ -110,7 +110,7 @@ class DiagnosticsReporter:
 
 def _fmt(value: Any) -> str:
     if isinstance(value, float):
-        return f"{value:.6g}"
+        return f"{value:.6f}" if abs(value) >= 1e5 else f"{value:.6g}"  # keep times exact
     if isinstance(value, (list, tuple)):
         return "[" + ", ".join(_fmt(v) for v in value) + "]"
     return str(value)
