@@ -5,7 +5,9 @@ Processes (real nodes over DDS, wall-clock ROS time):
 * cell: reference_server (the demo reference, starts at once), sim_driver (the demo arm,
   position interface), edge_sensor (the demo line sensor) and sensor_bridge (its offset
   and angle as the ``feedback`` features ``edge_offset``/``edge_angle``) in one process;
-* adapter (own process, autostart) with a linear-feedback policy card written here
+* adapter (own process), configured and activated from here through its lifecycle
+  services once the recorder records its outputs, deactivated at the end (a controlled
+  stop), with a linear-feedback policy card written here
   (the demo limits; a small gain from ``edge_offset`` onto j1, so feedback changes the
   decisions);
 * recorder (own process, `adaptive_streamer.replay.recorder.Recorder`).
@@ -17,6 +19,7 @@ from __future__ import annotations
 import signal
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -89,7 +92,7 @@ def write_params(folder: Path, card: Path) -> Path:
         "adapter": {"ros__parameters": {
             "policy": str(card), "limits_file": str(demo_file("limits.yaml")),
             "decision_period": 0.05, "stream_rate": 250.0, "horizon": 10,
-            "autostart": True, "outputs": ["position"], "stream_priority": 0}},
+            "autostart": False, "outputs": ["position"], "stream_priority": 0}},
     }
     path = folder / "params.yaml"
     path.write_text(yaml.dump(params, Dumper=_NoAliases, sort_keys=False))
@@ -124,10 +127,21 @@ def record_live_run(folder: Path, follow_s: float = FOLLOW_S, compression: str =
             raise RuntimeError(f"the cell did not come up: {rec.recording}; see {folder}")
         adapter = subprocess.Popen([sys.executable, "-m", "adaptive_streamer.nodes.adapter",
                                     *ros], stdout=logs[1], stderr=subprocess.STDOUT)
-        if not rec.wait_for(["adapter/decisions", "setpoints"], START_WAIT_S):
-            raise RuntimeError(f"the adapter did not stream: {rec.recording}; see {folder}")
-        rec.wait_run_info(START_WAIT_S)
-        time.sleep(follow_s)
+        with _Operator() as op:
+            if not op.client.wait(START_WAIT_S) or not op.client.configure():
+                raise RuntimeError(f"the adapter did not configure; see {folder}")
+            # activate only once the recorder has the adapter's outputs: the bag then holds
+            # every decision from the start at rest
+            if not rec.wait_for(["adapter/decisions", "setpoints"], START_WAIT_S):
+                raise RuntimeError(f"the recorder missed the adapter: {rec.recording}")
+            rec.wait_run_info(START_WAIT_S)
+            end = time.monotonic() + START_WAIT_S
+            while not op.client.activate():  # refused until joint_states are fresh
+                if time.monotonic() > end:
+                    raise RuntimeError(f"the adapter did not activate; see {folder}")
+                time.sleep(0.2)
+            time.sleep(follow_s)
+            op.client.deactivate()  # a controlled stop, recorded
     finally:
         if adapter is not None:
             _stop(adapter)
@@ -138,8 +152,69 @@ def record_live_run(folder: Path, follow_s: float = FOLLOW_S, compression: str =
     return rec.bag
 
 
+class _Operator:
+    """An rclpy node of this process driving the adapter's lifecycle."""
+
+    def __enter__(self) -> "_Operator":
+        import rclpy
+        from rclpy.context import Context
+
+        from rclpy.executors import SingleThreadedExecutor
+
+        from adaptive_streamer.nodes.lifecycle_client import LifecycleClient
+        self.ctx = Context()
+        rclpy.init(context=self.ctx)
+        self.node = rclpy.create_node("replay_test_operator", context=self.ctx)
+        self.client = LifecycleClient(self.node, "adapter", spun_elsewhere=True)
+        self.ex = SingleThreadedExecutor(context=self.ctx)
+        self.ex.add_node(self.node)
+        self.running = True
+        self.thread = threading.Thread(target=self._spin, daemon=True)
+        self.thread.start()
+        return self
+
+    def _spin(self) -> None:
+        while self.running:
+            self.ex.spin_once(timeout_sec=0.02)
+
+    def __exit__(self, *exc: object) -> None:
+        import rclpy
+        self.running = False
+        self.thread.join()
+        self.ex.shutdown()
+        self.node.destroy_node()
+        rclpy.shutdown(context=self.ctx)
+
+
 def live_recording(tmp_root: Path) -> Path:
     """The cached live recording of this test process (recorded on first use)."""
     if "bag" not in _CACHE:
         _CACHE["bag"] = record_live_run(tmp_root / "live")
     return _CACHE["bag"]
+
+
+def copy_bag(src: Path, dst: Path, drop: tuple[str, ...] = (),
+             change: dict | None = None, custom_data: bool = True) -> Path:
+    """A copy of the bag ``src`` at ``dst`` without the topics ``drop``; ``change`` maps a
+    topic to ``(msgtype, msgdef, digest, function of (receive time, raw bytes))`` giving
+    the new bytes (None drops the message); ``custom_data`` keeps the metadata entries."""
+    from adaptive_streamer.replay.bag_io import BagWriter, read_bag
+
+    bag = read_bag(src)
+    writer = BagWriter(dst)
+    events = []
+    for name, data in bag.topics.items():
+        if name in drop:
+            continue
+        msgtype, msgdef, digest, fn = (change or {}).get(
+            name, (data.msgtype, None, None, lambda t, raw: raw))
+        conn = writer.add_topic(name, msgtype, data.qos, msgdef, digest)
+        events += [(int(t), name, conn, fn(int(t), raw)) for t, raw in zip(data.times, data.raw)]
+    events = [e for e in events if e[3] is not None]
+    events.sort(key=lambda e: (e[0], e[1]))
+    for t, _, conn, raw in events:
+        writer.write(conn, t, raw)
+    for key, value in (bag.custom_data.items() if custom_data else ()):
+        writer.set_custom_data(key, value)
+    writer.close()
+    return dst

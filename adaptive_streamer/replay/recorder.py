@@ -60,10 +60,13 @@ def qos_to_rosbags(q: Any) -> Any:
 
 
 def _param_value(value: Any) -> str:
+    """A ``-p name:=value`` value in YAML (strings quoted, so '' and 'true' stay strings)."""
     if isinstance(value, bool):
         return "true" if value else "false"
+    if isinstance(value, str):
+        return "'" + value.replace("'", "''") + "'"
     if isinstance(value, (list, tuple)):
-        return "[" + ",".join(f"'{v}'" if isinstance(v, str) else str(v) for v in value) + "]"
+        return "[" + ",".join(_param_value(v) for v in value) + "]"
     return str(value)
 
 

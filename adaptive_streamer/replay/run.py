@@ -42,7 +42,8 @@ from .bag_io import Bag, TopicData, read_bag
 from .inputs import InputRebuilder
 from .messages import (BOOL, FLOAT64_ARRAY, JOINT_STATE, JOINT_TRAJECTORY, MessageError,
                        STRING, JointStateReader, decision_records, read_bool, read_string)
-from .session_setup import SessionSetup, SetupError, build_session, load_params_file
+from .session_setup import (DEFAULTS, SessionSetup, SetupError, build_session,
+                            load_params_file)
 
 # logical input -> (relative name, expected type); resolved in the adapter's namespace
 INPUT_TOPICS = {
@@ -169,11 +170,10 @@ def configure(bag: Bag, params_file: str | Path | None, policy: str | None,
                 raise ReplayError(f"{bag.path}: {exc}") from None
             params, file_notes = dict(info.parameters), [str(exc)]
         notes += file_notes
-        for name in info_names:
-            if len(bag.topics[name]) > 1:
-                notes.append("the adapter's parameters changed during the recording; replay "
-                             "uses those at the start")
-                break
+        changed = _changed_parameters(bag, info_names, info)
+        if changed:
+            notes.append(f"the adapter's parameters {changed} changed during the recording; "
+                         "replay uses their values at the start")
     if params_file is not None:
         params.update(load_params_file(params_file, node))
     if info is None and params_file is None:
@@ -193,6 +193,20 @@ def configure(bag: Bag, params_file: str | Path | None, policy: str | None,
     decisions_topic = node + "/decisions" if namespace is None else _resolve(
         ns, node.rsplit("/", 1)[-1] + "/decisions")
     return setup, ns, decisions_topic, notes
+
+
+def _changed_parameters(bag: Bag, names: list[str], first: run_info_mod.RunInfo) -> list[str]:
+    """Decision-shaping parameters whose value differs in a later run-info message."""
+    changed: set[str] = set()
+    for name in names:
+        for raw in bag.topics[name].raw[1:]:
+            try:
+                later = run_info_mod.parse(read_string(raw))
+            except (run_info_mod.RunInfoError, MessageError):
+                continue
+            changed |= {k for k in DEFAULTS
+                        if later.parameters.get(k) != first.parameters.get(k)}
+    return sorted(changed)
 
 
 class _Runner:
@@ -324,6 +338,10 @@ def _replay(bag: Bag, setup: SessionSetup, ns: str, decisions_topic: str, notes:
                      "with the latest inputs by time; the result is approximate")
         _run_nearest(result, runner, found, bar)
     result.elapsed = time.perf_counter() - t_start
+    if bag.recovered and result.partial is None and runner.decisions:
+        result.partial = (f"replayed {result.cycles} cycles, up to the last complete one at "
+                          f"t = {runner.decisions[-1].time:.3f} s (the rest of the recording "
+                          "is lost)")
     if bar is not None:
         bar.close()
     result.compute = np.asarray(runner.compute)
