@@ -2,14 +2,14 @@
 
 Processes (real nodes over DDS, wall-clock ROS time):
 
-* cell: reference_server (the demo reference, starts at once), sim_driver (the demo arm,
-  position interface), edge_sensor (the demo line sensor) and sensor_bridge (its offset
-  and angle as the ``feedback`` features ``edge_offset``/``edge_angle``) in one process;
+* cell: reference_server (the demo reference, started once the adapter is active),
+  sim_driver (the demo arm, position interface), edge_sensor (the demo line sensor) and
+  sensor_bridge (its offset and angle as the ``feedback`` features ``edge_offset`` /
+  ``edge_angle``) in one process;
 * adapter (own process), configured and activated from here through its lifecycle
   services once the recorder records its outputs, deactivated at the end (a controlled
-  stop), with a linear-feedback policy card written here
-  (the demo limits; a small gain from ``edge_offset`` onto j1, so feedback changes the
-  decisions);
+  stop), with a linear-feedback policy card written here (the demo limits; a small gain
+  from ``edge_offset`` onto j1, so feedback changes the decisions);
 * recorder (own process, `adaptive_streamer.replay.recorder.Recorder`).
 
 `live_recording` runs it once per test process and caches the bag.
@@ -79,7 +79,7 @@ def write_params(folder: Path, card: Path) -> Path:
         "reference_server": {"ros__parameters": {
             "reference_file": str(demo_file("reference.csv")), "joint_names": JOINTS,
             "limits_file": str(demo_file("limits.yaml")), "horizon": 10,
-            "decision_period": 0.05, "start_mode": "immediate", "end_mode": "hold"}},
+            "decision_period": 0.05, "start_mode": "service", "end_mode": "hold"}},
         "sim_driver": {"ros__parameters": {
             "joints": JOINTS, "initial_positions": start_positions(), "rate": 250.0,
             "command_interface": "position"}},
@@ -140,6 +140,8 @@ def record_live_run(folder: Path, follow_s: float = FOLLOW_S, compression: str =
                 if time.monotonic() > end:
                     raise RuntimeError(f"the adapter did not activate; see {folder}")
                 time.sleep(0.2)
+            if not op.start_reference():  # the reference waits at its start until now
+                raise RuntimeError(f"the reference did not start; see {folder}")
             time.sleep(follow_s)
             op.client.deactivate()  # a controlled stop, recorded
     finally:
@@ -176,6 +178,18 @@ class _Operator:
     def _spin(self) -> None:
         while self.running:
             self.ex.spin_once(timeout_sec=0.02)
+
+    def start_reference(self) -> bool:
+        """Call ``reference_server/start``; True when it started."""
+        from std_srvs.srv import Trigger
+        client = self.node.create_client(Trigger, "reference_server/start")
+        if not client.wait_for_service(START_WAIT_S):
+            return False
+        future = client.call_async(Trigger.Request())
+        end = time.monotonic() + START_WAIT_S
+        while not future.done() and time.monotonic() < end:
+            time.sleep(0.01)
+        return bool(future.done() and future.result().success)
 
     def __exit__(self, *exc: object) -> None:
         import rclpy

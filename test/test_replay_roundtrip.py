@@ -34,6 +34,7 @@ def test_replay_reproduces_the_live_decisions(live_bag):
     result = replay(live_bag)
     assert result.mode == "exact" and result.partial is None
     assert not any("starts after" in n for n in result.notes)  # from rest, as activated
+    assert sum(r.mode == "following" for r in result.recorded) > 20, "the live run stopped early"
     assert result.cycles >= 40  # a few seconds at 20 Hz
     c, stream, recorded = compare(result)
     assert c.compared == result.cycles
@@ -68,9 +69,19 @@ def test_cli_writes_bag_report_and_plots(live_bag, tmp_path):
         topics = {c.topic: c.msgcount for c in r.connections}
         records = [decode(raw, "std_msgs/msg/Float64MultiArray") for c, _, raw in
                    r.messages([c for c in r.connections if c.topic == "/adapter/decisions"])]
+        setpoints = [decode(raw, "trajectory_msgs/msg/JointTrajectory") for c, _, raw in
+                     r.messages([c for c in r.connections if c.topic == "/setpoints"])]
     assert topics["/setpoints"] > 10 * facts["cycles"]
     assert topics["/adapter/decisions"] == facts["cycles"]
     again = replay(live_bag)
+    _, stream, _ = compare(again)
+    assert len(setpoints) == len(stream.t)
+    for k in (0, len(setpoints) // 2, -1):
+        pt = setpoints[k].points[0]
+        assert np.array_equal(pt.positions, stream.p[k])
+        assert np.array_equal(pt.accelerations, stream.a[k])
+        stamp = setpoints[k].header.stamp
+        assert abs(stamp.sec + stamp.nanosec * 1e-9 - stream.t[k]) < 1e-6
     for msg, d in zip(records, again.decisions):
         assert msg.layout.dim[0].label == decision_record.LABEL
         a, b = np.array(msg.data, float), decision_record.encode(d)

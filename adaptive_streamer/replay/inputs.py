@@ -1,15 +1,16 @@
 """Rebuild the adapter's `SessionInputs` of each decision cycle from a bag.
 
 The live node (``nodes/adapter.py``) keeps the latest ``reference/window``, ``feedback``
-and valid ``joint_states`` message with its receive time and, at each decision, converts
-them (`AdapterNode._inputs`). `InputRebuilder` does the same conversions on bag messages,
+and ``joint_states`` message with its receive time and, at each decision, converts them
+(`AdapterNode._inputs`; a joint state that cannot be used leaves the one parsed before in
+use). `InputRebuilder` does the same conversions on bag messages,
 with the bag's receive times (the recorder's clock, the same ROS time) standing in for the
 node's:
 
 * `exact`: with a decision record, the window and feedback messages are the ones whose
   ``header.stamp`` equals the record's ``window_stamp`` / ``feedback_stamp`` (of several
   with that stamp, the last received by the decision time), so the policy sees exactly
-  what it saw live; joint states are the latest valid ones received by then.
+  what it saw live; joint states are the latest received by then.
 * `nearest`: without records, every input is the latest message received by ``now``.
 
 Staleness and following-error checks use the recorder's receive times; they can differ
@@ -80,8 +81,9 @@ class InputRebuilder:
         self._window_reader = WindowReader(self.joints)
         self._state_reader = JointStateReader()
         self._window_cache: tuple[int, Window | None] = (-1, None)
-        self._joint_cache: dict[int, tuple[float, float, np.ndarray] | None] = {}
         self._joint_index: dict[tuple[str, ...], list[int]] = {}
+        self._joint_last = -1
+        self._joint_current: tuple[float, float, np.ndarray] | None = None
         self.valid_since: float | None = None
         self.bad_windows = 0
         self.bad_joint_states = 0
@@ -103,8 +105,6 @@ class InputRebuilder:
 
     def _joint(self, i: int) -> tuple[float, float, np.ndarray] | None:
         """(receive time, stamp, positions) as the node stores a joint state; None if bad."""
-        if i in self._joint_cache:
-            return self._joint_cache[i]
         rx = int(self.joint_states.times[i]) * NS
         out: tuple[float, float, np.ndarray] | None
         try:
@@ -120,7 +120,6 @@ class InputRebuilder:
         except (ValueError, IndexError, MessageError):
             self.bad_joint_states += 1
             out = None
-        self._joint_cache[i] = out
         return out
 
     def _feedback(self, parser: FeedbackParser, i: int) -> tuple[float, FeatureVector | None]:
@@ -132,13 +131,16 @@ class InputRebuilder:
             return rx, None
 
     def _latest_joint(self, now_ns: int) -> tuple[float, float, np.ndarray] | None:
+        """As the node: the latest message is parsed when a decision needs it; if it is
+        bad, the joint state parsed before stays in use."""
         i = self.joint_states.latest(now_ns)
-        while i >= 0:
-            js = self._joint(i)
-            if js is not None:
-                return js
-            i -= 1
-        return None
+        if i < 0 or i == self._joint_last:
+            return self._joint_current
+        self._joint_last = i
+        js = self._joint(i)
+        if js is not None:
+            self._joint_current = js
+        return self._joint_current
 
     def _assemble(self, wi: int | None, fi: int | None, now_ns: int) -> SessionInputs:
         window, window_rx = None, None

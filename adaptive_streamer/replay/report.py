@@ -12,6 +12,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
+import struct
 from pathlib import Path
 from typing import Any
 
@@ -21,8 +22,12 @@ from adaptive_streamer.core import decision_record
 
 from .bag_io import BagWriter, encode, typestore
 from .compare import Comparison, Stream
+from .fast_cdr import Layouts
 from .messages import FLOAT64_ARRAY, JOINT_TRAJECTORY
 from .run import ReplayResult
+
+
+_STAMP = struct.Struct("<iI")
 
 
 def _stamp(t: float) -> tuple[int, int]:
@@ -51,14 +56,24 @@ def write_bag(result: ReplayResult, stream: Stream, path: Path) -> Path:
         joints = list(result.setup.joints)
         empty = np.empty(0)
         events: list[tuple[int, int, Any, bytes]] = []
-        for k, t in enumerate(stream.t.tolist()):
-            sec, nsec = _stamp(t)
-            msg = Traj(header=Header(stamp=Time(sec=sec, nanosec=nsec), frame_id=""),
-                       joint_names=joints,
-                       points=[Point(positions=stream.p[k], velocities=stream.v[k],
-                                     accelerations=stream.a[k], effort=empty,
-                                     time_from_start=Duration(sec=0, nanosec=0))])
-            events.append((sec * 1_000_000_000 + nsec, 0, sp, encode(msg, JOINT_TRAJECTORY)))
+        if len(stream.t):
+            # one message serialised by rosbags, then the same layout filled per tick
+            first = Traj(header=Header(stamp=Time(sec=0, nanosec=0), frame_id=""),
+                         joint_names=joints,
+                         points=[Point(positions=stream.p[0], velocities=stream.v[0],
+                                       accelerations=stream.a[0], effort=empty,
+                                       time_from_start=Duration(sec=0, nanosec=0))])
+            template = encode(first, JOINT_TRAJECTORY)
+            lay = Layouts(JOINT_TRAJECTORY).layout(template)
+            slots = [lay.floats[f][0] for f in ("positions", "velocities", "accelerations")]
+            for k, t in enumerate(stream.t.tolist()):
+                sec, nsec = _stamp(t)
+                buf = bytearray(template)
+                view = np.frombuffer(buf, "<f8", count=(len(buf) - 4) // 8, offset=4)
+                view[slots[0]], view[slots[1]], view[slots[2]] = (stream.p[k], stream.v[k],
+                                                                  stream.a[k])
+                _STAMP.pack_into(buf, 4, sec, nsec)
+                events.append((sec * 1_000_000_000 + nsec, 0, sp, bytes(buf)))
         layout = Layout(dim=[Dim(label=decision_record.LABEL, size=0, stride=0)], data_offset=0)
         for d, now in zip(result.decisions, result.now.tolist()):
             msg = F64(layout=layout, data=decision_record.encode(d))

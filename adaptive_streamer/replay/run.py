@@ -175,7 +175,10 @@ def configure(bag: Bag, params_file: str | Path | None, policy: str | None,
             notes.append(f"the adapter's parameters {changed} changed during the recording; "
                          "replay uses their values at the start")
     if params_file is not None:
-        params.update(load_params_file(params_file, node))
+        try:
+            params.update(load_params_file(params_file, node))
+        except SetupError as exc:
+            raise ReplayError(str(exc)) from None
     if info is None and params_file is None:
         raise ReplayError(f"{bag.path}: no run info in the bag (recorded without the "
                           "adapter's parameters); pass --params FILE with the adapter's "
