@@ -71,6 +71,8 @@ class AdapterNode(LifecycleNode):
     def __init__(self, name: str = "adapter", **kwargs: Any) -> None:
         super().__init__(name, **kwargs)
         self._declare_parameters()
+        self._priority_note = _set_thread_priority(
+            int(self.get_parameter("decision_priority").value))
         self._stream_group = MutuallyExclusiveCallbackGroup()
         self._decide_group = MutuallyExclusiveCallbackGroup()
         self._io_group = MutuallyExclusiveCallbackGroup()
@@ -129,6 +131,8 @@ class AdapterNode(LifecycleNode):
         d(self, "joint_states_qos", "sensor_data", "QoS of the joint_states subscription")
         d(self, "feedback_qos", "sensor_data", "QoS of the feedback subscription")
         d(self, "stream_priority", 10, "SCHED_FIFO priority of the stream thread (0: normal)")
+        d(self, "decision_priority", 0, "SCHED_FIFO priority of the thread that runs the "
+          "executor and the decisions (0: normal); below stream_priority")
         d(self, "approach_scale", 0.3, "limit scale of the approach move")
         d(self, "approach_tolerance", 2e-3, "distance [rad] at which the policy takes over")
         d(self, "approach_bandwidth", 4.0, "approach tracking bandwidth [rad/s]")
@@ -615,6 +619,9 @@ class AdapterNode(LifecycleNode):
                  ("decisions", s.cycle.stats.decisions),
                  ("late_decisions", s.late_decisions),
                  ("skipped_ticks", self._ticks.skipped if self._ticks else 0),
+                 ("stream_thread", self._stream_timer.priority_note if self._stream_timer
+                  else "not running"),
+                 ("decision_thread", self._priority_note),
                  ("tick_late_ms_p50", _pct(self._lateness, 50)),
                  ("tick_late_ms_p99", _pct(self._lateness, 99)),
                  ("decision_ms_p50", float(np.median(ts))),
@@ -643,6 +650,17 @@ class AdapterNode(LifecycleNode):
                 self._diag.set(WARN, f"{s.mode}; guard failures {self._counters['guard_failures']}, "
                                f"late decisions {s.late_decisions}")
         return vals
+
+
+def _set_thread_priority(priority: int) -> str:
+    """SCHED_FIFO for the calling thread (the one that will run the executor)."""
+    if priority <= 0:
+        return "executor thread at normal priority"
+    try:
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(priority))
+    except (OSError, AttributeError) as exc:
+        return f"executor thread at normal priority (SCHED_FIFO {priority} refused: {exc})"
+    return f"executor thread at SCHED_FIFO priority {priority}"
 
 
 def _pct(values: deque[float], q: float) -> float:
