@@ -117,10 +117,11 @@ def _batch(args: argparse.Namespace, policies: list[str | None]) -> int:
     hook = "adaptive_streamer.replay.batch:lateral_error_hook" if args.scenario else None
     rows = run_batch(args.bags, policies, args.out, args.params, args.namespace, hook,
                      _hook_options(args) if hook else None, args.jobs)
+    metric = "lateral_rms_mm" if hook else "rms_deviation"
     for r in rows:
         err = f"  error: {r['error']}" if r.get("error") else ""
         print(f"{r['rank']:3d}  {Path(r['bag']).name}  {r['policy']}  "
-              f"rms_deviation {r.get('rms_deviation', float('nan')):.4g}{err}")
+              f"{metric} {r.get(metric, float('nan')):.4g}  trips {r.get('trips', '-')}{err}")
     print(f"written: {Path(args.out) / 'batch.csv'}, {Path(args.out) / 'batch.md'}")
     return 0
 
