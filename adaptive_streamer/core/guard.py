@@ -63,10 +63,14 @@ class SetpointGuard:
         if dt <= 0.0:
             return f"setpoint time {t:.6f} s does not advance past {t0:.6f} s"
         slack = 1e-9
+        # Setpoint and segment times are absolute ROS times in float64, each known only to
+        # its spacing (2.4e-7 s at today's epoch, 1e-4 of a 2 ms tick): the steps are
+        # allowed over dt plus two spacings, or a plan at exactly its limit fails here.
+        span = dt + 2.0 * float(np.spacing(abs(t)))
         for label, step, bound in (
-                ("position", np.abs(p - p0), self._v * dt + slack),
-                ("velocity", np.abs(v - v0), self._a * dt + slack),
-                ("acceleration", np.abs(a - a0), self._j * dt + slack)):
+                ("position", np.abs(p - p0), self._v * span + slack),
+                ("velocity", np.abs(v - v0), self._a * span + slack),
+                ("acceleration", np.abs(a - a0), self._j * span + slack)):
             bad = step > bound
             if bad.any():
                 i = int(np.argmax(bad))
