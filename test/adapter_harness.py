@@ -11,6 +11,7 @@
 """
 from __future__ import annotations
 
+import gc
 import math
 import threading
 import time
@@ -411,6 +412,7 @@ class Probe(Node):
         self.ref_block = False
         self.ref_offset = 0.0
         self.ref_truncate = False
+        self.last_window: JointTrajectory | None = None
         self.feedback: dict[str, float] | None = None
         big = reliable_qos(1000)
         self.create_subscription(JointTrajectory, "setpoints",
@@ -461,6 +463,7 @@ class Probe(Node):
         self.js_pub.publish(msg)
 
     def _relay_ref(self, msg: JointTrajectory) -> None:
+        self.last_window = msg
         if self.ref_block:
             return
         if self.ref_offset:
@@ -540,6 +543,11 @@ class Cell:
             self.adapter_ex.add_node(self.adapter)
             self._threads.append(threading.Thread(target=self._spin, args=(self.adapter_ex,),
                                                   daemon=True))
+        # Everything built so far (modules, nodes, models) lives as long as the test: keep it
+        # out of the collector, whose full passes over it stall every thread for 0.1-0.3 s
+        # here (the adapter shares this process) and would trip the watchdog's timeouts.
+        gc.collect()
+        gc.freeze()
         for th in self._threads:
             th.start()
 

@@ -17,6 +17,7 @@ from lifecycle_msgs.msg import Transition
 from std_msgs.msg import Float64MultiArray
 
 import adapter_harness as h
+from adaptive_streamer.core.limits import JointLimits
 
 pytestmark = pytest.mark.ros
 
@@ -167,3 +168,38 @@ def test_deactivate_mid_motion_stops_smoothly_then_deactivates_publishers(cell):
     assert h.at_rest(stop[-1:]), (stop[-1].velocity, stop[-1].acceleration)
     assert cell.probe.driver_positions[-1] == tuple(stop[-1].position)
     cell.wait_diag(lambda v: v.get("status") == "inactive", "inactive on /diagnostics")
+
+
+def test_reconfigure_and_activation_refused_outside_the_position_range(cell):
+    # cleanup -> configure again with limits whose j1 range ends 0.05 rad below the parked
+    # arm: configure works again, activation is refused and names the joint and its range
+    assert cell.state() == "inactive"
+    assert cell.transition(Transition.TRANSITION_CLEANUP)
+    here = cell.probe.setpoints[-1].position
+    lim = h.LIMITS
+    pmax = lim.position_max.copy()
+    pmax[0] = here[0] - 0.05
+    narrow = JointLimits(lim.names, lim.position_min, pmax, lim.velocity_max,
+                         lim.acceleration_max, lim.jerk_max, lim.continuous)
+    narrow_file = h.write_limits(cell.folder, "narrow", narrow)
+    card = h.write_card(cell.folder, "narrow_tracker", "tracker", limits=str(narrow_file))
+    cell.set_params(limits_file=str(narrow_file), policy=str(card))
+    assert cell.transition(Transition.TRANSITION_CONFIGURE)
+    count = len(cell.probe.setpoints)
+    n_logs = len(cell.probe.logs)
+    time.sleep(0.3)
+    assert not cell.transition(Transition.TRANSITION_ACTIVATE)
+    logs = adapter_logs(cell, n_logs)
+    assert any("activate refused" in m and "'j1'" in m and "position range" in m
+               for m in logs), logs
+    time.sleep(0.3)
+    assert len(cell.probe.setpoints) == count
+    # back to the demo limits: activation works from the same place
+    assert cell.transition(Transition.TRANSITION_CLEANUP)
+    cell.set_params(limits_file=str(h.LIMITS_FILE), policy=str(cell.folder / "tracker.card.yaml"))
+    assert cell.transition(Transition.TRANSITION_CONFIGURE)
+    time.sleep(0.3)
+    assert cell.transition(Transition.TRANSITION_ACTIVATE)
+    cell.wait_mode("following")
+    check = h.check_stream(cell.samples_since(cell.now() - 1.0))
+    assert check.ok, check.describe()

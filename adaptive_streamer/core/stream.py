@@ -85,7 +85,15 @@ class CommandPlan:
         k = math.floor((t - first) / self.period + 1e-9)
         if k < 0 or t > self.end + 1e-9:
             raise StreamError(f"time {t:.6f} s outside the plan [{first:.6f}, {self.end:.6f}] s")
-        return segs[min(k, len(segs) - 1)]
+        k = min(k, len(segs) - 1)
+        # The index from the period is one off near a boundary when the float times round
+        # the other way (absolute ROS times resolve 2.4e-7 s) or the starts, each the previous
+        # one plus T in float64, have drifted from first + k T: the starts decide.
+        if k + 1 < len(segs) and t >= segs[k + 1].start:
+            k += 1
+        elif k > 0 and t < segs[k].start:
+            k -= 1
+        return segs[k]
 
     def sample(self, t: float) -> MotionState:
         """Commanded position, velocity and acceleration at nominal time ``t``."""

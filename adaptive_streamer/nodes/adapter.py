@@ -215,6 +215,7 @@ class AdapterNode(LifecycleNode):
         try:
             self._configure()
         except Exception as exc:
+            self._destroy_configured()
             self.get_logger().error(f"configure refused: {exc}")
             self._status = f"configure refused: {exc}"
             self._diag.set(ERROR, self._status)
@@ -329,6 +330,15 @@ class AdapterNode(LifecycleNode):
                 f"activate refused: joint '{self._joints[i]}' is moving at {velocities[i]:.4g} "
                 f"rad/s (activation_velocity {still:g})")
             return TransitionCallbackReturn.FAILURE
+        lim = session.limits
+        outside = (positions < lim.position_min) | (positions > lim.position_max)
+        if outside.any():  # the guard would hold back every setpoint of the recovery move
+            i = int(np.argmax(outside))
+            self.get_logger().error(
+                f"activate refused: joint '{self._joints[i]}' is at {positions[i]:.6g} rad, "
+                f"outside its position range [{lim.position_min[i]:.6g}, "
+                f"{lim.position_max[i]:.6g}] rad (limits_file); bring it into the range first")
+            return TransitionCallbackReturn.FAILURE
         z = np.zeros(len(self._joints))
         t0 = math.ceil(now * self._rate) / self._rate
         session.begin(t0, MotionState(positions, z, z))
@@ -381,9 +391,27 @@ class AdapterNode(LifecycleNode):
             self._decide_gc = None
 
     def on_cleanup(self, state: LifecycleState) -> TransitionCallbackReturn:
-        self.session = None
+        self._destroy_configured()
         self._status = "unconfigured"
         return super().on_cleanup(state)
+
+    def _destroy_configured(self) -> None:
+        """Destroy what `_configure` created, so that a later configure can create it anew."""
+        pubs = [getattr(self, n, None) for n in ("_setpoint_pub", "_shadow_pub", "_decision_pub")]
+        pubs += [out.publisher for out in getattr(self, "_outputs", [])]
+        for pub in pubs:
+            if pub is not None:
+                self.destroy_lifecycle_publisher(pub)
+        for sub in getattr(self, "_subs", []):
+            self.destroy_subscription(sub)
+        for srv in getattr(self, "_adapter_services", []):
+            self.destroy_service(srv)
+        if getattr(self, "_pause_client", None) is not None:
+            self.destroy_client(self._pause_client)
+        self._setpoint_pub = self._shadow_pub = self._decision_pub = self._pause_client = None
+        self._outputs, self._subs, self._adapter_services = [], [], []
+        self._latest.clear()
+        self.session = None
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
         if state.state_id == StateMsg.PRIMARY_STATE_ACTIVE:
@@ -550,8 +578,10 @@ class AdapterNode(LifecycleNode):
         def done(f: Any) -> None:
             try:
                 res = f.result()
-                level = self.get_logger().info if res.success else self.get_logger().warn
-                level(f"reference pause: {res.message}")
+                if res.success:  # one severity per call site (rclpy refuses a change)
+                    self.get_logger().info(f"reference pause: {res.message}")
+                else:
+                    self.get_logger().warn(f"reference pause: {res.message}")
             except Exception as exc:
                 self.get_logger().warn(f"reference pause failed: {exc}")
         future.add_done_callback(done)

@@ -51,19 +51,19 @@ class DriverOutput:
 
     def __init__(self, node: Node, name: str, joints: Sequence[str], rate: float,
                  callback_group: Any = None, managed: bool = True) -> None:
-        kind = declare(node, f"{name}.type", "position", "position | velocity | trajectory")
+        kind = _declared(node, f"{name}.type", "position", "position | velocity | trajectory")
         if kind not in OUTPUT_TYPES:
             raise OutputConfigError(f"output '{name}': type '{kind}' is not one of {list(OUTPUT_TYPES)}")
-        topic = declare(node, f"{name}.topic", DEFAULT_TOPICS[kind], "topic of this output")
-        order = list(declare(node, f"{name}.joints", [""], "driver joint order (empty: adapter order)"))
+        topic = _declared(node, f"{name}.topic", DEFAULT_TOPICS[kind], "topic of this output")
+        order = list(_declared(node, f"{name}.joints", [""], "driver joint order (empty: adapter order)"))
         order = [j for j in order if j] or list(joints)
         missing = [j for j in order if j not in joints]
         if missing or len(set(order)) != len(order) or len(order) != len(joints):
             raise OutputConfigError(
                 f"output '{name}': joints {order} must be the adapter's joints {list(joints)} "
                 "in the driver's order, each once")
-        qos_name = declare(node, f"{name}.qos", "reliable", "reliable | best_effort | sensor_data")
-        depth = int(declare(node, f"{name}.depth", 1, "history depth"))
+        qos_name = _declared(node, f"{name}.qos", "reliable", "reliable | best_effort | sensor_data")
+        depth = int(_declared(node, f"{name}.depth", 1, "history depth"))
         try:
             qos = qos_by_name(qos_name, depth)
         except ValueError as exc:
@@ -108,6 +108,13 @@ class DriverOutput:
         return {f"output.{self.name}.topic": self.topic,
                 f"output.{self.name}.subscribers": self.publisher.get_subscription_count(),
                 f"output.{self.name}.incompatible_qos": self.incompatible_qos}
+
+
+def _declared(node: Node, name: str, default: Any, description: str) -> Any:
+    """The parameter's value, declared on first use (outputs are rebuilt on each configure)."""
+    if node.has_parameter(name):
+        return node.get_parameter(name).value
+    return declare(node, name, default, description)
 
 
 def fill_setpoint(msg: JointTrajectory, t: float, sp: MotionState) -> None:
