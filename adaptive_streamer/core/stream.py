@@ -132,7 +132,9 @@ class StreamClock:
 
     def due(self, now: float) -> int | None:
         """Index of the tick to publish at wake-up time ``now`` (None if none is due yet)."""
-        i = math.floor((now - self.t0) * self.rate + 1e-6)
+        # a tick is due from its nominal time on, to within the float64 resolution of the
+        # absolute times (2.4e-7 s at today's epoch, far above a 1e-6 tick tolerance)
+        i = math.floor((now - self.t0) * self.rate + 1e-6 + 4.0 * math.ulp(now) * self.rate)
         if i <= self.last_index:
             return None
         if self.last_index >= 0 and i > self.last_index + 1:
