@@ -64,6 +64,9 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
         text = expand(path.read_text())
     except OSError as exc:
         raise BringupError(f"cannot read params file '{path}': {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
+        raise BringupError(f"{path}: not a UTF-8 text file ({exc.reason} at byte "
+                           f"{exc.start})") from None
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
@@ -77,13 +80,19 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
             continue
         if not isinstance(body, dict) or "ros__parameters" not in body:
             raise BringupError(f"{path}: '{key}' has no 'ros__parameters' mapping")
+        params = body["ros__parameters"]
+        if params is not None and not isinstance(params, dict):
+            raise BringupError(f"{path}: '{key}': ros__parameters must be a mapping of "
+                               f"parameter names to values, got {params!r}")
         parts = [p for p in key.split("/") if p]
+        if not parts:
+            raise BringupError(f"{path}: '{key}' names no node")
         kind = parts[-1]
         if kind not in NODE_KINDS:
             raise BringupError(f"{path}: unknown node '{kind}' (from '{key}'); this package's "
                                f"nodes are {sorted(NODE_KINDS)}")
         ns = "/" + "/".join(parts[:-1]) if len(parts) > 1 else ""
-        nodes.append(NodeEntry(kind, ns, dict(body["ros__parameters"] or {})))
+        nodes.append(NodeEntry(kind, ns, dict(params or {})))
     if not nodes:
         raise BringupError(f"{path}: names no node")
     return nodes, text

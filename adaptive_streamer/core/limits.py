@@ -201,6 +201,9 @@ class JointLimits:
             text = path.read_text()
         except OSError as exc:
             raise LimitsError(f"cannot read limits file '{path}': {exc.strerror}") from None
+        except UnicodeDecodeError as exc:
+            raise LimitsError(f"{path}: not a UTF-8 text file ({exc.reason} at byte "
+                              f"{exc.start})") from None
         if path.suffix.lower() in (".urdf", ".xml") or text.lstrip().startswith("<"):
             dyn = Path(dynamics) if dynamics else path.with_name(path.stem + ".limits.yaml")
             return cls.from_urdf_string(text, dyn, source=str(path))
@@ -234,6 +237,9 @@ class JointLimits:
                     f"YAML '{dynamics}' beside it: {exc.strerror}") from None
             except yaml.YAMLError as exc:
                 raise LimitsError(f"{dynamics}: not valid YAML: {exc}") from None
+            except UnicodeDecodeError as exc:
+                raise LimitsError(f"{dynamics}: not a UTF-8 text file ({exc.reason} at byte "
+                                  f"{exc.start})") from None
         if not isinstance(dyn, Mapping) or not isinstance(dyn.get("joints"), Mapping):
             raise LimitsError(f"{dyn_source}: expected a top-level 'joints:' mapping")
         names, rows = [], []

@@ -345,6 +345,9 @@ def _read_text(path: Path) -> str:
         return path.read_text()
     except OSError as exc:
         raise ReferenceFileError(f"cannot read reference file '{path}': {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
+        raise ReferenceFileError(f"{path}: not a UTF-8 text file ({exc.reason} at byte "
+                                 f"{exc.start})") from None
 
 
 def _check_samples(src: str, names: Sequence[str], times: Sequence[float] | None,

@@ -196,6 +196,9 @@ def load_card(card_path: str | Path) -> PolicyCard:
         text = path.read_text()
     except OSError as exc:
         raise CardError(f"cannot read policy card '{path}': {exc.strerror}") from None
+    except UnicodeDecodeError as exc:
+        raise CardError(f"{path}: not a UTF-8 text file ({exc.reason} at byte "
+                        f"{exc.start})") from None
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
