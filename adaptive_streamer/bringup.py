@@ -144,7 +144,7 @@ def run_one_process(entries: list[NodeEntry], params_file: str) -> int:
     def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
         for node in nodes:
             if isinstance(node, AdapterNode):
-                node._stop_and_wait()
+                node.stop_at_rest()
 
     def activate(nodes: list) -> None:
         for node in nodes:

@@ -375,6 +375,11 @@ class AdapterNode(LifecycleNode):
         self.get_logger().error("stop_timeout: deactivating before the plan reached rest")
         return False
 
+    def stop_at_rest(self) -> None:
+        """Bring the arm to rest, then stop the stream (process shutdown)."""
+        self._stop_and_wait()
+        self._teardown_timers()
+
     def on_deactivate(self, state: LifecycleState) -> TransitionCallbackReturn:
         self._stop_and_wait()
         self._teardown_timers()
@@ -710,7 +715,7 @@ def main(args: list[str] | None = None) -> int:
     def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
         for node in nodes:
             if isinstance(node, AdapterNode):
-                node._stop_and_wait()
+                node.stop_at_rest()
     return common.run_nodes([AdapterNode], args, executor=make_executor,
                             before_shutdown=bring_to_rest)
 
