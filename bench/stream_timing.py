@@ -28,7 +28,6 @@ No assertions: figures only (the machine is shared).
 from __future__ import annotations
 
 import argparse
-import math
 import os
 import signal
 import subprocess
@@ -140,7 +139,6 @@ def stop_process(proc: subprocess.Popen) -> None:
 def measure(folder: Path, cards: dict[str, Path], rate: float, duration: float, swaps: int,
             priority: int) -> None:
     """One run at ``rate``: stream for ``duration`` s, then ``swaps`` policy swaps."""
-    import rclpy
     from diagnostic_msgs.msg import DiagnosticArray
     from rclpy.executors import SingleThreadedExecutor
     from rclpy.node import Node

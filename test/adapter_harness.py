@@ -22,7 +22,6 @@ from typing import Any, Callable
 import numpy as np
 import onnx
 import onnxruntime as ort
-import rclpy
 import yaml
 from diagnostic_msgs.msg import DiagnosticArray
 from lifecycle_msgs.msg import Transition
@@ -37,8 +36,9 @@ from rclpy.parameter_client import AsyncParameterClient
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, Float64MultiArray
 from std_srvs.srv import Trigger
-from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
+from trajectory_msgs.msg import JointTrajectory
 
+from adaptive_streamer.core.decision_record import decode
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.policies.card import default_natural_frequency
 from adaptive_streamer.nodes.adapter import AdapterNode, make_executor
@@ -520,12 +520,16 @@ class Cell:
     driver starts at its first point, so activation hands over to the policy at once.
     """
 
-    def __init__(self, folder: Path, policy: Path, adapter: bool = True,
-                 **adapter_params: Any) -> None:
+    def __init__(self, folder: Path, policy: Path, **adapter_params: Any) -> None:
         self.folder = folder
         self.reference_file = write_reference(folder)
         self.probe = Probe()
-        self.reference = self._make_reference()
+        self.reference = ReferenceServer(
+            parameter_overrides=[Parameter("reference_file", value=str(self.reference_file)),
+                                 Parameter("limits_file", value=str(LIMITS_FILE)),
+                                 Parameter("end_mode", value="loop"),
+                                 Parameter("decision_period", value=PERIOD)],
+            cli_args=["--ros-args", "-r", "reference/window:=raw/reference/window"])
         self.driver = SimDriver(
             parameter_overrides=[Parameter("joints", value=JOINTS),
                                  Parameter("initial_positions", value=P0.tolist())],
@@ -533,31 +537,17 @@ class Cell:
         self.cell_ex = SingleThreadedExecutor()
         for node in (self.probe, self.reference, self.driver):
             self.cell_ex.add_node(node)
-        self._threads = [threading.Thread(target=self._spin, args=(self.cell_ex,), daemon=True)]
-        self.adapter: AdapterNode | None = None
-        self.adapter_ex = None
-        if adapter:
-            self.adapter = AdapterNode(parameter_overrides=adapter_overrides(policy,
-                                                                             **adapter_params))
-            self.adapter_ex = make_executor()
-            self.adapter_ex.add_node(self.adapter)
-            self._threads.append(threading.Thread(target=self._spin, args=(self.adapter_ex,),
-                                                  daemon=True))
+        self.adapter = AdapterNode(parameter_overrides=adapter_overrides(policy,
+                                                                         **adapter_params))
+        self.adapter_ex = make_executor()
+        self.adapter_ex.add_node(self.adapter)
         # Everything built so far (modules, nodes, models) lives as long as the test: keep it
         # out of the collector, whose full passes over it stall every thread for 0.1-0.3 s
         # here (the adapter shares this process) and would trip the watchdog's timeouts.
         gc.collect()
         gc.freeze()
-        for th in self._threads:
-            th.start()
-
-    def _make_reference(self) -> ReferenceServer:
-        return ReferenceServer(
-            parameter_overrides=[Parameter("reference_file", value=str(self.reference_file)),
-                                 Parameter("limits_file", value=str(LIMITS_FILE)),
-                                 Parameter("end_mode", value="loop"),
-                                 Parameter("decision_period", value=PERIOD)],
-            cli_args=["--ros-args", "-r", "reference/window:=raw/reference/window"])
+        for ex in (self.cell_ex, self.adapter_ex):
+            threading.Thread(target=self._spin, args=(ex,), daemon=True).start()
 
     @staticmethod
     def _spin(ex: Any) -> None:
@@ -568,14 +558,12 @@ class Cell:
 
     def close(self) -> None:
         """Deactivate (if active), destroy every node and stop the executors."""
-        if self.adapter is not None and self.state() == "active":
+        if self.state() == "active":
             self.transition(Transition.TRANSITION_DEACTIVATE)
         for ex in (self.adapter_ex, self.cell_ex):
-            if ex is not None:
-                ex.shutdown(timeout_sec=2.0)
+            ex.shutdown(timeout_sec=2.0)
         for node in (self.adapter, self.reference, self.driver, self.probe):
-            if node is not None:
-                node.destroy_node()
+            node.destroy_node()
 
     # ---------------------------------------------------------------- services
     def call(self, srv_type: Any, name: str, request: Any = None, timeout: float = 15.0) -> Any:
@@ -637,7 +625,6 @@ class Cell:
 
     def mode(self) -> str | None:
         """Mode after the latest decision record on ~/decisions (None before any)."""
-        from adaptive_streamer.core.decision_record import decode
         if not self.probe.decisions:
             return None
         return decode(self.probe.decisions[-1]).next_mode

@@ -14,7 +14,6 @@ import time
 import numpy as np
 import pytest
 import rclpy
-from lifecycle_msgs.msg import Transition
 
 import adapter_harness as h
 from adaptive_streamer.core.decision_record import decode
