@@ -39,7 +39,7 @@ from adaptive_streamer.replay.compare import compare  # noqa: E402
 from adaptive_streamer.replay.messages import JointStateReader, WindowReader  # noqa: E402
 from adaptive_streamer.replay.report import write_bag  # noqa: E402
 from adaptive_streamer.replay.run import open_bag, replay  # noqa: E402
-from adaptive_streamer.replay.session_setup import build_session  # noqa: E402
+from adaptive_streamer.core.adapter_setup import build_session  # noqa: E402
 
 PERIOD, RATE, HORIZON = 0.05, 250.0, 10   # common practice: 50 ms decisions, 250 Hz stream
 CYCLES = 3000

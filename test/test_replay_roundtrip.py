@@ -19,7 +19,7 @@ from adaptive_streamer.replay import cli_replay
 from adaptive_streamer.replay.bag_io import decode
 from adaptive_streamer.replay.compare import compare
 from adaptive_streamer.replay.run import replay
-from adaptive_streamer.replay.session_setup import DEFAULTS
+from adaptive_streamer.core.adapter_setup import DEFAULTS
 import replay_harness
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]

@@ -29,7 +29,6 @@ from collections import deque
 from typing import Any
 
 import numpy as np
-import rclpy
 from lifecycle_msgs.msg import State as StateMsg
 from rcl_interfaces.msg import SetParametersResult
 from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
@@ -43,15 +42,12 @@ from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
 
 from adaptive_streamer.core import decision_record
-from adaptive_streamer.core.cycle import CycleConfig
-from adaptive_streamer.core.feedback import FeedbackParser
-from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.policies import build_policy, load_card, load_policy, policy_for_kind
-from adaptive_streamer.core.policies.base import PolicyInputs, RunningConfig
+from adaptive_streamer.core.adapter_setup import DEFAULTS, WATCHDOG_PARAMS, build_session
+from adaptive_streamer.core.policies import load_policy
+from adaptive_streamer.core.policies.base import PolicyInputs
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import StreamClock
-from adaptive_streamer.core.watchdog import WatchdogConfig
 
 from . import common
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, stamp_to_sec
@@ -59,9 +55,6 @@ from .driver_outputs import DriverOutput, fill_setpoint, setpoint_message
 from .stream_thread import StreamThread
 from .trajectory_conversions import TrajectoryMessageError, msg_to_window
 
-WATCHDOG_PARAMS = ("deviation_joint", "deviation_norm", "following_error", "command_latency",
-                   "joint_states_timeout", "feedback_timeout", "reference_timeout",
-                   "max_overruns", "overrun_window")
 RUNTIME_PARAMS = ("policy", "shadow_policy", "limit_scale", "policy_active")
 
 
@@ -111,18 +104,27 @@ class AdapterNode(LifecycleNode):
     # ------------------------------------------------------------------ parameters
     def _declare_parameters(self) -> None:
         d = declare
-        d(self, "policy", "", "path of the policy card; setting it swaps the policy")
-        d(self, "shadow_policy", "", "optional policy card evaluated alongside, never commanded")
+        d(self, "policy", DEFAULTS["policy"],
+          "path of the policy card; setting it swaps the policy")
+        d(self, "shadow_policy", DEFAULTS["shadow_policy"],
+          "optional policy card evaluated alongside, never commanded")
         d(self, "policy_active", "", "read-only: the policy card that really runs")
-        d(self, "limits_file", "", "limits YAML or URDF (empty: robot_description topic)")
-        d(self, "limits_dynamics", "", "limits YAML with acceleration/jerk beside a URDF")
-        d(self, "joints", [""], "joint order (empty: the limits file's order)")
-        d(self, "decision_period", 0.05, "decision period [s] (read at configure)")
-        d(self, "stream_rate", 250.0, "setpoint stream rate [Hz], 125-1000 (read at configure)")
-        d(self, "horizon", 10, "reference points per decision (read at configure)")
-        d(self, "limit_scale", 1.0, "scale of velocity/acceleration/jerk limits in (0, 1]")
-        d(self, "features", [""], "feedback features to read (empty: what the policy needs)")
-        d(self, "outputs", ["position"], "driver output names (see driver_outputs)")
+        d(self, "limits_file", DEFAULTS["limits_file"],
+          "limits YAML or URDF (empty: robot_description topic)")
+        d(self, "limits_dynamics", DEFAULTS["limits_dynamics"],
+          "limits YAML with acceleration/jerk beside a URDF")
+        d(self, "joints", DEFAULTS["joints"], "joint order (empty: the limits file's order)")
+        d(self, "decision_period", DEFAULTS["decision_period"],
+          "decision period [s] (read at configure)")
+        d(self, "stream_rate", DEFAULTS["stream_rate"],
+          "setpoint stream rate [Hz], 125-1000 (read at configure)")
+        d(self, "horizon", DEFAULTS["horizon"],
+          "reference points per decision (read at configure)")
+        d(self, "limit_scale", DEFAULTS["limit_scale"],
+          "scale of velocity/acceleration/jerk limits in (0, 1]")
+        d(self, "features", DEFAULTS["features"],
+          "feedback features to read (empty: what the policy needs)")
+        d(self, "outputs", DEFAULTS["outputs"], "driver output names (see driver_outputs)")
         d(self, "autostart", False, "configure and activate on start")
         d(self, "activation_velocity", 0.02, "max |joint velocity| to accept activation [rad/s]")
         d(self, "stop_timeout", 5.0, "max wait for rest on deactivate [s]")
@@ -133,12 +135,13 @@ class AdapterNode(LifecycleNode):
         d(self, "stream_priority", 10, "SCHED_FIFO priority of the stream thread (0: normal)")
         d(self, "decision_priority", 0, "SCHED_FIFO priority of the thread that runs the "
           "executor and the decisions (0: normal); below stream_priority")
-        d(self, "approach_scale", 0.3, "limit scale of the approach move")
-        d(self, "approach_tolerance", 2e-3, "distance [rad] at which the policy takes over")
-        d(self, "approach_bandwidth", 4.0, "approach tracking bandwidth [rad/s]")
-        defaults = WatchdogConfig()
+        d(self, "approach_scale", DEFAULTS["approach_scale"], "limit scale of the approach move")
+        d(self, "approach_tolerance", DEFAULTS["approach_tolerance"],
+          "distance [rad] at which the policy takes over")
+        d(self, "approach_bandwidth", DEFAULTS["approach_bandwidth"],
+          "approach tracking bandwidth [rad/s]")
         for key in WATCHDOG_PARAMS:
-            d(self, f"watchdog.{key}", getattr(defaults, key), f"watchdog threshold '{key}'")
+            d(self, f"watchdog.{key}", DEFAULTS[f"watchdog.{key}"], f"watchdog threshold '{key}'")
 
     def _param(self, name: str) -> Any:
         return self.get_parameter(name).value
@@ -224,53 +227,15 @@ class AdapterNode(LifecycleNode):
         self._diag.set(OK, "configured")
         return super().on_configure(state)
 
-    def _load_limits(self) -> JointLimits:
-        path = self._param("limits_file")
-        if path:
-            limits = JointLimits.from_file(path, self._param("limits_dynamics") or None)
-        else:
-            if self._robot_description is None:
-                raise ValueError("limits_file is empty and no robot_description was received")
-            dyn = self._param("limits_dynamics")
-            if not dyn:
-                raise ValueError("limits from robot_description need limits_dynamics (a limits "
-                                 "YAML with acceleration and jerk)")
-            limits = JointLimits.from_urdf_string(self._robot_description, dyn)
-        joints = [j for j in self._param("joints") if j]
-        return limits.subset(joints) if joints else limits
-
     def _configure(self) -> None:
-        limits = self._load_limits()
-        period = float(self._param("decision_period"))
-        rate = float(self._param("stream_rate"))
-        if not 125.0 <= rate <= 1000.0:
-            raise ValueError(f"stream_rate must be within 125-1000 Hz, got {rate:g}")
-        if not (0.001 <= period <= 1.0):
-            raise ValueError(f"decision_period must be within 1 ms - 1 s, got {period:g}")
-        horizon = int(self._param("horizon"))
-        card = self._param("policy")
-        if not card:
-            raise ValueError("parameter 'policy' (path of a policy card) is empty")
-        features = [f for f in self._param("features") if f]
-        parsed = load_card(card)
-        self._running = RunningConfig(limits.names, period, limits, horizon,
-                                      tuple(features or parsed.feedback_features))
-        policy = build_policy(parsed, self._running)
-        shadow = None
-        if self._param("shadow_policy"):
-            shadow = load_policy(self._param("shadow_policy"), self._running)
-        w = 2.0 * float(self._param("approach_bandwidth"))
-        approach = policy_for_kind("tracker", self._running, kp=(w / 2) ** 2, kd=w)
-        wd = WatchdogConfig(**{k: self._param(f"watchdog.{k}") for k in WATCHDOG_PARAMS})
-        cc = CycleConfig(horizon=horizon, approach_scale=float(self._param("approach_scale")),
-                         approach_tolerance=float(self._param("approach_tolerance")),
-                         approach_bandwidth=float(self._param("approach_bandwidth")))
-        self.session = StreamingSession(limits, period, policy, approach, cc, wd,
-                                        float(self._param("limit_scale")), shadow)
+        params = {n: self._param(n) for n in DEFAULTS}
+        setup = build_session(params, robot_description=self._robot_description)
+        self.session, self._running = setup.session, setup.running
+        card, rate = params["policy"], setup.rate
         self._set_internal("policy_active", card)
-        self._joints = list(limits.names)
+        self._joints = list(self._running.joints)
         self._rate = rate
-        self._parser = FeedbackParser(self._running.features) if self._running.features else None
+        self._parser = setup.parser
         self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
                          for name in self._param("outputs") if name]
         self._setpoint_pub = self.create_lifecycle_publisher(

@@ -32,6 +32,8 @@ TRANSITIONS = {"configure": Transition.TRANSITION_CONFIGURE,
                "deactivate": Transition.TRANSITION_DEACTIVATE,
                "cleanup": Transition.TRANSITION_CLEANUP,
                "shutdown": Transition.TRANSITION_UNCONFIGURED_SHUTDOWN}
+GOAL_STATES = {"configure": "inactive", "activate": "active", "deactivate": "inactive",
+               "cleanup": "unconfigured", "shutdown": "finalized"}
 
 
 class LifecycleClientError(RuntimeError):
@@ -58,10 +60,19 @@ class LifecycleClient:
         return res.current_state.label
 
     def transition(self, name: str, timeout: float = 15.0) -> bool:
-        """Request a transition by name; True when the node accepted it."""
+        """Request a transition by name; True when the node accepted it.
+
+        A change_state request is never sent twice; if its answer does not arrive in time
+        (lost while discovery settles), the node's state tells whether it happened.
+        """
         req = ChangeState.Request()
         req.transition.id = TRANSITIONS[name]
-        return bool(self._call(self._change, req, timeout).success)
+        try:
+            return bool(self._call(self._change, req, timeout).success)
+        except LifecycleClientError:
+            if self.state(5.0) == GOAL_STATES.get(name):
+                return True
+            raise
 
     def configure(self, timeout: float = 15.0) -> bool:
         """configure transition."""

@@ -8,7 +8,6 @@ module              holds
 ``run_info``        the adapter's parameters and files stored in a bag
 ``fast_cdr``        exact, fast reading of the per-cycle message types
 ``messages``        bag bytes -> windows, joint states, decision records
-``session_setup``   the adapter's `StreamingSession` from its parameters (no ROS)
 ``inputs``          per-cycle `SessionInputs` rebuilt from a bag
 ``run``             `replay`: the decision cycles re-run on a bag
 ``compare``         replayed vs recorded: decisions, setpoints, limits, trips, timing
@@ -17,4 +16,7 @@ module              holds
 ``live``            republishing a bag's inputs with /clock in (scaled) real time
 ``cli_replay``      ``adaptive-streamer replay``
 ==================  ===============================================================
+
+The session itself is built by `adaptive_streamer.core.adapter_setup.build_session`, the
+same function the live adapter's configure step calls.
 """

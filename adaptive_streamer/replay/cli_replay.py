@@ -64,7 +64,7 @@ def run(args: argparse.Namespace) -> int:
     from .live import LiveReplayError
     from .run import ReplayError
     from .run_info import RunInfoError
-    from .session_setup import SetupError
+    from ..core.adapter_setup import SetupError
     try:
         if args.live:
             return _live(args)

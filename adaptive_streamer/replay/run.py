@@ -1,7 +1,7 @@
 """Offline replay: the adapter's decision cycles re-run on a bag, as fast as possible.
 
 `replay` opens a bag, finds what ran (the run info the recorder stored, or ``--params``),
-builds the same `StreamingSession` the adapter builds (`session_setup`), and drives it as
+builds the same `StreamingSession` the adapter builds (`core.adapter_setup`), and drives it as
 the node does, without DDS:
 
 * with decision records (``<adapter>/decisions``), each recorded cycle is re-run at its
@@ -42,7 +42,7 @@ from .bag_io import Bag, TopicData, read_bag
 from .inputs import InputRebuilder
 from .messages import (BOOL, FLOAT64_ARRAY, JOINT_STATE, JOINT_TRAJECTORY, MessageError,
                        STRING, JointStateReader, decision_records, read_bool, read_string)
-from .session_setup import (DEFAULTS, SessionSetup, SetupError, build_session,
+from ..core.adapter_setup import (DEFAULTS, SessionSetup, SetupError, build_session,
                             load_params_file)
 
 # logical input -> (relative name, expected type); resolved in the adapter's namespace

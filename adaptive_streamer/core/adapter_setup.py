@@ -1,12 +1,13 @@
-"""The adapter's streaming session, built from its parameters without ROS.
+"""The adapter's streaming session, built from its parameter values (no ROS).
 
-`build_session` does what the adapter node's configure step does (``nodes/adapter.py``,
-``AdapterNode._configure``): the same parameter names and defaults, the same limits,
-running configuration, policy, approach tracker, watchdog and cycle settings, so a replay
-decides as the live node did. `load_params_file` reads the adapter's section of a standard
-ROS 2 params file.
+`build_session` IS the adapter node's configure step (``nodes/adapter.py`` calls it with
+its parameter values) and the offline replay's: the same parameter names and `DEFAULTS`,
+limits, running configuration, policy, approach tracker, watchdog and cycle settings, so a
+replay decides exactly as the live node did. `load_params_file` reads the adapter's
+section of a standard ROS 2 params file.
 
-Policies: a card path, or a built-in kind (``tracker``, ``hold``) given as ``--policy``.
+Policies: a card path, or a built-in kind (``tracker``, ``hold``) (e.g. replay's
+``--policy``).
 """
 from __future__ import annotations
 
@@ -16,14 +17,13 @@ from typing import Any, Mapping
 
 import yaml
 
-from adaptive_streamer.core.cycle import CycleConfig
-from adaptive_streamer.core.feedback import FeedbackParser
-from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.policies import (BUILT_IN_KINDS, build_policy, load_card,
-                                             load_policy, policy_for_kind)
-from adaptive_streamer.core.policies.base import RunningConfig
-from adaptive_streamer.core.session import StreamingSession
-from adaptive_streamer.core.watchdog import WatchdogConfig
+from .cycle import CycleConfig
+from .feedback import FeedbackParser
+from .limits import JointLimits
+from .policies import BUILT_IN_KINDS, build_policy, load_card, load_policy, policy_for_kind
+from .policies.base import RunningConfig
+from .session import StreamingSession
+from .watchdog import WatchdogConfig
 
 WATCHDOG_PARAMS = ("deviation_joint", "deviation_norm", "following_error", "command_latency",
                    "joint_states_timeout", "feedback_timeout", "reference_timeout",
@@ -77,7 +77,7 @@ def _flatten(data: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
 
 def load_params_file(path: str | Path, node: str = "adapter") -> dict[str, Any]:
     """The ``ros__parameters`` of ``node`` (its base name, or ``/**``) in a params file."""
-    from adaptive_streamer.share import expand
+    from ..share import expand
 
     p = Path(path)
     try:
@@ -113,7 +113,7 @@ def _limits(params: Mapping[str, Any], robot_description: str | None) -> JointLi
         limits = JointLimits.from_file(path, dyn)
     else:
         if robot_description is None:
-            raise SetupError("limits_file is empty and the bag has no robot_description")
+            raise SetupError("limits_file is empty and no robot_description was received")
         if not dyn:
             raise SetupError("limits from robot_description need limits_dynamics (a limits "
                              "YAML with acceleration and jerk)")
