@@ -103,7 +103,7 @@ def _velocity_roots(v: np.ndarray, a: np.ndarray, u: np.ndarray, T: float
                     ) -> tuple[np.ndarray, np.ndarray]:
     """Both real roots of v + a t + (j/2) t^2 (NaN where absent)."""
     half_j = 0.5 * (u - a) / T
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         disc = a * a - 4.0 * half_j * v
         sq = np.sqrt(disc)
         q = -0.5 * (a + np.copysign(sq, a))
