@@ -285,5 +285,12 @@ class StreamingSession:
             return integrate(*seg.state, seg.u, self.period)
 
 
+def feedback_valid_since(stamp: float | None, received: float) -> float:
+    """When a fully valid feedback message's values date from: its stamp, but never later
+    than its arrival (a sensor clock ahead of ROS time must not keep feedback fresh after
+    the sensor stops), or the arrival when it carries no stamp."""
+    return received if stamp is None else min(stamp, received)
+
+
 def _age(now: float, t: float | None) -> float:
     return math.inf if t is None else max(0.0, now - t)

@@ -46,7 +46,8 @@ from adaptive_streamer.core.adapter_setup import DEFAULTS, WATCHDOG_PARAMS, buil
 from adaptive_streamer.core.policies import load_policy
 from adaptive_streamer.core.policies.base import PolicyInputs
 from adaptive_streamer.core.segment import MotionState
-from adaptive_streamer.core.session import SessionInputs, StreamingSession
+from adaptive_streamer.core.session import (SessionInputs, StreamingSession,
+                                            feedback_valid_since)
 from adaptive_streamer.core.stream import StreamClock
 
 from . import common
@@ -464,7 +465,7 @@ class AdapterNode(LifecycleNode):
             except ValueError:
                 feedback = None
             if feedback is not None and feedback.all_valid:
-                valid_since = feedback.stamp if feedback.stamp is not None else rx
+                valid_since = feedback_valid_since(feedback.stamp, rx)
                 self._latest["feedback_valid_since"] = valid_since
         js = self._joint_state()
         return SessionInputs(window, window_rx, feedback, valid_since,

@@ -26,7 +26,7 @@ import numpy as np
 
 from adaptive_streamer.core.feedback import FeatureVector, FeedbackParser
 from adaptive_streamer.core.playback import Window
-from adaptive_streamer.core.session import SessionInputs
+from adaptive_streamer.core.session import SessionInputs, feedback_valid_since
 from adaptive_streamer.nodes.trajectory_conversions import TrajectoryMessageError
 
 from .bag_io import TopicData
@@ -151,7 +151,7 @@ class InputRebuilder:
         if fi is not None and self.parser is not None:
             rx, feedback = self._feedback(self.parser, fi)
             if feedback is not None and feedback.all_valid:
-                self.valid_since = feedback.stamp if feedback.stamp is not None else rx
+                self.valid_since = feedback_valid_since(feedback.stamp, rx)
         js = self._latest_joint(now_ns)
         return SessionInputs(window, window_rx, feedback, self.valid_since,
                              js[2] if js else None, js[1] if js else None,

@@ -51,7 +51,7 @@ from ..policies.card import PolicyCard
 from ..reference import ReferenceTrajectory
 from ..reference_files import load_reference
 from ..segment import MotionState
-from ..session import SessionInputs, StreamingSession
+from ..session import SessionInputs, StreamingSession, feedback_valid_since
 from ..sim_plant import PlantConfig, SimPlant
 from ..watchdog import Trip, WatchdogConfig
 from .arm import DEMO_ARM
@@ -360,7 +360,7 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int,
                 if fb_msg is not None and parser is not None:
                     feedback = parser.parse(*fb_msg)
                     if feedback.all_valid:
-                        valid_since = feedback.stamp if feedback.stamp is not None else t
+                        valid_since = feedback_valid_since(feedback.stamp, t)
                 inputs = SessionInputs(window, window_rx, feedback, valid_since,
                                        js[2], js[1], js[0])
                 d = session.decide(t, inputs)
