@@ -592,7 +592,11 @@ class AdapterNode(LifecycleNode):
         st = session.cycle.state
         if st is None or inputs.window is None:
             return None
-        from adaptive_streamer.core.alignment import align
+        from adaptive_streamer.core.alignment import AlignmentError, align, validate_window
+        try:
+            validate_window(inputs.window)
+        except AlignmentError as exc:
+            return f"reference/window is unusable: {exc}"
         try:
             ref = align(inputs.window, session.cycle.t + np.arange(session.cycle_config.horizon)
                         * session.period)
