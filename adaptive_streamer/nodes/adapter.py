@@ -479,6 +479,12 @@ class AdapterNode(LifecycleNode):
                 return
             i = clock.due(now)
             if i is None:
+                last = clock.time_of(clock.last_index)
+                if now < last - 1.0 / clock.rate:  # ROS time went back (sim time reset)
+                    self.get_logger().error(
+                        f"ROS time went back to {now:.3f} s, before the last setpoint "
+                        f"({last:.3f} s): no setpoint until the clock passes it again (the "
+                        "driver holds on its command timeout)", throttle_duration_sec=5.0)
                 return
             t = clock.time_of(i)
             self._lateness.append(now - t)
