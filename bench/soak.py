@@ -28,7 +28,9 @@ Figures printed and written to ``--json`` (default ``soak_report.json``): setpoi
 checked, limit violations by kind (must be 0), missed periods, stops by reason with their
 timings, recoveries, the adapter's own counters (stream/decision errors, late decisions,
 skipped ticks), and the adapter's RSS at activation, after ``--warmup`` seconds and at the
-end (growth after warm-up must stay under 5 MB). Exit code 0 when all of that holds.
+end (growth after warm-up must stay under 5 MB; the warm-up covers two rounds of faults, after
+which the heap has reached its high-water mark: the second run of the slow fault policy
+raises it by a few MB once, later rounds do not). Exit code 0 when all of that holds.
 
     .venv/bin/python bench/soak.py --duration 600          # make soak
     .venv/bin/python bench/soak.py --duration 60 --fault-every 7 --warmup 20
@@ -76,6 +78,8 @@ RSS_EVERY = 2.0         # s between RSS samples
 CHECK_CHUNK = 5000      # setpoints per stream check
 RSS_LIMIT_MB = 5.0
 RECOVERY_ATTEMPTS = 3
+WARMUP_ROUNDS = 2       # the adapter's heap reaches its high-water mark once the slow fault
+                        # policy (a loop of 512x512 products) has been loaded and run twice
 GRID_TOL = 1e-6         # s: a stamp off the tick grid by more than this is counted
 
 
@@ -88,9 +92,10 @@ class StreamChecker:
     """Checks every received setpoint against the limits, chunk by chunk (see the module
     docstring); thread-safe `add`, `check` from the main thread."""
 
-    def __init__(self, limits: JointLimits, rate: float) -> None:
+    def __init__(self, limits: JointLimits, rate: float, keep: bool = False) -> None:
         self.limits = limits
         self.rate = rate
+        self.kept: list[tuple[np.ndarray, ...]] | None = [] if keep else None
         self._lock = threading.Lock()
         self._pending: list[tuple[int, float, tuple, tuple, tuple]] = []
         self._last: tuple[int, float, tuple, tuple, tuple] | None = None
@@ -139,6 +144,16 @@ class StreamChecker:
             err = np.abs(np.diff(arrivals) - np.diff(t)) * 1e3
             self.arrival_err_ms.extend(err.tolist())
         self.checked += len(chunk)
+        if self.kept is not None:
+            skip = len(rows) - len(chunk)
+            self.kept.append((ns[skip:], p[skip:], v[skip:], a[skip:]))
+
+    def save(self, path: str) -> None:
+        """Write the kept stream (stamps [ns], p, v, a) to an ``.npz`` file."""
+        parts = self.kept or []
+        np.savez_compressed(path, **{k: np.concatenate([x[i] for x in parts]) if parts
+                                     else np.zeros(0) for i, k in enumerate(
+                                         ("stamps_ns", "position", "velocity", "acceleration"))})
 
     def figures(self) -> dict[str, Any]:
         """The checker's figures (call after ``check(final=True)``)."""
@@ -345,7 +360,7 @@ class Soak:
         self.limits = JointLimits.from_file(adapter["limits_file"])
         self.rate = float(adapter["stream_rate"])
         self.soak_card = adapter["policy"]
-        self.checker = StreamChecker(self.limits, self.rate)
+        self.checker = StreamChecker(self.limits, self.rate, keep=bool(args.save_stream))
         self.faults: list[FaultRecord] = []
         self.rss: list[tuple[float, float]] = []      # (seconds since activation, MB)
         self.adapter_pid = 0
@@ -542,6 +557,8 @@ class Soak:
             self.op.destroy_node()
             rclpy.shutdown()
         self.checker.check(final=True)
+        if self.args.save_stream:
+            self.checker.save(self.args.save_stream)
         return self.figures(final_diag, error, notes)
 
     def _loop(self) -> None:
@@ -668,15 +685,18 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--fault-every", type=float, default=20.0, help="seconds between faults")
     ap.add_argument("--warmup", type=float, default=None,
                     help="seconds after activation before the RSS reference sample "
-                         "(default: one round of every fault kind, capped at a third of "
-                         "the run)")
+                         f"(default: {WARMUP_ROUNDS} rounds of every fault kind, capped at "
+                         "half the run)")
     ap.add_argument("--params", default=str(share_dir() / "config" / "soak" / "params.yaml"))
     ap.add_argument("--json", default="soak_report.json", help="figures file")
+    ap.add_argument("--save-stream", default=None, metavar="FILE.npz",
+                    help="also write every received setpoint (stamps, p, v, a) to FILE.npz")
     ap.add_argument("--keep-logs", default=None, metavar="DIR",
                     help="copy the processes' logs into DIR")
     args = ap.parse_args(argv)
     if args.warmup is None:
-        args.warmup = min(len(FAULTS) * args.fault_every + 5.0, args.duration / 3.0)
+        args.warmup = min(WARMUP_ROUNDS * len(FAULTS) * args.fault_every + 5.0,
+                          args.duration / 2.0)
     workdir = Path(tempfile.mkdtemp(prefix="adaptive_streamer_soak_"))
     try:
         figures = Soak(args, workdir).run()

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import math
 import string
+import time
 from collections import Counter
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -536,6 +537,9 @@ def step_check(stamps_ns: np.ndarray, p: np.ndarray, v: np.ndarray, a: np.ndarra
     """Violations by kind of a setpoint stream (see the module docstring); empty = none."""
     ns = np.asarray(stamps_ns, np.int64)
     p, v, a = (np.asarray(x, float) for x in (p, v, a))
+    if not ns.shape[0] == p.shape[0] == v.shape[0] == a.shape[0]:
+        raise ValueError(f"step_check: {ns.shape[0]} stamps for {p.shape[0]}, {v.shape[0]}, "
+                         f"{a.shape[0]} samples")
     out: dict[str, int] = {}
 
     def count(kind: str, bad: np.ndarray) -> None:
@@ -558,3 +562,532 @@ def step_check(stamps_ns: np.ndarray, p: np.ndarray, v: np.ndarray, a: np.ndarra
         count("acceleration step over J h", np.abs(np.diff(a, axis=0))
               > limits.jerk_max * span)
     return out
+
+
+# ---------------------------------------------------------------------------- topics (DDS)
+JS_NAMES = ("same", "same", "reordered", "missing", "extra", "duplicate", "empty", "renamed")
+JS_VALUES = ("same", "same", "nan", "inf", "huge", "small_shift", "short", "no_velocity",
+             "velocity_length")
+STAMPS = ("same", "same", "zero", "past", "future", "far_future")
+WINDOW_POINTS = ("same", "same", "none", "one", "short_values", "nan", "inf", "huge",
+                 "not_increasing", "negative_times")
+FEEDBACK = ("valid", "missing", "extra", "duplicate", "length", "nan", "inf", "huge", "empty")
+BRIDGE_VALUES = ("finite", "finite", "nan", "inf", "huge")
+BRIDGE_STAMPS = ("now", "now", "zero", "past", "slightly_ahead", "far_ahead", "negative")
+COMMANDS = ("short", "long", "empty", "nan", "inf")
+TOPIC_CASES = {
+    "joint_states": st.fixed_dictionaries({"names": st.sampled_from(JS_NAMES),
+                                           "values": st.sampled_from(JS_VALUES),
+                                           "stamp": st.sampled_from(STAMPS),
+                                           "joint": st.integers(0, N - 1),
+                                           "huge": st.sampled_from([1e3, 1e9, 1e300])}),
+    "reference/window": st.fixed_dictionaries({"names": st.sampled_from(JS_NAMES[:7]),
+                                               "points": st.sampled_from(WINDOW_POINTS),
+                                               "stamp": st.sampled_from(STAMPS),
+                                               "joint": st.integers(0, N - 1)}),
+    "feedback": st.fixed_dictionaries({"form": st.sampled_from(FEEDBACK),
+                                       "stamp": st.sampled_from(STAMPS)}),
+    "sensor_bridge input": st.fixed_dictionaries({"values": st.sampled_from(BRIDGE_VALUES),
+                                                  "stamp": st.sampled_from(BRIDGE_STAMPS)}),
+    "sim_driver command": st.fixed_dictionaries({"form": st.sampled_from(COMMANDS),
+                                                 "joint": st.integers(0, N - 1)}),
+}
+
+
+def _stamp(kind: str, now: float, original: float) -> float:
+    return {"same": original, "zero": 0.0, "past": now - 5.0, "future": now + 5.0,
+            "far_future": now + 1e6}[kind]
+
+
+def joint_state_fields(spec: dict[str, Any], names: list[str], pos: list[float],
+                       vel: list[float]) -> tuple[list[str], list[float], list[float], bool]:
+    """(names, positions, velocities, expected to be refused) of a mutated joint state.
+
+    Refused (by the adapter's own rule, read independently here): a joint of the adapter
+    missing from ``name``, or its position missing or not finite."""
+    names, pos, vel = list(names), list(pos), list(vel)
+    j = spec["joint"] % len(names)
+    form = spec["names"]
+    if form == "reordered":
+        order = list(reversed(range(len(names))))
+        names, pos, vel = ([x[i] for i in order] for x in (names, pos, vel))
+    elif form == "missing":
+        del names[j], pos[j], vel[j]
+    elif form == "extra":
+        names, pos, vel = names + ["gripper"], pos + [0.01], vel + [0.0]
+    elif form == "duplicate":        # the first of a repeated name counts
+        names, pos, vel = names + [names[j]], pos + [pos[j] + 1.0], vel + [0.0]
+    elif form == "empty":
+        names, pos, vel = [], [], []
+    elif form == "renamed":
+        names[j] = names[j].upper()
+    values = spec["values"]
+    if pos and values in ("nan", "inf", "huge", "small_shift"):
+        pos[j % len(pos)] = {"nan": math.nan, "inf": math.inf, "huge": spec["huge"],
+                             "small_shift": pos[j % len(pos)] + 0.02}[values]
+    elif values == "short":
+        pos = pos[:max(0, len(pos) - 1)]
+    elif values == "no_velocity":
+        vel = []
+    elif values == "velocity_length":
+        vel = vel + [0.0]
+    index = {}
+    for i, name in enumerate(names):
+        index.setdefault(name, i)
+    refused = any(name not in index for name in JOINTS) or any(
+        index[name] >= len(pos) or not math.isfinite(pos[index[name]]) for name in JOINTS
+        if name in index)
+    return names, pos, vel, refused
+
+
+class TopicFuzz:
+    """A live cell over DDS with a fuzzing node: `adapter_harness.Cell` (reference_server,
+    sim_driver, the adapter following a looped reference with a linear_feedback policy that
+    reads ``edge_offset`` at gain 1 on j1), a sensor_bridge on ``fuzz/edge`` publishing
+    ``bridge/feedback``, and `case` methods that publish one fuzzed message and classify
+    what followed. While a case is published to the adapter, the genuine source of that
+    input is held back (the harness's relays), so the fuzzed message is the one decided on.
+    """
+
+    def __init__(self, folder: Path) -> None:
+        import adapter_harness as ah
+        from geometry_msgs.msg import PointStamped
+        from rclpy.parameter import Parameter
+        from sensor_msgs.msg import JointState
+        from std_msgs.msg import Float64MultiArray
+        from trajectory_msgs.msg import JointTrajectory
+
+        from adaptive_streamer.nodes.common import reliable_qos
+        from adaptive_streamer.nodes.sensor_bridge import SensorBridge
+
+        self.ah = ah
+        card = ah.write_card(folder, "fuzz_feedback", "linear_feedback", feedback_gain={
+            "features": ["edge_offset"], "matrix": [[1.0]] + [[0.0]] * (N - 1)})
+        self.cell = ah.Cell(folder, card)
+        self.probe = self.cell.probe
+        node = self.node = rclpy_node("topic_fuzzer")
+        self.js_pub = node.create_publisher(JointState, "joint_states", 10)
+        self.ref_pub = node.create_publisher(JointTrajectory, "reference/window", reliable_qos(5))
+        self.fb_pub = node.create_publisher(JointState, "feedback", 10)
+        self.cmd_pub = node.create_publisher(Float64MultiArray, "driver/position_command", 10)
+        self.edge_pub = node.create_publisher(PointStamped, "fuzz/edge", reliable_qos(10))
+        self.latest_js: Any = None
+        self.bridge_out: list[tuple[list[str], list[float]]] = []
+        node.create_subscription(JointState, "sim/joint_states", self._on_js, 10)
+        node.create_subscription(JointState, "bridge/feedback", lambda m: self.bridge_out.append(
+            (list(m.name), list(m.position))), reliable_qos(100))
+        p = lambda k, v: Parameter(k, value=v)  # noqa: E731
+        self.bridge = SensorBridge(parameter_overrides=[
+            p("inputs", ["edge"]), p("edge.topic", "fuzz/edge"),
+            p("edge.type", "geometry_msgs/msg/PointStamped"),
+            p("edge.fields", ["point.y", "point.z"]), p("edge.features", list(FEATURES)),
+            p("edge.max_age", 0.3), p("edge.qos", "reliable")],
+            cli_args=["--ros-args", "-r", "feedback:=bridge/feedback"])
+        for n in (node, self.bridge):
+            self.cell.cell_ex.add_node(n)
+        self.msgs = (JointState, JointTrajectory, Float64MultiArray, PointStamped)
+
+    def _on_js(self, msg: Any) -> None:
+        self.latest_js = msg
+
+    def start(self) -> None:
+        """Bring the adapter to follow the moving reference with valid feedback flowing."""
+        self.probe.feedback = {"edge_offset": 0.0}
+        self.cell.start_following()
+        self.cell.start_reference()
+        self.ah.wait_until(lambda: self.latest_js is not None, "joint states")
+
+    def close(self) -> None:
+        """Stop and destroy everything."""
+        self.cell.close()
+        for n in (self.node, self.bridge):
+            n.destroy_node()
+
+    # ------------------------------------------------------------------ helpers
+    @property
+    def adapter(self) -> Any:
+        """The adapter node (its counters and session are read to classify cases)."""
+        return self.cell.adapter
+
+    def now(self) -> float:
+        """ROS time [s]."""
+        return self.cell.now()
+
+    def decisions_after(self, count: int, timeout: float = 2.0) -> None:
+        """Wait until ``count`` more decision records arrived."""
+        n0 = len(self.probe.decisions)
+        self.ah.wait_until(lambda: len(self.probe.decisions) >= n0 + count,
+                           f"{count} decisions", timeout)
+
+    def ensure_following(self) -> None:
+        """After a stop: wait for rest, reset, resume the reference, follow again."""
+        cell = self.cell
+        if cell.mode() == "following" and self.adapter.session.watchdog.trip is None:
+            return
+        self.probe.js_block = self.probe.ref_block = False
+        self.probe.feedback = {"edge_offset": 0.0}
+        cell.wait_mode("stopped", 20.0)
+        self.ah.wait_until(lambda: cell.trigger("/adapter/reset").success, "a reset", 20.0,
+                           poll=0.2)
+        res = cell.trigger("/reference_server/resume")
+        assert res.success or "not paused" in res.message, res.message
+        cell.wait_mode("following", 30.0)
+
+    def _outcome(self, counters0: dict[str, int], events0: int, counter: str | None) -> str:
+        events = self.adapter.session.watchdog.events[events0:]
+        if counter is not None and self.adapter._counters[counter] > counters0[counter]:
+            return "refused"
+        if events:
+            return f"stopped ({events[0].kind})"
+        return "accepted"
+
+    def _adapter_case(self, hold: str, publish: Callable[[], bool], counter: str | None
+                      ) -> tuple[str, bool]:
+        """Hold back the genuine input, publish (returns 'expected refused'), let two
+        decisions read it, restore; returns (outcome, expected refused)."""
+        self.ensure_following()
+        counters0 = dict(self.adapter._counters)
+        events0 = len(self.adapter.session.watchdog.events)
+        saved = self.probe.feedback
+        if hold == "feedback":
+            self.probe.feedback = None
+        else:
+            setattr(self.probe, hold, True)
+        time.sleep(0.03)                      # the relays' last genuine message is in
+        try:
+            expected = publish()
+            self.decisions_after(2)
+        finally:
+            if hold == "feedback":
+                self.probe.feedback = saved
+            else:
+                setattr(self.probe, hold, False)
+        return self._outcome(counters0, events0, counter), expected
+
+    # ------------------------------------------------------------------ cases
+    def joint_states_case(self, spec: dict[str, Any]) -> tuple[str, bool]:
+        """A mutated copy of the driver's latest joint state."""
+        src = self.latest_js
+
+        def publish() -> bool:
+            JointState = self.msgs[0]
+            names, pos, vel, refused = joint_state_fields(spec, list(src.name),
+                                                          list(src.position), list(src.velocity))
+            msg = JointState(name=names, position=pos, velocity=vel)
+            now = self.now()
+            from adaptive_streamer.nodes.common import sec_to_stamp
+            t = _stamp(spec["stamp"], now, now)
+            msg.header.stamp = sec_to_stamp(max(t, 0.0))
+            self.js_pub.publish(msg)
+            return refused
+        return self._adapter_case("js_block", publish, "bad_joint_states")
+
+    def window_case(self, spec: dict[str, Any]) -> tuple[str, bool]:
+        """A mutated copy of the reference server's latest window."""
+        from adaptive_streamer.nodes.common import sec_to_stamp, stamp_to_sec
+        from trajectory_msgs.msg import JointTrajectoryPoint
+
+        def publish() -> bool:
+            src = self.probe.last_window
+            names = list(src.joint_names)
+            pts = [(list(p.positions), list(p.velocities), list(p.accelerations),
+                    p.time_from_start.sec + p.time_from_start.nanosec * 1e-9) for p in src.points]
+            j = spec["joint"]
+            refused = False
+            form = spec["names"]
+            cols = list(range(len(names)))
+            if form == "reordered":
+                cols = cols[::-1]
+            elif form in ("missing", "empty"):
+                cols = [] if form == "empty" else [c for c in cols if c != j]
+                refused = True
+            elif form == "renamed":
+                names[j] = names[j].upper()
+                refused = True
+            elif form == "duplicate":
+                cols = cols + [j]
+            new_names = [names[c] for c in cols] + (["gripper"] if form == "extra" else [])
+            extra = [0.0] if form == "extra" else []
+            rows = [([p[c] for c in cols] + extra, [v[c] for c in cols] + extra,
+                     [a[c] for c in cols] + extra, t) for p, v, a, t in pts]
+            kind = spec["points"]
+            if kind == "none":
+                rows, refused = [], True
+            elif kind == "one":
+                rows = rows[:1]
+            elif kind == "short_values" and rows and rows[0][0]:
+                rows[0] = (rows[0][0][:-1],) + rows[0][1:]
+                refused = True
+            elif kind in ("nan", "inf", "huge") and rows and rows[0][0]:
+                value = {"nan": math.nan, "inf": math.inf, "huge": 1e6}[kind]
+                for r in rows:
+                    r[0][0] = value if kind != "huge" else r[0][0] + value
+            elif kind == "not_increasing" and len(rows) > 2:
+                rows[2] = rows[2][:3] + (rows[1][3],)
+            elif kind == "negative_times":
+                rows = [r[:3] + (r[3] - 10.0,) for r in rows]
+            if not new_names:
+                refused = True
+            msg = JointTrajectory(joint_names=new_names)
+            for p, v, a, t in rows:
+                pt = JointTrajectoryPoint(positions=p, velocities=v, accelerations=a)
+                if t >= 0:
+                    sec_to_stamp(t, pt.time_from_start)
+                else:                           # a Duration with a negative second count
+                    pt.time_from_start.sec = int(math.floor(t))
+                    pt.time_from_start.nanosec = int(round((t - math.floor(t)) * 1e9)) % 10 ** 9
+                msg.points.append(pt)
+            now = self.now()
+            sec_to_stamp(max(_stamp(spec["stamp"], now, stamp_to_sec(src.header.stamp)), 0.0),
+                         msg.header.stamp)
+            for _ in range(3):
+                self.ref_pub.publish(msg)
+                time.sleep(0.01)
+            return refused
+        JointTrajectory = self.msgs[1]
+        return self._adapter_case("ref_block", publish, "bad_windows")
+
+    def feedback_case(self, spec: dict[str, Any]) -> tuple[str, bool]:
+        """A malformed or odd feedback vector (the valid one is held back meanwhile)."""
+        from adaptive_streamer.nodes.common import sec_to_stamp
+
+        def publish() -> bool:
+            form = spec["form"]
+            names, values = ["edge_offset"], [0.0]
+            if form == "missing":
+                names, values = ["edge_angle"], [0.0]
+            elif form == "extra":
+                names, values = ["edge_offset", "edge_angle", "x"], [0.0, 0.1, 9.0]
+            elif form == "duplicate":
+                names, values = ["edge_offset", "edge_offset"], [0.0, 1.0]
+            elif form == "length":
+                names, values = ["edge_offset", "edge_angle"], [0.0]
+            elif form in ("nan", "inf", "huge"):
+                values = [{"nan": math.nan, "inf": math.inf, "huge": 1e300}[form]]
+            elif form == "empty":
+                names, values = [], []
+            msg = self.msgs[0](name=names, position=values)
+            now = self.now()
+            sec_to_stamp(max(_stamp(spec["stamp"], now, now), 0.0), msg.header.stamp)
+            for _ in range(3):
+                self.fb_pub.publish(msg)
+                time.sleep(0.01)
+            return False
+        return self._adapter_case("feedback", publish, None)
+
+    def bridge_case(self, spec: dict[str, Any]) -> tuple[str, bool]:
+        """One sensor sample on the bridge's input; its verdict must match the rule (NaN/inf
+        dropped, zero/negative or far-ahead stamps dropped, samples older than max_age
+        dropped as late, anything else accepted, huge or not)."""
+        from adaptive_streamer.nodes.common import sec_to_stamp
+        table = self.bridge._table
+        before = vars(table.counters(0)).copy()
+        now = self.now()
+        stamp = {"now": now, "zero": 0.0, "past": now - 1.0, "slightly_ahead": now + 0.01,
+                 "far_ahead": now + 10.0, "negative": -1.0}[spec["stamp"]]
+        value = {"finite": 0.001, "nan": math.nan, "inf": -math.inf, "huge": 1e300}[spec["values"]]
+        msg = self.msgs[3]()
+        msg.point.y, msg.point.z = value, 0.01
+        if stamp > 0:
+            sec_to_stamp(stamp, msg.header.stamp)
+        else:
+            msg.header.stamp.sec = -1 if stamp < 0 else 0
+        self.edge_pub.publish(msg)
+        self.ah.wait_until(lambda: vars(table.counters(0))["received"] > before["received"],
+                           "the bridge to receive the sample", 5.0)
+        after = vars(table.counters(0))
+        changed = [k for k in after if k != "received" and after[k] != before[k]]
+        if spec["values"] in ("nan", "inf"):
+            want = "dropped_nan"
+        elif spec["stamp"] in ("zero", "negative", "far_ahead"):
+            want = "dropped_stamp"
+        elif spec["stamp"] == "past":
+            want = "dropped_late"
+        else:
+            want = "accepted"
+        assert changed == [want] or (want == "accepted" and changed == ["dropped_stamp"]
+                                     and spec["stamp"] == "now"), (spec, changed)
+        return ("accepted" if changed == ["accepted"] else "refused"), want != "accepted"
+
+    def command_case(self, spec: dict[str, Any]) -> tuple[str, bool]:
+        """A malformed driver command (wrong length, empty, NaN, inf): the driver drops it."""
+        driver = self.cell.driver
+        before = driver.rejected
+        src = list(self.latest_js.position)
+        form = spec["form"]
+        data = {"short": src[:-1], "long": src + [0.0], "empty": []}.get(form, list(src))
+        if form in ("nan", "inf"):
+            data[spec["joint"]] = math.nan if form == "nan" else math.inf
+        self.cmd_pub.publish(self.msgs[2](data=data))
+        self.ah.wait_until(lambda: driver.rejected > before, "the driver to drop the command", 5.0)
+        return "refused", True
+
+    def run(self, kind: str, spec: dict[str, Any]) -> tuple[str, bool]:
+        """One case of ``kind`` (a key of `TOPIC_CASES`)."""
+        return {"joint_states": self.joint_states_case, "reference/window": self.window_case,
+                "feedback": self.feedback_case, "sensor_bridge input": self.bridge_case,
+                "sim_driver command": self.command_case}[kind](spec)
+
+    def stream(self) -> tuple[np.ndarray, ...]:
+        """Every setpoint received so far: stamps [ns], p, v, a."""
+        s = list(self.probe.setpoints)
+        return (np.array([x.stamp_ns for x in s], np.int64), np.array([x.position for x in s]),
+                np.array([x.velocity for x in s]), np.array([x.acceleration for x in s]))
+
+
+def rclpy_node(name: str, namespace: str | None = None) -> Any:
+    """A plain rclpy node (rclpy imported only when the DDS helpers are used)."""
+    from rclpy.node import Node
+    return Node(name, namespace=namespace)
+
+
+def fuzz_topics(fuzz: TopicFuzz, kind: str, examples: int, cases: Cases) -> None:
+    """Run ``examples`` generated cases of ``kind`` on a started `TopicFuzz`; each case's
+    outcome is counted; an input the adapter's rule refuses must be refused, and a valid
+    one must not be."""
+    @settings(max_examples=examples, deadline=None, database=None, derandomize=True,
+              suppress_health_check=list(HealthCheck))
+    @given(TOPIC_CASES[kind])
+    def run(spec: dict[str, Any]) -> None:
+        outcome, refused = fuzz.run(kind, spec)
+        cases.add(kind, outcome)
+        if kind in ("joint_states", "reference/window"):
+            assert (outcome == "refused") == refused, (spec, outcome)
+    run()
+
+
+# ---------------------------------------------------------------------------- sim time
+class ClockFuzz:
+    """reference_server, sim_driver and the adapter (tracker) on simulated time published
+    here on ``/clock`` (advancing with the wall clock from 1000 s, 1 kHz), an observer of
+    ``setpoints`` and ``/rosout``, all in the namespace `NAMESPACE` (beside a `TopicFuzz`
+    cell); `run_jump` sends the clock back and reports what the stack did."""
+
+    NAMESPACE = "/simclock"
+
+
+    def __init__(self, folder: Path) -> None:
+        import threading
+
+        import adapter_harness as ah
+        from rcl_interfaces.msg import Log
+        from rclpy.executors import SingleThreadedExecutor
+        from rclpy.parameter import Parameter
+        from rosgraph_msgs.msg import Clock
+        from trajectory_msgs.msg import JointTrajectory
+
+        from adaptive_streamer.nodes.adapter import AdapterNode, make_executor
+        from adaptive_streamer.nodes.common import reliable_qos
+        from adaptive_streamer.nodes.lifecycle_client import LifecycleClient
+        from adaptive_streamer.nodes.reference_server import ReferenceServer
+        from adaptive_streamer.nodes.sim_driver import SimDriver
+
+        self.ah = ah
+        self.sim_t = 1000.0
+        self._lock = threading.Lock()
+        self._running = True
+        sim = Parameter("use_sim_time", value=True)
+        ns = ["--ros-args", "-r", f"__ns:={self.NAMESPACE}"]
+        self.node = rclpy_node("clock_fuzzer", self.NAMESPACE)
+        self._clock_pub = self.node.create_publisher(Clock, "/clock", 10)
+        self._clock_msg = Clock
+        self.setpoints: list[tuple[int, list, list, list]] = []
+        self.logs: list[tuple[str, str]] = []
+        self.node.create_subscription(JointTrajectory, "setpoints", self._on_setpoint,
+                                      reliable_qos(1000))
+        self.node.create_subscription(Log, "/rosout", lambda m: self.logs.append((m.name, m.msg)),
+                                      100)
+        card = ah.write_card(folder, "clock_tracker", "tracker")
+        self.reference = ReferenceServer(parameter_overrides=[
+            sim, Parameter("reference_file", value=str(ah.write_reference(folder))),
+            Parameter("limits_file", value=str(ah.LIMITS_FILE)),
+            Parameter("end_mode", value="loop"), Parameter("start_mode", value="immediate")],
+            cli_args=ns)
+        self.driver = SimDriver(parameter_overrides=[
+            sim, Parameter("joints", value=ah.JOINTS),
+            Parameter("initial_positions", value=ah.P0.tolist())], cli_args=ns)
+        self.adapter = AdapterNode(parameter_overrides=[sim] + ah.adapter_overrides(card),
+                                   cli_args=ns)
+        self._ex = SingleThreadedExecutor()
+        for n in (self.node, self.reference, self.driver):
+            self._ex.add_node(n)
+        self._aex = make_executor()
+        self._aex.add_node(self.adapter)
+        self._threads = [threading.Thread(target=self._tick_clock, daemon=True)] + [
+            threading.Thread(target=ah.Cell._spin, args=(e,), daemon=True)
+            for e in (self._ex, self._aex)]
+        for th in self._threads:
+            th.start()
+        self.lifecycle = LifecycleClient(self.node, "adapter", spun_elsewhere=True)
+
+    def _tick_clock(self) -> None:
+        last = time.monotonic()
+        while self._running:
+            now = time.monotonic()
+            with self._lock:
+                self.sim_t += now - last
+                t = self.sim_t
+            last = now
+            msg = self._clock_msg()
+            msg.clock.sec, msg.clock.nanosec = int(t), int(round((t % 1.0) * 1e9)) % 10 ** 9
+            self._clock_pub.publish(msg)
+            time.sleep(0.001)
+
+    def _on_setpoint(self, msg: Any) -> None:
+        pt = msg.points[0]
+        st_ = msg.header.stamp
+        self.setpoints.append((st_.sec * 10 ** 9 + st_.nanosec, list(pt.positions),
+                               list(pt.velocities), list(pt.accelerations)))
+
+    def start(self) -> None:
+        """configure + activate (retried until joint_states is fresh), then follow."""
+        assert self.lifecycle.wait(20.0) and self.lifecycle.configure()
+        self.ah.wait_until(self.lifecycle.activate, "activation", 30.0, poll=0.3)
+        self.ah.wait_until(lambda: self.adapter.session.mode == "following", "following", 30.0)
+
+    def close(self) -> None:
+        """Stop the clock and destroy the nodes."""
+        self._running = False
+        for e in (self._aex, self._ex):
+            e.shutdown(timeout_sec=2.0)
+        for n in (self.adapter, self.reference, self.driver, self.node):
+            n.destroy_node()
+
+    def run_jump(self, seconds: float) -> str:
+        """Send the clock back by ``seconds`` while following; wait until it is 1.5 s past
+        where it was; return 'continued' or 'stopped (KIND)' (then reset and resume)."""
+        session = self.adapter.session
+        if session.mode != "following" or session.watchdog.trip is not None:
+            self.recover()
+        events0 = len(session.watchdog.events)
+        with self._lock:
+            before = self.sim_t
+            self.sim_t -= seconds
+        self.ah.wait_until(lambda: self.sim_t > before + 1.5, "the clock to pass the jump",
+                           seconds + 20.0, poll=0.05)
+        events = session.watchdog.events[events0:]
+        return "continued" if not events else f"stopped ({events[0].kind})"
+
+    def recover(self) -> None:
+        """Wait for rest, reset (retried while refused), resume the reference, follow."""
+        from std_srvs.srv import Trigger
+        session = self.adapter.session
+        clients: dict[str, Any] = {}
+
+        def call(name: str) -> Any:
+            if name not in clients:
+                clients[name] = self.node.create_client(Trigger, name)
+                assert clients[name].wait_for_service(5.0), name
+            future = clients[name].call_async(Trigger.Request())
+            self.ah.wait_until(future.done, f"the answer of {name}", 5.0)
+            return future.result()
+        self.ah.wait_until(lambda: session.mode == "stopped", "rest", 20.0)
+        self.ah.wait_until(lambda: call("adapter/reset").success, "a reset", 20.0, poll=0.2)
+        call("reference_server/resume")
+        self.ah.wait_until(lambda: session.mode == "following", "following again", 30.0)
+
+    def stream(self) -> tuple[np.ndarray, ...]:
+        """Every setpoint received so far: stamps [ns], p, v, a."""
+        s = list(self.setpoints)
+        return (np.array([x[0] for x in s], np.int64), np.array([x[1] for x in s]),
+                np.array([x[2] for x in s]), np.array([x[3] for x in s]))
