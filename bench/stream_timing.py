@@ -22,7 +22,12 @@ following) are made 0.25 s apart. Printed figures:
 * the adapter's own figures: tick_late_ms_p50/p99 (wake-up lateness), skipped_ticks,
   late_decisions, decision_ms_p99.
 
-Run: ``.venv/bin/python bench/stream_timing.py [--duration 60] [--rates 250 1000]``.
+``--decision-priority P`` also gives the adapter's executor thread (subscriptions,
+services, decisions) SCHED_FIFO priority P: a thread holding the GIL at normal priority can
+be preempted by other processes while the real-time stream thread waits for it.
+
+Run: ``.venv/bin/python bench/stream_timing.py [--duration 60] [--rates 250 1000]
+[--decision-priority 5]``.
 No assertions: figures only (the machine is shared).
 """
 from __future__ import annotations
@@ -94,7 +99,7 @@ def run_cell(folder: Path) -> None:
     raise SystemExit(run_nodes(factories))
 
 
-def run_adapter(folder: Path, rate: float, priority: int) -> None:
+def run_adapter(folder: Path, rate: float, priority: int, decision_priority: int) -> None:
     """The adapter alone in its process (autostart), as its executable runs it."""
     from adaptive_streamer.nodes.adapter import AdapterNode, make_executor
     from adaptive_streamer.nodes.common import run_nodes
@@ -102,7 +107,8 @@ def run_adapter(folder: Path, rate: float, priority: int) -> None:
     params = [P("policy", value=str(folder / "tracker.card.yaml")),
               P("limits_file", value=str(LIMITS_FILE)), P("stream_rate", value=rate),
               P("decision_period", value=PERIOD), P("autostart", value=True),
-              P("stream_priority", value=priority)]
+              P("stream_priority", value=priority),
+              P("decision_priority", value=decision_priority)]
 
     def stop(nodes: list, executor: object) -> None:  # noqa: ARG001
         for node in nodes:
@@ -137,7 +143,7 @@ def stop_process(proc: subprocess.Popen) -> None:
 
 # ---------------------------------------------------------------------------- measuring
 def measure(folder: Path, cards: dict[str, Path], rate: float, duration: float, swaps: int,
-            priority: int) -> None:
+            priority: int, decision_priority: int) -> None:
     """One run at ``rate``: stream for ``duration`` s, then ``swaps`` policy swaps."""
     from diagnostic_msgs.msg import DiagnosticArray
     from rclpy.executors import SingleThreadedExecutor
@@ -172,7 +178,8 @@ def measure(folder: Path, cards: dict[str, Path], rate: float, duration: float, 
     ex.add_node(node)
     spinner = threading.Thread(target=ex.spin, daemon=True)
     spinner.start()
-    adapter = spawn("adapter", folder, "--rate", str(rate), "--priority", str(priority))
+    adapter = spawn("adapter", folder, "--rate", str(rate), "--priority", str(priority),
+                    "--decision-priority", str(decision_priority))
     try:
         try:
             _wait(lambda: diag.get("mode") == "following", "adapter following", 60.0)
@@ -222,7 +229,7 @@ def report(rate: float, duration: float, swaps: int, run: list, swapping: list,
     check = h.check_stream(run, rate=rate)
     swap_check = h.check_stream(swapping, rate=rate)
     print(f"--- stream {rate:g} Hz, {duration:g} s under load (cell in another process), "
-          f"{diag.get('stream_thread', '?')}")
+          f"{diag.get('stream_thread', '?')}; {diag.get('decision_thread', '')}")
     print(f"  samples {len(run)}; period error |arrival interval - {1e3 / rate:g} ms| "
           f"p50 {np.percentile(err, 50):.3f} ms, p99 {np.percentile(err, 99):.3f} ms, "
           f"max {err.max():.3f} ms")
@@ -243,6 +250,8 @@ def main() -> None:
     ap.add_argument("--rates", type=float, nargs="+", default=[250.0, 1000.0])
     ap.add_argument("--swaps", type=int, default=20)
     ap.add_argument("--priority", type=int, default=10, help="adapter stream_priority")
+    ap.add_argument("--decision-priority", type=int, default=0,
+                    help="adapter decision_priority (SCHED_FIFO of the executor thread)")
     ap.add_argument("--role", choices=("cell", "adapter"), help=argparse.SUPPRESS)
     ap.add_argument("--folder", type=Path, help=argparse.SUPPRESS)
     ap.add_argument("--rate", type=float, help=argparse.SUPPRESS)
@@ -250,7 +259,7 @@ def main() -> None:
     if args.role == "cell":
         run_cell(args.folder)
     elif args.role == "adapter":
-        run_adapter(args.folder, args.rate, args.priority)
+        run_adapter(args.folder, args.rate, args.priority, args.decision_priority)
     import rclpy
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
@@ -259,7 +268,8 @@ def main() -> None:
         cell = spawn("cell", folder)
         try:
             for rate in args.rates:
-                measure(folder, cards, rate, args.duration, args.swaps, args.priority)
+                measure(folder, cards, rate, args.duration, args.swaps, args.priority,
+                        args.decision_priority)
         finally:
             stop_process(cell)
             rclpy.shutdown()
