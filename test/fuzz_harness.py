@@ -1091,3 +1091,285 @@ class ClockFuzz:
         s = list(self.setpoints)
         return (np.array([x[0] for x in s], np.int64), np.array([x[1] for x in s]),
                 np.array([x[2] for x in s]), np.array([x[3] for x in s]))
+
+
+# ---------------------------------------------------------------------------- namespaces
+class NetnsError(RuntimeError):
+    """Network namespaces cannot be made here (the message says why)."""
+
+
+def _ip(*args: str) -> None:
+    import subprocess
+    res = subprocess.run(["ip", *args], capture_output=True, text=True)
+    if res.returncode:
+        raise NetnsError(f"'ip {' '.join(args)}' failed: {res.stderr.strip()}")
+
+
+@dataclass
+class NetHosts:
+    """Two network namespaces joined by one veth pair, nothing else: no default route, no
+    other interface, so nothing is routed out. ``addresses`` (A, B) on a /30."""
+
+    names: tuple[str, str]
+    links: tuple[str, str]
+    addresses: tuple[str, str]
+
+    @classmethod
+    def create(cls, tag: str, subnet: int) -> "NetHosts":
+        """Make the namespaces (``ip netns add``), the veth pair and the addresses; removes
+        what it made if a step fails."""
+        import shutil
+        if shutil.which("ip") is None:
+            raise NetnsError("the 'ip' command (iproute2) is not installed")
+        hosts = cls((f"{tag}a", f"{tag}b"), (f"{tag}va", f"{tag}vb"),
+                    (f"10.213.{subnet}.1", f"10.213.{subnet}.2"))
+        try:
+            for ns in hosts.names:
+                _ip("netns", "add", ns)
+            _ip("link", "add", hosts.links[0], "type", "veth", "peer", "name", hosts.links[1])
+            for ns, link, addr in zip(hosts.names, hosts.links, hosts.addresses):
+                _ip("link", "set", link, "netns", ns)
+                _ip("-n", ns, "addr", "add", f"{addr}/30", "dev", link)
+                _ip("-n", ns, "link", "set", "lo", "up")
+                _ip("-n", ns, "link", "set", link, "up")
+        except NetnsError:
+            hosts.remove()
+            raise
+        return hosts
+
+    def remove(self) -> list[str]:
+        """Delete both namespaces (the veth pair goes with them); returns what failed."""
+        failed = []
+        for ns in self.names:
+            try:
+                _ip("netns", "del", ns)
+            except NetnsError as exc:
+                if "No such file" not in str(exc):
+                    failed.append(str(exc))
+        return failed
+
+    def link(self, up: bool) -> None:
+        """Bring host A's end of the link up or down (the cut)."""
+        _ip("-n", self.names[0], "link", "set", self.links[0], "up" if up else "down")
+
+    def routes(self, i: int) -> str:
+        """The routing table of host ``i``."""
+        import subprocess
+        return subprocess.run(["ip", "-n", self.names[i], "route"], capture_output=True,
+                              text=True).stdout
+
+    def command(self, i: int, argv: list[str]) -> list[str]:
+        """``argv`` run inside host ``i``."""
+        return ["ip", "netns", "exec", self.names[i], *argv]
+
+
+def udp_only_profile(path: Path, peers: tuple[str, ...]) -> Path:
+    """A Fast DDS XML profile: UDPv4 only (no shared memory, which would carry data across
+    namespaces and hide a cut), builtin transports off, discovery by the initial peers."""
+    locators = "".join(f"<locator><udpv4><address>{a}</address></udpv4></locator>"
+                       for a in peers)
+    path.write_text(
+        '<?xml version="1.0" encoding="UTF-8"?>\n'
+        '<profiles xmlns="http://www.eprosima.com/XMLSchemas/fastRTPS_Profiles">\n'
+        "  <transport_descriptors><transport_descriptor><transport_id>udp_only</transport_id>"
+        "<type>UDPv4</type></transport_descriptor></transport_descriptors>\n"
+        '  <participant profile_name="test_hosts" is_default_profile="true"><rtps>'
+        "<userTransports><transport_id>udp_only</transport_id></userTransports>"
+        "<useBuiltinTransports>false</useBuiltinTransports>"
+        f"<builtin><initialPeersList>{locators}</initialPeersList></builtin>"
+        "</rtps></participant>\n</profiles>\n")
+    return path
+
+
+class NetProbe:
+    """A probe process (``python test/fuzz_harness.py probe``) driven over its stdin and
+    stdout, one JSON line each way (see `probe_main`)."""
+
+    def __init__(self, argv: list[str], env: dict[str, str], log: Path) -> None:
+        import queue
+        import subprocess
+        import threading
+        self.proc = subprocess.Popen(argv, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                                     stderr=log.open("w"), text=True, env=env)
+        self._lines: "queue.Queue[str]" = queue.Queue()
+        threading.Thread(target=self._read, daemon=True).start()
+
+    def _read(self) -> None:
+        for line in self.proc.stdout:
+            self._lines.put(line)
+
+    def ask(self, cmd: str, timeout: float = 30.0, **args: Any) -> dict[str, Any]:
+        """Send a command and wait for its answer."""
+        import json
+        import queue
+        self.proc.stdin.write(json.dumps({"cmd": cmd, **args}) + "\n")
+        self.proc.stdin.flush()
+        try:
+            answer = json.loads(self._lines.get(timeout=timeout + 5.0))
+        except queue.Empty:
+            raise AssertionError(f"probe: no answer to '{cmd}' within {timeout:g} s") from None
+        if "error" in answer:
+            raise AssertionError(f"probe: '{cmd}' failed: {answer['error']}")
+        return answer
+
+    def close(self) -> None:
+        """Ask it to quit; kill it if it does not."""
+        import subprocess
+        try:
+            self.ask("quit", timeout=5.0)
+            self.proc.wait(10.0)
+        except (AssertionError, OSError, ValueError, subprocess.TimeoutExpired):
+            self.proc.kill()
+            self.proc.wait()
+
+
+def probe_main(argv: list[str]) -> int:
+    """``probe``: an rclpy node recording ``setpoints``, ``adapter/decisions``,
+    ``joint_states``, ``driver/position_command``, ``/rosout`` and ``/diagnostics`` with
+    their arrival times (wall clock, shared by the namespaces), answering commands read
+    from stdin, one JSON object a line: ``configure``, ``activate`` (retried for
+    ``timeout`` s), ``trigger`` (``name``, retried while refused for ``retry`` s),
+    ``wait_mode`` (``mode``, ``timeout``), ``stats``, ``dump`` (``path``: an .npz),
+    ``quit``. Each answer is one JSON line."""
+    import json
+    import os
+    import sys
+    import threading
+
+    import rclpy
+    from diagnostic_msgs.msg import DiagnosticArray
+    from rcl_interfaces.msg import Log
+    from rclpy.executors import SingleThreadedExecutor
+    from sensor_msgs.msg import JointState
+    from std_msgs.msg import Float64MultiArray
+    from std_srvs.srv import Trigger
+    from trajectory_msgs.msg import JointTrajectory
+
+    from adaptive_streamer.core import decision_record
+    from adaptive_streamer.nodes.common import reliable_qos
+    from adaptive_streamer.nodes.lifecycle_client import LifecycleClient
+
+    del argv
+    rclpy.init()
+    node = rclpy_node("net_probe")
+    rec: dict[str, list] = {"setpoints": [], "decisions": [], "joint_states": [],
+                            "commands": [], "trips": []}
+    diag: dict[str, dict[str, str]] = {}
+    big = reliable_qos(1000)
+
+    def on_setpoint(m: Any) -> None:
+        pt = m.points[0]
+        rec["setpoints"].append((m.header.stamp.sec * 10 ** 9 + m.header.stamp.nanosec,
+                                 time.time(), list(pt.positions), list(pt.velocities),
+                                 list(pt.accelerations)))
+
+    def on_decision(m: Any) -> None:
+        d = decision_record.decode(np.asarray(m.data))
+        rec["decisions"].append((d.time, time.time(), d.mode, d.next_mode, d.verdict))
+
+    node.create_subscription(JointTrajectory, "setpoints", on_setpoint, big)
+    node.create_subscription(Float64MultiArray, "adapter/decisions", on_decision, big)
+    node.create_subscription(JointState, "joint_states", lambda m: rec["joint_states"].append(
+        (time.time(), list(m.position), list(m.velocity))), 100)
+    node.create_subscription(Float64MultiArray, "driver/position_command",
+                             lambda m: rec["commands"].append(time.time()), 100)
+    node.create_subscription(Log, "/rosout", lambda m: rec["trips"].append(
+        (time.time(), m.msg)) if m.msg.startswith("watchdog: ") else None, 100)
+    node.create_subscription(DiagnosticArray, "/diagnostics", lambda m: diag.update(
+        {s.name: {kv.key: kv.value for kv in s.values} | {"_message": s.message}
+         for s in m.status}), 50)
+    ex = SingleThreadedExecutor()
+    ex.add_node(node)
+    threading.Thread(target=ex.spin, daemon=True).start()
+    adapter = LifecycleClient(node, "adapter", spun_elsewhere=True)
+    triggers: dict[str, Any] = {}
+
+    def trigger(name: str) -> tuple[bool, str]:
+        if name not in triggers:
+            triggers[name] = node.create_client(Trigger, name)
+        client = triggers[name]
+        if not client.wait_for_service(5.0):
+            return False, f"service {name} not available"
+        future = client.call_async(Trigger.Request())
+        end = time.monotonic() + 5.0
+        while not future.done() and time.monotonic() < end:
+            time.sleep(0.01)
+        return (future.result().success, future.result().message) if future.done() else (
+            False, f"no answer from {name}")
+
+    def mode() -> str:
+        return rec["decisions"][-1][3] if rec["decisions"] else ""
+
+    def handle(req: dict[str, Any]) -> dict[str, Any]:
+        cmd = req["cmd"]
+        timeout = float(req.get("timeout", 30.0))
+        if cmd == "configure":
+            return {"ok": adapter.wait(timeout) and adapter.configure(timeout)}
+        if cmd == "activate":
+            end = time.monotonic() + timeout
+            while time.monotonic() < end:
+                if adapter.activate():
+                    return {"ok": True}
+                time.sleep(0.5)
+            return {"ok": False}
+        if cmd == "trigger":
+            end = time.monotonic() + float(req.get("retry", 0.0))
+            ok, msg = trigger(req["name"])
+            refusals = []
+            while not ok and time.monotonic() < end:
+                refusals.append(msg)
+                time.sleep(0.2)
+                ok, msg = trigger(req["name"])
+            return {"ok": ok, "message": msg, "refusals": refusals}
+        if cmd == "wait_mode":
+            end = time.monotonic() + timeout
+            while mode() != req["mode"] and time.monotonic() < end:
+                time.sleep(0.02)
+            return {"ok": mode() == req["mode"], "mode": mode()}
+        if cmd == "quit":
+            return {"ok": True}
+        if cmd == "stats":
+            return {"counts": {k: len(v) for k, v in rec.items()}, "mode": mode(),
+                    "trips": list(rec["trips"]), "diagnostics": dict(diag),
+                    "last": {k: (v[-1][1] if k in ("setpoints", "decisions") else
+                                 v[-1][0] if k in ("joint_states", "trips") else v[-1])
+                             if v else None for k, v in rec.items()}}
+        if cmd == "dump":
+            sp, js = list(rec["setpoints"]), list(rec["joint_states"])
+            dec = list(rec["decisions"])
+            np.savez(req["path"],
+                     sp_stamp_ns=np.array([s[0] for s in sp], np.int64),
+                     sp_arrival=np.array([s[1] for s in sp]),
+                     sp_p=np.array([s[2] for s in sp]), sp_v=np.array([s[3] for s in sp]),
+                     sp_a=np.array([s[4] for s in sp]),
+                     js_arrival=np.array([s[0] for s in js]),
+                     js_p=np.array([s[1] for s in js]), js_v=np.array([s[2] for s in js]),
+                     dec_time=np.array([d[0] for d in dec]),
+                     dec_arrival=np.array([d[1] for d in dec]),
+                     dec_next_mode=np.array([d[3] for d in dec]),
+                     commands=np.array(rec["commands"]))
+            return {"ok": True}
+        raise ValueError(f"unknown command {cmd!r}")
+
+    for line in sys.stdin:
+        req = json.loads(line)
+        try:
+            answer = handle(req)
+        except Exception as exc:  # report to the test, keep serving
+            answer = {"error": f"{type(exc).__name__}: {exc}"}
+        print(json.dumps(answer), flush=True)
+        if req["cmd"] == "quit":
+            break
+    ex.shutdown(timeout_sec=2.0)
+    node.destroy_node()
+    rclpy.shutdown()
+    sys.stdout.flush()
+    os._exit(0)   # no interpreter teardown racing the DDS threads ("terminate called ...")
+
+
+if __name__ == "__main__":
+    import sys
+    if sys.argv[1:2] != ["probe"]:
+        print("usage: python test/fuzz_harness.py probe", file=sys.stderr)
+        raise SystemExit(2)
+    raise SystemExit(probe_main(sys.argv[2:]))
