@@ -1165,14 +1165,17 @@ class NetHosts:
 
 def udp_only_profile(path: Path, peers: tuple[str, ...]) -> Path:
     """A Fast DDS XML profile: UDPv4 only (no shared memory, which would carry data across
-    namespaces and hide a cut), builtin transports off, discovery by the initial peers."""
+    namespaces and hide a cut), builtin transports off, discovery by the initial peers
+    (participant ids 0-31 on each: the ids are taken machine-wide, so other tests' nodes
+    may hold the low ones)."""
     locators = "".join(f"<locator><udpv4><address>{a}</address></udpv4></locator>"
                        for a in peers)
     path.write_text(
         '<?xml version="1.0" encoding="UTF-8"?>\n'
         '<profiles xmlns="http://www.eprosima.com/XMLSchemas/fastRTPS_Profiles">\n'
         "  <transport_descriptors><transport_descriptor><transport_id>udp_only</transport_id>"
-        "<type>UDPv4</type></transport_descriptor></transport_descriptors>\n"
+        "<type>UDPv4</type><maxInitialPeersRange>32</maxInitialPeersRange>"
+        "</transport_descriptor></transport_descriptors>\n"
         '  <participant profile_name="test_hosts" is_default_profile="true"><rtps>'
         "<userTransports><transport_id>udp_only</transport_id></userTransports>"
         "<useBuiltinTransports>false</useBuiltinTransports>"
