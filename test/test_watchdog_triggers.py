@@ -49,6 +49,7 @@ def cell(cards):
     rclpy.init()
     folder, c = cards
     cell = h.Cell(folder, c["fault"])
+    cell.fault_card = c["fault"]
     cell.probe.feedback = {"fault": 0.0}
     cell.start_following()
     cell.start_reference()
@@ -62,7 +63,20 @@ def cell(cards):
 
 
 def moving(cell: h.Cell) -> None:
-    """Wait until the plan follows the reference at some speed."""
+    """Wait until the plan follows the reference at some speed (after a failed test: clear
+    every injection and reset first, so one failure does not cascade)."""
+    p = cell.probe
+    p.js_block = p.ref_block = p.ref_truncate = False
+    p.js_offset, p.ref_offset, p.feedback = None, 0.0, {"fault": 0.0}
+    p.stop_pub.publish(Bool(data=False))
+    if cell.mode() in ("stopping", "stopped"):
+        if cell.get_param("policy_active") != str(cell.fault_card):
+            cell.set_params(policy=str(cell.fault_card))
+        cell.wait_rest()
+        time.sleep(0.3)
+        cell.trigger("/adapter/reset")
+        cell.wait_mode("following")
+        cell.start_reference()
     cell.wait_mode("following")
     h.wait_until(lambda: np.abs(cell.probe.setpoints[-1].velocity).max() > 0.05,
                  "motion", timeout=10.0)
