@@ -98,12 +98,19 @@ class LimitStage:
         n = self._n = len(limits)
         V, A, J = limits.velocity_max, limits.acceleration_max, limits.jerk_max
         A_eff = A.copy()
-        for _ in range(50):  # shrink A until the reversal after the highest point is recoverable
-            Jc = np.minimum(J, A_eff / T)
-            allowed = Jc * (-T + np.sqrt(T * T + 1.8 * V / Jc))
-            if np.all(A_eff <= allowed * (1 + 1e-12)):
-                break
-            A_eff = np.minimum(A_eff, allowed)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            for _ in range(50):  # shrink A until the reversal after the highest point is recoverable
+                Jc = np.minimum(J, A_eff / T)
+                allowed = Jc * (-T + np.sqrt(T * T + 1.8 * V / Jc))
+                if np.all(A_eff <= allowed * (1 + 1e-12)):
+                    break
+                A_eff = np.minimum(A_eff, allowed)
+        unusable = ~(A_eff > 0.0)  # NaN too: a velocity limit lost in rounding (found by fuzzing)
+        if unusable.any():
+            i = int(np.argmax(unusable))
+            raise LimitStageError(
+                f"joint '{limits.names[i]}': velocity_max {V[i]:g}, acceleration_max {A[i]:g} "
+                f"and jerk_max {J[i]:g} leave no usable acceleration at period {T:g} s")
         Jc = np.minimum(J, A_eff / T)
         self.acceleration_limit = A_eff
         self.continuation_jerk = Jc
