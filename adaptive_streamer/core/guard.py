@@ -1,7 +1,8 @@
 """The last guard on every outgoing setpoint.
 
 Whatever produced it, a setpoint leaves only if it is finite, inside the position, velocity
-and acceleration limits, and continuous with the previous one: the position, velocity and
+and acceleration limits, and continuous with the previous one (the first one of a stream
+must be at rest): the position, velocity and
 acceleration steps since the previous setpoint must be within what the velocity,
 acceleration and jerk limits allow over the elapsed time. A failure names the joint and
 what was wrong; the adapter then stops (and counts it).
@@ -56,7 +57,12 @@ class SetpointGuard:
             if bad.any():
                 i = int(np.argmax(bad))
                 return f"setpoint {label} on joint '{names[i]}' (p={p[i]:.6g}, v={v[i]:.6g}, a={a[i]:.6g})"
-        if self._prev is None:
+        if self._prev is None:  # a new stream starts at rest
+            moving = (np.abs(v) > self._v * 1e-9) | (np.abs(a) > self._a * 1e-9)
+            if moving.any():
+                i = int(np.argmax(moving))
+                return (f"first setpoint of a stream on joint '{names[i]}' is not at rest "
+                        f"(v={v[i]:.6g}, a={a[i]:.6g})")
             return None
         t0, (p0, v0, a0) = self._prev
         dt = t - t0

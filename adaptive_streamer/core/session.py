@@ -191,6 +191,13 @@ class StreamingSession:
             except StreamError:
                 return None
 
+    def decision_due(self, t: float) -> bool:
+        """True once the stream at nominal time ``t`` is inside the last committed segment
+        (the next decision is needed before the plan runs out). Follows the plan's own
+        segment times, so rounding in long runs never eats the one-period margin."""
+        with self._lock:
+            return not self.plan.empty and self.plan.end - t <= self.period + 1e-9
+
     # ------------------------------------------------------------------ decision side
     @property
     def next_decision_time(self) -> float:
@@ -225,11 +232,12 @@ class StreamingSession:
     def decide(self, now: float, inputs: SessionInputs) -> Decision | None:
         """Input checks and one decision cycle; returns the decision if it was committed.
 
-        Only decides when the plan ends within 1.5 periods of ``now`` (so a repeated
-        trigger never runs the plan ahead of the stream).
+        Only decides while the stream is inside the last committed segment (the segment to
+        decide starts within one period of ``now``), so a repeated trigger never runs the
+        plan ahead of the stream.
         """
         cycle = self.cycle
-        if cycle.state is None or cycle.t > now + 1.5 * self.period:
+        if cycle.state is None or cycle.t - now > self.period + 1e-6:
             return None  # already decided ahead (a duplicate trigger)
         following = cycle.mode in ("approaching", "following")
         if following and not self.watchdog.tripped:

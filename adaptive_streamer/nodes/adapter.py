@@ -78,7 +78,6 @@ class AdapterNode(LifecycleNode):
         self._stream_timer = None
         self._decide_gc = None
         self._ticks: StreamClock | None = None
-        self._last_segment = -1
         self._paused_for: object | None = None
         self._counters = {"guard_failures": 0, "bad_joint_states": 0, "bad_windows": 0,
                           "decision_errors": 0, "stream_errors": 0, "policy_swaps_failed": 0}
@@ -309,7 +308,6 @@ class AdapterNode(LifecycleNode):
         t0 = math.ceil(now * self._rate) / self._rate
         session.begin(t0, MotionState(positions, z, z))
         self._ticks = StreamClock(t0, self._rate)
-        self._last_segment = -1
         self._decide_gc = self.create_guard_condition(self._on_decide,
                                                       callback_group=self._decide_group)
         ticks = self._ticks
@@ -503,11 +501,8 @@ class AdapterNode(LifecycleNode):
             if shadow is not None:
                 fill_setpoint(self._shadow_msg, t, shadow)
                 self._shadow_pub.publish(self._shadow_msg)
-            k = math.floor((t - clock.t0) / session.period + 1e-9)
-            if k != self._last_segment:
-                self._last_segment = k
-                if self._decide_gc is not None:
-                    self._decide_gc.trigger()
+            if self._decide_gc is not None and session.decision_due(t):
+                self._decide_gc.trigger()
         except Exception as exc:  # never let an exception escape the stream callback
             self._counters["stream_errors"] += 1
             self.get_logger().error(f"stream tick failed: {exc}", throttle_duration_sec=1.0)
