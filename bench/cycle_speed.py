@@ -49,10 +49,12 @@ def windows(limits, count: int) -> list:
     centre = 0.5 * (np.where(np.isfinite(limits.position_min), limits.position_min, 0.0)
                     + np.where(np.isfinite(limits.position_max), limits.position_max, 0.0))
     p = centre + np.outer(0.5 * (1 - np.cos(2 * np.pi * t / 4.0)), np.full(N, 0.3))
-    pb = Playback(ReferenceTrajectory(limits.names, t, p, ends="periodic"), PERIOD, HORIZON + 5,
+    pb = Playback(ReferenceTrajectory(limits.names, t, p, ends="periodic"), PERIOD, HORIZON + 7,
                   end_mode="loop")
-    pb.start(T0)
-    return [pb.window(T0 + k * PERIOD) for k in range(count)], centre
+    pb.start(T0 - PERIOD)
+    # stamped half a period before each decision instant, as the live reference server's
+    # windows arrive (they are not in phase with the adapter's decisions)
+    return [pb.window(T0 + (k - 0.5) * PERIOD) for k in range(count)], centre
 
 
 def time_cycle(policy, limits, run: RunningConfig, ws: list, centre: np.ndarray) -> tuple:

@@ -17,7 +17,7 @@ from numpy.polynomial import Polynomial
 from scipy.interpolate import BPoly, CubicHermiteSpline
 
 from adaptive_streamer.core.alignment import (AlignmentError, align, validate_window,
-                                              window_end, wrap_angle)
+                                              window_end)
 from adaptive_streamer.core.playback import Window
 
 STAMP = 1_796_000_000.0  # an epoch-like stamp: offsets are relative to it
@@ -122,10 +122,3 @@ def test_validate_window_refuses_malformed_windows(change, words):
     validate_window(w)
     with pytest.raises(AlignmentError, match=words):
         validate_window(change(w))
-
-
-def test_wrap_angle():
-    x = np.array([0.0, np.pi, -np.pi, 3 * np.pi / 2, -7.0])
-    # reference: wrapping into [-pi, pi) as math.remainder would, up to the pi edge
-    np.testing.assert_allclose(wrap_angle(x), [0.0, -np.pi, -np.pi, -np.pi / 2,
-                                               -7.0 + 2 * np.pi])

@@ -14,6 +14,10 @@ reset, which re-approaches). The planned state is the integrated command stream,
 noisy measured state; the measured state only initialises it (`begin`).
 
 Deterministic: the same inputs in the same order give the same decisions, bit for bit.
+Decision instants advance by adding the period, so at epoch-sized ROS times they pick up
+about 5e-8 s of rounding per decision (milliseconds per hour); the stream follows the
+plan's own segment times (`StreamingSession.decision_due`), so this never eats the
+one-period margin.
 `decide` is pure with respect to the cycle's state; `commit` applies a decision if it is
 still for the current instant, so a late decision (overrun) can be replaced by
 `commit_braking` safely.
