@@ -183,7 +183,12 @@ class AdapterNode(LifecycleNode):
         return SetParametersResult(successful=True)
 
     def _load_policy(self, which: str, path: str, old: str) -> None:
-        """Load and validate a card off the streaming path; swap at a decision boundary."""
+        """Load and validate a card off the streaming path; swap at a decision boundary.
+
+        Runs in its own thread at the decision thread's priority, so that while it holds
+        the interpreter it is not preempted by other processes (the stream thread would
+        wait for it)."""
+        _set_thread_priority(int(self.get_parameter("decision_priority").value))
         with self._policy_lock:
             try:
                 policy = load_policy(path, self._running) if path else None
