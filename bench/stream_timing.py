@@ -55,6 +55,9 @@ PERIOD = 0.05  # decision period, common practice
 
 
 # ---------------------------------------------------------------------------- files
+PROBE_PRIORITY = 20   # SCHED_FIFO of the measuring subscriber's thread
+
+
 def write_files(folder: Path) -> dict[str, Path]:
     """The looping reference (demo pass there and back) and the two policy cards."""
     import adapter_harness as h
@@ -101,7 +104,7 @@ def run_cell(folder: Path) -> None:
 
 def run_adapter(folder: Path, rate: float, priority: int, decision_priority: int) -> None:
     """The adapter alone in its process (autostart), as its executable runs it."""
-    from adaptive_streamer.nodes.adapter import AdapterNode, make_executor
+    from adaptive_streamer.nodes.adapter import AdapterNode, make_executor, prepare_process
     from adaptive_streamer.nodes.common import run_nodes
     from rclpy.parameter import Parameter as P
     params = [P("policy", value=str(folder / "tracker.card.yaml")),
@@ -112,7 +115,8 @@ def run_adapter(folder: Path, rate: float, priority: int, decision_priority: int
 
     def stop(nodes: list, executor: object) -> None:  # noqa: ARG001
         for node in nodes:
-            node._stop_and_wait()
+            node.stop_at_rest()
+    prepare_process()
     raise SystemExit(run_nodes([lambda: AdapterNode(parameter_overrides=params)],
                                executor=make_executor, before_shutdown=stop))
 
@@ -156,15 +160,24 @@ def measure(folder: Path, cards: dict[str, Path], rate: float, duration: float, 
     import adapter_harness as h
     from adaptive_streamer.nodes.common import reliable_qos
 
+    from rclpy.serialization import deserialize_message
+
     node = Node("stream_timing_probe")
-    samples: list[h.Sample] = []
+    raw: list[tuple[float, bytes]] = []
     diag: dict[str, str] = {}
 
-    def on_setpoint(msg: JointTrajectory) -> None:
-        pt = msg.points[0]
-        samples.append(h.Sample(msg.header.stamp.sec * 1_000_000_000 + msg.header.stamp.nanosec,
+    def on_setpoint(data: bytes) -> None:
+        raw.append((time.monotonic(), data))   # the instrument does no work while measuring
+
+    def decoded(rows: list[tuple[float, bytes]]) -> list[h.Sample]:
+        out = []
+        for arrival, data in rows:
+            msg = deserialize_message(data, JointTrajectory)
+            pt = msg.points[0]
+            out.append(h.Sample(msg.header.stamp.sec * 1_000_000_000 + msg.header.stamp.nanosec,
                                 np.array(pt.positions), np.array(pt.velocities),
-                                np.array(pt.accelerations), time.monotonic()))
+                                np.array(pt.accelerations), arrival))
+        return out
 
     def on_diag(msg: DiagnosticArray) -> None:
         for st in msg.status:
@@ -172,11 +185,20 @@ def measure(folder: Path, cards: dict[str, Path], rate: float, duration: float, 
                 diag.clear()
                 diag.update({kv.key: kv.value for kv in st.values})
 
-    node.create_subscription(JointTrajectory, "setpoints", on_setpoint, reliable_qos(1000))
+    node.create_subscription(JointTrajectory, "setpoints", on_setpoint, reliable_qos(1000),
+                             raw=True)
     node.create_subscription(DiagnosticArray, "/diagnostics", on_diag, 50)
     ex = SingleThreadedExecutor()
     ex.add_node(node)
-    spinner = threading.Thread(target=ex.spin, daemon=True)
+
+    def spin() -> None:  # the measuring thread above the adapter's priorities
+        try:
+            os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(PROBE_PRIORITY))
+        except (OSError, AttributeError):
+            print("note: probe runs at normal priority (SCHED_FIFO refused)", file=sys.stderr)
+        ex.spin()
+
+    spinner = threading.Thread(target=spin, daemon=True)
     spinner.start()
     adapter = spawn("adapter", folder, "--rate", str(rate), "--priority", str(priority),
                     "--decision-priority", str(decision_priority))
@@ -190,9 +212,9 @@ def measure(folder: Path, cards: dict[str, Path], rate: float, duration: float, 
         _wait(start.service_is_ready, "reference_server/start", 20.0)
         start.call_async(Trigger.Request())   # refused ('already started') after the 1st run
         time.sleep(1.0)
-        t_begin = len(samples)
+        t_begin = len(raw)
         time.sleep(duration)
-        t_swaps = len(samples)
+        t_swaps = len(raw)
         params = AsyncParameterClient(node, "adapter")
         _wait(params.services_are_ready, "adapter parameters", 20.0)
         for k in range(swaps):
@@ -201,10 +223,10 @@ def measure(folder: Path, cards: dict[str, Path], rate: float, duration: float, 
             _wait(fut.done, "set_parameters", 10.0)
             time.sleep(0.25)
         time.sleep(0.5)
-        t_end = len(samples)
+        t_end = len(raw)
         time.sleep(1.2)  # one more /diagnostics
-        report(rate, duration, swaps, samples[t_begin:t_swaps], samples[t_swaps:t_end],
-               dict(diag))
+        report(rate, duration, swaps, decoded(raw[t_begin:t_swaps]),
+               decoded(raw[t_swaps:t_end]), dict(diag))
     finally:
         stop_process(adapter)
         ex.remove_node(node)
@@ -264,6 +286,10 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
         cards = write_files(folder)
+        try:  # the instrument (and its middleware threads) above everything it measures
+            os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(PROBE_PRIORITY))
+        except (OSError, AttributeError):
+            print("note: probe runs at normal priority (SCHED_FIFO refused)", file=sys.stderr)
         rclpy.init()
         cell = spawn("cell", folder)
         try:

@@ -664,14 +664,16 @@ class AdapterNode(LifecycleNode):
 
 
 def _set_thread_priority(priority: int) -> str:
-    """SCHED_FIFO for the calling thread (the one that will run the executor)."""
-    if priority <= 0:
-        return "executor thread at normal priority"
+    """SCHED_FIFO ``priority`` for the calling thread, or normal scheduling for 0."""
     try:
+        if priority <= 0:
+            if os.sched_getscheduler(0) != os.SCHED_OTHER:
+                os.sched_setscheduler(0, os.SCHED_OTHER, os.sched_param(0))
+            return "thread at normal priority"
         os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(priority))
     except (OSError, AttributeError) as exc:
-        return f"executor thread at normal priority (SCHED_FIFO {priority} refused: {exc})"
-    return f"executor thread at SCHED_FIFO priority {priority}"
+        return f"thread at normal priority (SCHED_FIFO {priority} refused: {exc})"
+    return f"thread at SCHED_FIFO priority {priority}"
 
 
 def _pct(values: deque[float], q: float) -> float:
@@ -682,12 +684,24 @@ def make_executor() -> SingleThreadedExecutor:
     """The executor for the adapter: one thread for subscriptions, services and decisions
     (the stream has its own thread); the GIL switch interval is shortened so the stream
     thread gets the interpreter promptly."""
-    sys.setswitchinterval(0.0005)
+    sys.setswitchinterval(0.0001)
     return SingleThreadedExecutor()
+
+
+MIDDLEWARE_PRIORITY = 5
+
+
+def prepare_process() -> str:
+    """Call before rclpy starts in the adapter's own process: asks for SCHED_FIFO
+    ``MIDDLEWARE_PRIORITY`` so the middleware's send and receive threads, created at init,
+    inherit it (a loaded machine then delays the stream's messages less); the node's
+    ``decision_priority`` later sets the executor thread's own priority (0: normal)."""
+    return _set_thread_priority(MIDDLEWARE_PRIORITY)
 
 
 def main(args: list[str] | None = None) -> int:
     """Run the adapter node until Ctrl-C (the arm is brought to rest first)."""
+    prepare_process()
     def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
         for node in nodes:
             if isinstance(node, AdapterNode):
