@@ -48,6 +48,8 @@ def main(argv: list[str] | None = None) -> int:
     if args.topics:
         import rclpy
         rclpy.init()
+        (folder / "topics").mkdir()
+        (folder / "clock").mkdir()
         fuzz = fuzz_harness.TopicFuzz(folder / "topics")
         clock = None
         try:

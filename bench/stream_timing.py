@@ -22,12 +22,12 @@ following) are made 0.25 s apart. Printed figures:
 * the adapter's own figures: tick_late_ms_p50/p99 (wake-up lateness), skipped_ticks,
   late_decisions, decision_ms_p99.
 
-``--decision-priority P`` also gives the adapter's executor thread (subscriptions,
-services, decisions) SCHED_FIFO priority P: a thread holding the GIL at normal priority can
+``--decision-priority P`` (default 5, as the demo runs) gives the adapter's executor thread
+(subscriptions, services, decisions) SCHED_FIFO priority P (0: normal): a thread holding the GIL at normal priority can
 be preempted by other processes while the real-time stream thread waits for it.
 
 Run: ``.venv/bin/python bench/stream_timing.py [--duration 60] [--rates 250 1000]
-[--decision-priority 5]``.
+[--decision-priority 5]`` (the defaults).
 No assertions: figures only (the machine is shared).
 """
 from __future__ import annotations
@@ -268,12 +268,13 @@ def report(rate: float, duration: float, swaps: int, run: list, swapping: list,
 def main() -> None:
     """Parse arguments; run a role, or the whole measurement."""
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--duration", type=float, default=20.0, help="seconds per rate (default 20)")
+    ap.add_argument("--duration", type=float, default=60.0, help="seconds per rate (default 60)")
     ap.add_argument("--rates", type=float, nargs="+", default=[250.0, 1000.0])
     ap.add_argument("--swaps", type=int, default=20)
     ap.add_argument("--priority", type=int, default=10, help="adapter stream_priority")
-    ap.add_argument("--decision-priority", type=int, default=0,
-                    help="adapter decision_priority (SCHED_FIFO of the executor thread)")
+    ap.add_argument("--decision-priority", type=int, default=5,
+                    help="adapter decision_priority (SCHED_FIFO of the executor thread; "
+                         "default 5, as in the demo)")
     ap.add_argument("--role", choices=("cell", "adapter"), help=argparse.SUPPRESS)
     ap.add_argument("--folder", type=Path, help=argparse.SUPPRESS)
     ap.add_argument("--rate", type=float, help=argparse.SUPPRESS)

@@ -546,8 +546,10 @@ class Cell:
         # here (the adapter shares this process) and would trip the watchdog's timeouts.
         gc.collect()
         gc.freeze()
-        for ex in (self.cell_ex, self.adapter_ex):
-            threading.Thread(target=self._spin, args=(ex,), daemon=True).start()
+        self._spinners = [threading.Thread(target=self._spin, args=(ex,), daemon=True)
+                          for ex in (self.cell_ex, self.adapter_ex)]
+        for thread in self._spinners:
+            thread.start()
 
     @staticmethod
     def _spin(ex: Any) -> None:
@@ -562,8 +564,11 @@ class Cell:
             self.transition(Transition.TRANSITION_DEACTIVATE)
         for ex in (self.adapter_ex, self.cell_ex):
             ex.shutdown(timeout_sec=2.0)
+        for thread in self._spinners:
+            thread.join(timeout=5.0)
         for node in (self.adapter, self.reference, self.driver, self.probe):
             node.destroy_node()
+        gc.unfreeze()
 
     # ---------------------------------------------------------------- services
     def call(self, srv_type: Any, name: str, request: Any = None, timeout: float = 15.0) -> Any:

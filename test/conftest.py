@@ -1,12 +1,16 @@
 """Test-session setup shared by every test.
 
-Each pytest process gets its own ROS_DOMAIN_ID (derived from the process id) and DDS
-discovery limited to this host, so parallel runs never cross-talk. This runs before any
-test module imports rclpy.
+Each pytest process gets its own ROS_DOMAIN_ID (derived from the process id; a new one for
+each test module) and DDS discovery limited to this host, so parallel runs never
+cross-talk. This runs before any test module imports rclpy.
 """
+import gc
+import itertools
 import os
 import sys
 from pathlib import Path
+
+import pytest
 
 os.environ["ROS_DOMAIN_ID"] = str(1 + os.getpid() % 100)
 os.environ["ROS_AUTOMATIC_DISCOVERY_RANGE"] = "LOCALHOST"
@@ -14,3 +18,24 @@ os.environ.setdefault("RCUTILS_LOGGING_BUFFERED_STREAM", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 
 sys.path.insert(0, str(Path(__file__).parent))
+
+
+_MODULES = itertools.count()
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _own_domain_per_module():
+    """Each test module gets its own ROS_DOMAIN_ID (for its nodes and the processes it
+    starts), still derived from the process id so parallel runs stay apart: domain
+    1 + (pid + 37 k) mod 232 for the k-th module.
+
+    A module's rclpy contexts are finalised only when the collector gets to them, and a
+    participant left in the domain keeps its participant id. With discovery limited to this
+    host a new participant announces itself only to the lowest few ids, so once leftovers
+    hold those, the processes a later test starts would stop finding each other. What the
+    earlier modules left is collected here as well (the adapter harness freezes the
+    collector while a cell runs)."""
+    gc.unfreeze()
+    gc.collect()
+    os.environ["ROS_DOMAIN_ID"] = str(1 + (os.getpid() + 37 * next(_MODULES)) % 232)
+    yield

@@ -727,11 +727,26 @@ class TopicFuzz:
         self.probe.js_block = self.probe.ref_block = False
         self.probe.feedback = {"edge_offset": 0.0}
         cell.wait_mode("stopped", 20.0)
-        self.ah.wait_until(lambda: cell.trigger("/adapter/reset").success, "a reset", 20.0,
+        self.ah.wait_until(lambda: self.trigger("/adapter/reset").success, "a reset", 30.0,
                            poll=0.2)
-        res = cell.trigger("/reference_server/resume")
+        res = self.trigger("/reference_server/resume")
         assert res.success or "not paused" in res.message, res.message
         cell.wait_mode("following", 30.0)
+
+    def trigger(self, name: str, wait: float = 2.0) -> Any:
+        """Call a Trigger service; on a loaded machine an answer can be lost, so the
+        request is sent again every ``wait`` seconds (the services are idempotent here)."""
+        from std_srvs.srv import Trigger
+        client = self.probe.client(Trigger, name)
+        self.ah.wait_until(client.service_is_ready, f"service {name}")
+        for _ in range(5):
+            future = client.call_async(Trigger.Request())
+            end = time.monotonic() + wait
+            while not future.done() and time.monotonic() < end:
+                time.sleep(0.01)
+            if future.done():
+                return future.result()
+        raise AssertionError(f"no answer from {name} to 5 requests")
 
     def _outcome(self, counters0: dict[str, int], events0: int, counter: str | None) -> str:
         events = self.adapter.session.watchdog.events[events0:]
@@ -1167,14 +1182,18 @@ def udp_only_profile(path: Path, peers: tuple[str, ...]) -> Path:
     """A Fast DDS XML profile: UDPv4 only (no shared memory, which would carry data across
     namespaces and hide a cut), builtin transports off, discovery by the initial peers
     (participant ids 0-31 on each: the ids are taken machine-wide, so other tests' nodes
-    may hold the low ones)."""
+    may hold the low ones). The interfaces are the hosts' addresses and loopback: traffic
+    inside one host goes over loopback, so it goes on when that host's veth loses its
+    carrier at the cut."""
     locators = "".join(f"<locator><udpv4><address>{a}</address></udpv4></locator>"
                        for a in peers)
+    whitelist = "".join(f"<address>{a}</address>" for a in ("127.0.0.1", *peers))
     path.write_text(
         '<?xml version="1.0" encoding="UTF-8"?>\n'
         '<profiles xmlns="http://www.eprosima.com/XMLSchemas/fastRTPS_Profiles">\n'
         "  <transport_descriptors><transport_descriptor><transport_id>udp_only</transport_id>"
         "<type>UDPv4</type><maxInitialPeersRange>32</maxInitialPeersRange>"
+        f"<interfaceWhiteList>{whitelist}</interfaceWhiteList>"
         "</transport_descriptor></transport_descriptors>\n"
         '  <participant profile_name="test_hosts" is_default_profile="true"><rtps>'
         "<userTransports><transport_id>udp_only</transport_id></userTransports>"

@@ -42,7 +42,7 @@ from adaptive_streamer.nodes.sim_driver import SimDriver
 sys.exit(run_nodes([ReferenceServer, SimDriver, EdgeSensor, SensorBridge], sys.argv[1:]))
 """
 
-_CACHE: dict[str, Path] = {}
+_CACHE: dict[str, Path | Exception] = {}
 
 
 class _NoAliases(yaml.SafeDumper):
@@ -145,12 +145,14 @@ def record_live_run(folder: Path, follow_s: float = FOLLOW_S, compression: str =
             time.sleep(follow_s)
             op.client.deactivate()  # a controlled stop, recorded
     finally:
-        if adapter is not None:
-            _stop(adapter)
-        rec.stop()
-        _stop(cell)
-        for f in logs:
-            f.close()
+        try:
+            if adapter is not None:
+                _stop(adapter)
+            rec.stop()
+        finally:  # the cell goes even when the recorder fails to stop
+            _stop(cell)
+            for f in logs:
+                f.close()
     return rec.bag
 
 
@@ -201,9 +203,15 @@ class _Operator:
 
 
 def live_recording(tmp_root: Path) -> Path:
-    """The cached live recording of this test process (recorded on first use)."""
+    """The cached live recording of this test process (recorded on first use; a failed
+    recording is not retried, later modules see its error)."""
     if "bag" not in _CACHE:
-        _CACHE["bag"] = record_live_run(tmp_root / "live")
+        try:
+            _CACHE["bag"] = record_live_run(tmp_root / "live")
+        except Exception as exc:
+            _CACHE["bag"] = exc
+    if isinstance(_CACHE["bag"], Exception):
+        raise RuntimeError(f"the live recording failed: {_CACHE['bag']}") from _CACHE["bag"]
     return _CACHE["bag"]
 
 
