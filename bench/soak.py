@@ -42,7 +42,6 @@ import json
 import math
 import shutil
 import subprocess
-import sys
 import tempfile
 import threading
 import time

@@ -251,7 +251,7 @@ def test_bad_bag_topic_type_and_messages(tmp_path):
         b = write_bag(tmp_path / f"bad{k}", "/js", msgs, JointState.__msgtype__)
         with pytest.raises(ReferenceFileError, match=fragment) as err:
             load_bag(b, "/js", limits=LIMITS)
-        assert f"topic '/js'" in str(err.value)
+        assert "topic '/js'" in str(err.value)
 
 
 def test_joint_trajectory_stream_refuses_multi_point_messages(tmp_path):

@@ -10,7 +10,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import rclpy
 from diagnostic_msgs.msg import DiagnosticArray
 from geometry_msgs.msg import PointStamped
 from rcl_interfaces.msg import Parameter as ParameterMsg
