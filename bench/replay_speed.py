@@ -131,7 +131,9 @@ def synthetic_recording(bag: Path, params: dict, cycles: int) -> int:
     p0 = ref(np.array([t0]))[0][0]
     z = np.zeros(n)
     session.begin(t0, MotionState(p0, z, z.copy()))
-    offsets = np.arange(HORIZON) * PERIOD
+    # the window carries the adapter's horizon + 2 points, as the demo's reference server
+    # (config/demo/params.yaml: decisions run one period ahead of the window's start)
+    offsets = np.arange(HORIZON + 2) * PERIOD
     latest_window: tuple[float, bytes] | None = None
     latest_joint: tuple[float, bytes] | None = None
     latest_fb: tuple[float, bytes] | None = None

@@ -129,9 +129,11 @@ class LimitStage:
         pmax = np.concatenate([limits.position_max, -limits.position_min])
         self._pmax = pmax
         finite = np.isfinite(pmax)
-        # nothing can reach a position limit from farther away than one full stop
-        far = self._V * (3 * T + 2 * self._A / self._Jc + self._V / self._A) * 1.05 + 1e-9
-        self._near_from = np.where(finite, pmax - far, np.inf)
+        # nothing can reach a position limit from farther away than one full stop (with huge
+        # limits `far` overflows to inf: every state then takes the exact near-limit path)
+        with np.errstate(over="ignore", invalid="ignore"):
+            far = self._V * (3 * T + 2 * self._A / self._Jc + self._V / self._A) * 1.05 + 1e-9
+            self._near_from = np.where(finite, pmax - far, np.inf)
         self._ptol = (1e-13 * (np.where(finite, np.abs(pmax), 0.0) + 1.0)).tolist()
         self._pmax_tol = np.where(finite, pmax + 1e-12 * (np.abs(pmax) + 1.0), np.inf)
         self._consts = list(zip(self._A.tolist(), self._Jc.tolist(),
