@@ -185,13 +185,16 @@ def test_shadow_policy_is_published_apart_and_compared(cell, cards):
     vals = cell.wait_diag(lambda v: int(v.get("shadow.decisions", 0)) > 10,
                           "shadow statistics on /diagnostics")[3]
     assert np.isfinite(float(vals["shadow.rms_du"])) and float(vals["shadow.max_abs_du"]) > 0
+    # the driver commands first: the setpoints taken a little later hold every setpoint
+    # those commands came from (the two topics arrive on separate subscriptions)
+    commanded = set(cell.probe.driver_positions)
+    time.sleep(0.2)
     main = {s.stamp_ns: s for s in cell.probe.setpoints}
     shadow = list(cell.probe.shadow)
     differ = [s for s in shadow if s.stamp_ns in main
               and not np.array_equal(s.position, main[s.stamp_ns].position)]
     assert len(differ) > 100, "the shadow plan never differed from the commanded one"
     # never commanded: every driver command is a main setpoint, none a differing shadow one
-    commanded = set(cell.probe.driver_positions)
     assert commanded <= {tuple(s.position) for s in main.values()}
     assert not commanded & {tuple(s.position) for s in differ}
     check = h.check_stream(shadow)
