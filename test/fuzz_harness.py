@@ -933,8 +933,16 @@ class TopicFuzz:
         data = {"short": src[:-1], "long": src + [0.0], "empty": []}.get(form, list(src))
         if form in ("nan", "inf"):
             data[spec["joint"]] = math.nan if form == "nan" else math.inf
-        self.cmd_pub.publish(self.msgs[2](data=data))
-        self.ah.wait_until(lambda: driver.rejected > before, "the driver to drop the command", 5.0)
+        # sent again every 0.5 s until the driver counts it (a sample can be lost while the
+        # loaded machine is still matching the publisher); each copy is the same bad command
+        for _ in range(20):
+            self.cmd_pub.publish(self.msgs[2](data=data))
+            end = time.monotonic() + 0.5
+            while driver.rejected == before and time.monotonic() < end:
+                time.sleep(0.01)
+            if driver.rejected > before:
+                break
+        assert driver.rejected > before, f"the driver did not drop the command {data}"
         return "refused", True
 
     def run(self, kind: str, spec: dict[str, Any]) -> tuple[str, bool]:

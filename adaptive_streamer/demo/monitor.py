@@ -39,6 +39,7 @@ class Recorded:
     readings: list[tuple[float, float, float]] = field(default_factory=list)
     diagnostics: dict[str, dict[str, str]] = field(default_factory=dict)
     diag_messages: dict[str, str] = field(default_factory=dict)
+    diag_counts: dict[str, int] = field(default_factory=dict)   # messages per status name
 
 
 class DemoMonitor(Node):
@@ -95,6 +96,7 @@ class DemoMonitor(Node):
         for status in msg.status:
             self.data.diagnostics[status.name] = {kv.key: kv.value for kv in status.values}
             self.data.diag_messages[status.name] = status.message
+            self.data.diag_counts[status.name] = self.data.diag_counts.get(status.name, 0) + 1
 
     def _on_window(self, msg: JointTrajectory) -> None:
         self._last_window = msg
@@ -168,6 +170,13 @@ class DemoMonitor(Node):
             self._window_pub.publish(out)
             self.spin_for(0.01)
         return True
+
+    def wait_fresh_status(self, node: str, timeout: float = 2.5) -> bool:
+        """Wait for the next diagnostics status of ``node`` (a trip shortly before the end
+        of the pass is then in `adapter_status`)."""
+        n = self.data.diag_counts.get(node, 0)
+        return self.wait_for(f"{node} diagnostics",
+                             lambda: self.data.diag_counts.get(node, 0) > n, timeout)
 
     def adapter_status(self) -> dict[str, str]:
         """Latest adapter diagnostics values."""

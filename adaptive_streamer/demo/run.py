@@ -92,6 +92,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
         if bar is not None:
             bar.close()
             bar = None
+        monitor.wait_fresh_status("adapter")
         if monitor.adapter.state(5.0) == "active":
             monitor.adapter.deactivate()
         monitor.recording = False
