@@ -55,7 +55,7 @@ import yaml
 from adaptive_streamer.bringup import NodeEntry, Processes, read_params
 from adaptive_streamer.core import decision_record
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.stream_metrics import check_stream
+from adaptive_streamer.core.stream_metrics import check_stream, time_resolution_of
 from adaptive_streamer.share import share_dir
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -126,7 +126,7 @@ class StreamChecker:
         t = (ns - self._t0_ns) * 1e-9      # exact to the nanosecond, relative to the start
         p, v, a = (np.array([r[k] for r in rows]) for k in (2, 3, 4))
         rep = check_stream(t, p, v, a, self.limits, self.rate,
-                           time_resolution=float(np.spacing(ns[-1] * 1e-9)))
+                           time_resolution=time_resolution_of(ns[-1:] * 1e-9))
         for kind, count in rep.violations.items():
             self.violations[kind] = self.violations.get(kind, 0) + count
         for kind, value in rep.worst.items():

@@ -10,7 +10,7 @@ from ..core.cycle import Decision
 from ..core.limits import JointLimits
 from ..core.scenario.metrics import lateral_error
 from ..core.scenario.panel import Panel
-from ..core.stream_metrics import StreamReport, check_stream, period_stats
+from ..core.stream_metrics import StreamReport, check_stream, period_stats, time_resolution_of
 from .monitor import Recorded
 
 
@@ -90,9 +90,8 @@ def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
     adapted = ErrorFigures.of(lateral_error(series.js_q[in_pass], panel)) if in_pass.any() \
         else ErrorFigures.of(np.zeros(0))
     # the plan's segment boundaries lie on float64 absolute ROS times: allow their spacing
-    resolution = float(np.spacing(np.max(np.abs(series.sp_t)))) if series.sp_t.size else 0.0
     stream = check_stream(series.sp_t, series.sp_p, series.sp_v, series.sp_a, limits, rate,
-                          time_resolution=resolution)
+                          time_resolution=time_resolution_of(series.sp_t))
     pt = np.array([d.policy_time for d in series.decisions if d.mode == "following"]) * 1e3
     decision_ms = {"policy_p50": _pct(pt, 50), "policy_p99": _pct(pt, 99),
                    "cycle_p50": _num(adapter_diag.get("decision_ms_p50")),
