@@ -22,6 +22,24 @@ OK, WARN, ERROR, STALE = (DiagnosticStatus.OK, DiagnosticStatus.WARN, Diagnostic
                           DiagnosticStatus.STALE)
 
 
+class SetupNode(Node):
+    """A node whose parameters, topics and timers are made by ``_setup``. When that fails
+    (a bad parameter), the node is destroyed before the error propagates, so no half-made
+    node stays in the graph."""
+
+    def __init__(self, name: str, **kwargs: Any) -> None:
+        super().__init__(name, **kwargs)
+        try:
+            self._setup()
+        except Exception:
+            self.destroy_node()
+            raise
+
+    def _setup(self) -> None:
+        """Declare parameters, make publishers, subscriptions and timers."""
+        raise NotImplementedError
+
+
 def stamp_to_sec(stamp: TimeMsg) -> float:
     """builtin_interfaces/Time -> float seconds."""
     return stamp.sec + stamp.nanosec * 1e-9

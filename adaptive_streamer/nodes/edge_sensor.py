@@ -34,15 +34,14 @@ from typing import Any, Iterable
 
 import numpy as np
 from geometry_msgs.msg import PointStamped
-from rclpy.node import Node
 from sensor_msgs.msg import JointState
 
 from adaptive_streamer.core.scenario.arm import DEMO_ARM
 from adaptive_streamer.core.scenario.config import ScenarioError, load_scenario
 from adaptive_streamer.core.scenario.line_sensor import LineSensor, true_edge_reading
 
-from .common import (OK, WARN, DiagnosticsReporter, declare, qos_by_name, run_nodes,
-                     sec_to_stamp, stamp_to_sec)
+from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
+                     run_nodes, sec_to_stamp, stamp_to_sec)
 
 _LOG_THROTTLE_S = 5.0
 
@@ -51,16 +50,11 @@ class EdgeSensorError(ValueError):
     """The edge_sensor parameters or its scenario file are invalid."""
 
 
-class EdgeSensor(Node):
+class EdgeSensor(SetupNode):
     """Publishes simulated line-sensor readings computed from the measured joint states."""
 
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("edge_sensor", **kwargs)
-        try:
-            self._setup()
-        except Exception:
-            self.destroy_node()
-            raise
 
     def _setup(self) -> None:
         ro = dict(read_only=True, dynamic_typing=True)

@@ -36,7 +36,6 @@ import sys
 from typing import Any, Callable
 
 from rcl_interfaces.msg import SetParametersResult
-from rclpy.node import Node
 from rclpy.parameter import Parameter
 from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
@@ -47,7 +46,8 @@ from adaptive_streamer.core.playback import (END_MODES, Playback, PlaybackError,
                                              validate_override)
 from adaptive_streamer.core.reference_files import ReferenceFileError, load_reference
 
-from .common import ERROR, OK, WARN, DiagnosticsReporter, declare, now_sec, reliable_qos, run_nodes
+from .common import (ERROR, OK, WARN, DiagnosticsReporter, SetupNode, declare, now_sec,
+                     reliable_qos, run_nodes)
 from .trajectory_conversions import samples_to_msg, window_to_msg
 
 START_MODES = ("service", "immediate")
@@ -57,16 +57,11 @@ class ReferenceServerError(RuntimeError):
     """The reference server cannot start with the given parameters or files."""
 
 
-class ReferenceServer(Node):
+class ReferenceServer(SetupNode):
     """Publishes reference windows from a core `Playback`; converts only."""
 
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("reference_server", **kwargs)
-        try:
-            self._setup()
-        except Exception:
-            self.destroy_node()
-            raise
 
     # ------------------------------------------------------------------ startup
     def _setup(self) -> None:

@@ -49,9 +49,9 @@ from sensor_msgs.msg import JointState
 
 from adaptive_streamer.core.feedback import (FeatureTable, FeedbackError, FilterSpec, InputSpec,
                                              Verdict)
-from adaptive_streamer.nodes.common import (ERROR, OK, WARN, DiagnosticsReporter, declare,
-                                            now_sec, qos_by_name, run_nodes, sec_to_stamp,
-                                            stamp_to_sec)
+from adaptive_streamer.nodes.common import (ERROR, OK, WARN, DiagnosticsReporter, SetupNode,
+                                            declare, now_sec, qos_by_name, run_nodes,
+                                            sec_to_stamp, stamp_to_sec)
 from adaptive_streamer.nodes.field_paths import (FieldPathError, compile_fields, is_stamped,
                                                  message_class, type_name)
 
@@ -199,16 +199,11 @@ def read_config(node: Node) -> tuple[FeatureTable, list[_Channel]]:
     return table, channels
 
 
-class SensorBridge(Node):
+class SensorBridge(SetupNode):
     """Subscribes to the configured sensor inputs and publishes ``feedback``."""
 
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("sensor_bridge", **kwargs)
-        try:
-            self._setup()
-        except Exception:
-            self.destroy_node()
-            raise
 
     def _setup(self) -> None:
         p = _Params(self)

@@ -55,7 +55,8 @@ from trajectory_msgs.msg import JointTrajectory
 
 from adaptive_streamer.core.sim_plant import PlantConfig, PlantError, SimPlant
 
-from .common import OK, WARN, DiagnosticsReporter, declare, qos_by_name, run_nodes
+from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
+                     run_nodes)
 
 DEFAULT_JOINTS = ["j1", "j2", "j3", "j4", "j5", "j6"]
 TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",
@@ -104,16 +105,11 @@ def _numbers(node: Node, name: str, count: int, description: str) -> list[float]
     return [float(v) for v in value]
 
 
-class SimDriver(Node):
+class SimDriver(SetupNode):
     """Steps a `SimPlant` on a timer and publishes its measured state as ``joint_states``."""
 
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("sim_driver", **kwargs)
-        try:
-            self._setup()
-        except Exception:
-            self.destroy_node()
-            raise
 
     def _setup(self) -> None:
         self._joints = _strings(self, "joints", DEFAULT_JOINTS, "joint names")

@@ -26,7 +26,6 @@ import time
 from typing import Any
 
 import numpy as np
-from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
@@ -36,8 +35,8 @@ from adaptive_streamer.core.monitor import StreamMonitor
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.watchdog import WatchdogConfig, WatchdogError
 
-from .common import (ERROR, OK, DiagnosticsReporter, declare, qos_by_name, reliable_qos,
-                     run_nodes, stamp_to_sec)
+from .common import (ERROR, OK, DiagnosticsReporter, SetupNode, declare, qos_by_name,
+                     reliable_qos, run_nodes, stamp_to_sec)
 
 STOP_INTERVAL_S = 1.0
 
@@ -46,16 +45,11 @@ class WatchdogMonitorError(ValueError):
     """The watchdog node's parameters are missing or invalid."""
 
 
-class WatchdogMonitor(Node):
+class WatchdogMonitor(SetupNode):
     """Converts messages for a `StreamMonitor` and reports what it finds."""
 
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("watchdog", **kwargs)
-        try:
-            self._setup()
-        except Exception:
-            self.destroy_node()
-            raise
 
     def _setup(self) -> None:
         ro = dict(read_only=True)
