@@ -39,3 +39,7 @@ def _own_domain_per_module():
     gc.collect()
     os.environ["ROS_DOMAIN_ID"] = str(1 + (os.getpid() + 37 * next(_MODULES)) % 232)
     yield
+    # a module whose cell failed to come up may not have shut rclpy down: the next
+    # module's rclpy.init() would then fail
+    if "rclpy" in sys.modules:
+        sys.modules["rclpy"].try_shutdown()

@@ -30,9 +30,13 @@ def cell(tmp_path_factory):
     # generous deviation thresholds: the limit_scale test makes the plan lag on purpose
     c = h.Cell(folder, tracker, watchdog__deviation_joint=0.5, watchdog__deviation_norm=1.0)
     c.wait_cell()
-    yield c
-    c.close()
-    rclpy.shutdown()
+    try:
+        yield c
+    finally:
+        try:
+            c.close()
+        finally:
+            rclpy.shutdown()
 
 
 def adapter_logs(cell: h.Cell, since: int) -> list[str]:

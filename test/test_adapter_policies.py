@@ -51,11 +51,15 @@ def cell(cards):
     cell.probe.feedback = {"edge_offset": 0.0, "edge_angle": 0.0}
     cell.start_following()
     cell.start_reference()
-    yield cell
-    check = h.check_stream(cell.probe.setpoints)
-    print("whole module stream:", check.describe())
-    cell.close()
-    rclpy.shutdown()
+    try:
+        yield cell
+    finally:
+        try:
+            check = h.check_stream(cell.probe.setpoints)
+            print("whole module stream:", check.describe())
+            cell.close()
+        finally:
+            rclpy.shutdown()
     assert check.ok, check.describe()
 
 

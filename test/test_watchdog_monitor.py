@@ -103,7 +103,9 @@ def cell(tmp_path_factory):
     c = h.Cell(folder, h.write_card(folder, "tracker", "tracker"))
     monitor = WatchdogMonitor(parameter_overrides=[
         Parameter("limits_file", value=str(h.LIMITS_FILE)),
-        Parameter("following_error", value=0.02),   # stricter than the adapter's 0.05
+        # stricter than the adapter's 0.05; the simulated driver's lag alone reaches 0.020
+        # rad on this reference (j6, measured), so 0.025 leaves a clean run clean
+        Parameter("following_error", value=0.025),
         Parameter("stop_on_violation", value=True)])
     ex = SingleThreadedExecutor()
     ex.add_node(monitor)
@@ -111,11 +113,15 @@ def cell(tmp_path_factory):
     c.monitor = monitor
     c.start_following()
     c.start_reference()
-    yield c
-    ex.shutdown(timeout_sec=2.0)
-    monitor.destroy_node()
-    c.close()
-    rclpy.shutdown()
+    try:
+        yield c
+    finally:
+        ex.shutdown(timeout_sec=2.0)
+        monitor.destroy_node()
+        try:
+            c.close()
+        finally:
+            rclpy.shutdown()
 
 
 def test_node_refuses_missing_limits(cell):
@@ -129,12 +135,12 @@ def test_clean_run_is_reported_clean(cell):
                           "watchdog diagnostics", name="watchdog")[3]
     assert int(vals["setpoints_checked"]) > 300
     assert vals["setpoint_violations"] == "0" and vals["following_violations"] == "0"
-    assert float(vals["following_error_max"]) < 0.02
+    assert float(vals["following_error_max"]) < 0.025
 
 
 def test_following_error_makes_it_stop_the_adapter(cell):
     offset = np.zeros(h.N)
-    offset[1] = 0.03   # over the monitor's 0.02, under the adapter's own 0.05
+    offset[1] = 0.03   # over the monitor's 0.025, under the adapter's own 0.05
     cell.probe.js_offset = offset
     vals = cell.wait_diag(lambda v: int(v.get("following_violations", 0)) > 0,
                           "following violation", name="watchdog")[3]

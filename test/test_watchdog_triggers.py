@@ -54,10 +54,14 @@ def cell(cards):
     cell.start_following()
     cell.start_reference()
     time.sleep(1.0)
-    yield cell
-    logs = [m for name, m in cell.probe.logs if name == "adapter"]
-    cell.close()
-    rclpy.shutdown()
+    try:
+        yield cell
+    finally:
+        try:
+            logs = [m for name, m in cell.probe.logs if name == "adapter"]
+            cell.close()
+        finally:
+            rclpy.shutdown()
     # every trip paused the reference server; a refused pause is logged, never an error
     assert not [m for m in logs if "reference pause failed" in m], logs
 
