@@ -25,7 +25,6 @@ from onnx import TensorProto, helper, numpy_helper
 
 from adaptive_streamer.core.feedback import FeatureVector
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.observation import ObservationLayout
 from adaptive_streamer.core.policies import (PolicyInputs, RunningConfig, load_policy,
                                              policy_for_kind)
 from adaptive_streamer.core.segment import MotionState
@@ -139,7 +138,7 @@ def main() -> None:
         size = N * (3 + 2 * HORIZON + 2 + 1) + 2 * len(FEATURES)  # the card's blocks
         write_mlp(Path(tmp) / "mlp.onnx", size, N)
         mlp = load_policy(onnx_path, running)
-        layout = ObservationLayout.from_card(mlp.card)
+        layout = mlp.card.observation_layout()
         session, binding, buf = bound_session(Path(tmp) / "mlp.onnx", size)
         fb = load_policy(fb_path, running)
     tracker = policy_for_kind("tracker", running)

@@ -34,9 +34,9 @@ from adaptive_streamer.core import decision_record  # noqa: E402
 from adaptive_streamer.core.segment import MotionState  # noqa: E402
 from adaptive_streamer.core.session import SessionInputs  # noqa: E402
 from adaptive_streamer.replay import run_info  # noqa: E402
-from adaptive_streamer.replay.bag_io import BagWriter, encode, typestore  # noqa: E402
+from adaptive_streamer.io.bag_io import BagWriter, encode, typestore  # noqa: E402
 from adaptive_streamer.replay.compare import compare  # noqa: E402
-from adaptive_streamer.replay.messages import JointStateReader, WindowReader  # noqa: E402
+from adaptive_streamer.io.messages import JointStateReader, WindowReader  # noqa: E402
 from adaptive_streamer.replay.report import write_bag  # noqa: E402
 from adaptive_streamer.replay.run import open_bag, replay  # noqa: E402
 from adaptive_streamer.core.adapter_setup import build_session  # noqa: E402

@@ -184,7 +184,7 @@ def _operator_node_class() -> type:
 
     from adaptive_streamer.nodes.common import reliable_qos
     from adaptive_streamer.nodes.lifecycle_client import LifecycleClient
-    from adaptive_streamer.nodes.trajectory_conversions import fill_trajectory, msg_to_window
+    from adaptive_streamer.io.trajectory_conversions import fill_trajectory, msg_to_window
 
     class SoakOperator(Node):
         """Feeds the checker, follows the adapter's mode and trips, and acts on the stack."""

@@ -80,12 +80,12 @@ from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.observation import ObservationBlock, ObservationLayout
 from adaptive_streamer.core.policies import build_policy, load_card, parse_card
 from adaptive_streamer.core.policies.base import Policy, PolicyInputs, RunningConfig
-from adaptive_streamer.core.reference_files import load_reference
+from adaptive_streamer.core.reference_files import load_reference_file as load_reference
 from adaptive_streamer.core.segment import MotionState
-from adaptive_streamer.core.scenario.arm import DEMO_ARM
-from adaptive_streamer.core.scenario.closed_loop import (EDGE_FEATURES, CellSettings,
+from adaptive_streamer.sim.arm import DEMO_ARM
+from adaptive_streamer.sim.closed_loop import (EDGE_FEATURES, CellSettings,
                                                          ClosedLoopResult, run_closed_loop)
-from adaptive_streamer.core.scenario.config import Scenario, load_scenario
+from adaptive_streamer.sim.config import Scenario, load_scenario
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "config" / "demo"

@@ -2,7 +2,7 @@
 """Write the demo's joint-space reference (``config/demo/reference.csv``) from the scenario.
 
 The nominal pass of ``config/demo/scenario.yaml`` (straight, along the nominal edge, timed
-rest to rest; see `adaptive_streamer.core.scenario.nominal_path`) is solved with the demo
+rest to rest; see `adaptive_streamer.sim.nominal_path`) is solved with the demo
 arm's inverse kinematics at every ``pass.sample_period`` and written as ``time,j1,...,j6``
 (seconds, radians). The script then checks the pass against ``config/demo/limits.yaml``
 densely, two ways, and prints the peak ratios per joint:
@@ -27,9 +27,9 @@ import numpy as np
 from scipy.interpolate import make_interp_spline
 
 from adaptive_streamer.core.limits import JointLimits, LimitsError
-from adaptive_streamer.core.scenario.arm import DEMO_ARM
-from adaptive_streamer.core.scenario.config import ScenarioError, load_scenario
-from adaptive_streamer.core.scenario.nominal_path import PathError, nominal_joint_path
+from adaptive_streamer.sim.arm import DEMO_ARM
+from adaptive_streamer.sim.config import ScenarioError, load_scenario
+from adaptive_streamer.sim.nominal_path import PathError, nominal_joint_path
 
 ROOT = Path(__file__).resolve().parents[1]
 FD_STEP = 0.002      # s, finite-difference grid

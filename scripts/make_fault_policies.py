@@ -40,10 +40,9 @@ import onnxruntime as ort
 from onnx import TensorProto, helper, numpy_helper
 
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.observation import ObservationLayout
 from adaptive_streamer.core.policies import load_card, load_policy
 from adaptive_streamer.core.policies.base import RunningConfig, neutral_inputs
-from adaptive_streamer.core.scenario.closed_loop import EDGE_FEATURES
+from adaptive_streamer.sim.closed_loop import EDGE_FEATURES
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "config" / "demo"
@@ -163,7 +162,7 @@ def main(argv: list[str] | None = None) -> int:
     edge_card_path = DEMO / "policy_edge.yaml"
     card = load_card(edge_card_path)
     edge = onnx.load(str(card.model))
-    layout = ObservationLayout.from_card(card)
+    layout = card.observation_layout()
     n = len(card.joints)
     block = next(s for b, s in zip(layout.blocks, layout.slices)
                  if b.kind == "reference_velocity")

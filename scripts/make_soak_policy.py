@@ -35,7 +35,7 @@ fault-injection cards, which a soak swaps in and out).
 Checks printed (never asserted beyond the model's contract): onnxruntime against a numpy
 re-implementation on random observations (the tracking term and the action range), the
 action's statistics (mean, share at the bounds), and an offline closed loop of the soak cell
-with the live stack's core code (`adaptive_streamer.core.scenario.closed_loop`): peak limit
+with the live stack's core code (`adaptive_streamer.sim.closed_loop`): peak limit
 use, largest planned deviation and following error, and the watchdog trips (none expected).
 
     python scripts/make_soak_policy.py [--out DIR] [--noise X] [--seconds S]
@@ -117,7 +117,7 @@ def soak_scenario(src: Path, out: Path) -> Path:
     head = ("# Soak cell: the demo cell (config/demo/scenario.yaml) with a longer edge and a "
             "wider\n# line-sensor range, so random excursions stay in view. Written by "
             "scripts/make_soak_policy.py\n# (invented data). Format: "
-            "adaptive_streamer/core/scenario/config.py.\n")
+            "adaptive_streamer/sim/config.py.\n")
     out.write_text(head + yaml.safe_dump(data, sort_keys=False))
     return out
 
@@ -255,8 +255,8 @@ def check_model(model_path: Path, model: onnx.ModelProto, layout: ObservationLay
 
 def closed_loop(card: Path, reference: Path, scenario: Path, seconds: float) -> bool:
     """Offline closed loop of the soak cell (500 Hz stream); prints the figures."""
-    from adaptive_streamer.core.scenario.closed_loop import CellSettings, run_closed_loop
-    from adaptive_streamer.core.scenario.config import load_scenario
+    from adaptive_streamer.sim.closed_loop import CellSettings, run_closed_loop
+    from adaptive_streamer.sim.config import load_scenario
     from adaptive_streamer.core.watchdog import WatchdogConfig
     params = yaml.safe_load((SOAK / "params.yaml").read_text())["adapter"]["ros__parameters"]
     wd = WatchdogConfig(**params["watchdog"])
@@ -296,7 +296,7 @@ def main(argv: list[str] | None = None) -> int:
     card_path = out / "random_policy.yaml"
     card_path.write_text(card_text(args.noise, os.path.relpath(DEMO / "limits.yaml", out)))
     card = load_card(card_path)
-    if ObservationLayout.from_card(card).describe() != layout.describe():
+    if card.observation_layout().describe() != layout.describe():
         raise SystemExit("error: the card's observation differs from the model's layout")
     running = RunningConfig(card.limits.names, card.decision_period, card.limits, 10,
                             tuple(EDGE_FEATURES))

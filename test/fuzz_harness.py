@@ -790,7 +790,7 @@ class TopicFuzz:
                                                           list(src.position), list(src.velocity))
             msg = JointState(name=names, position=pos, velocity=vel)
             now = self.now()
-            from adaptive_streamer.nodes.common import sec_to_stamp
+            from adaptive_streamer.io.stamps import sec_to_stamp
             t = _stamp(spec["stamp"], now, now)
             msg.header.stamp = sec_to_stamp(max(t, 0.0))
             self.js_pub.publish(msg)
@@ -799,7 +799,7 @@ class TopicFuzz:
 
     def window_case(self, spec: dict[str, Any]) -> tuple[str, bool]:
         """A mutated copy of the reference server's latest window."""
-        from adaptive_streamer.nodes.common import sec_to_stamp, stamp_to_sec
+        from adaptive_streamer.io.stamps import sec_to_stamp, stamp_to_sec
         from trajectory_msgs.msg import JointTrajectoryPoint
 
         def publish() -> bool:
@@ -864,7 +864,7 @@ class TopicFuzz:
 
     def feedback_case(self, spec: dict[str, Any]) -> tuple[str, bool]:
         """A malformed or odd feedback vector (the valid one is held back meanwhile)."""
-        from adaptive_streamer.nodes.common import sec_to_stamp
+        from adaptive_streamer.io.stamps import sec_to_stamp
 
         def publish() -> bool:
             form = spec["form"]
@@ -894,7 +894,7 @@ class TopicFuzz:
         """One sensor sample on the bridge's input; its verdict must match the rule (NaN/inf
         dropped, zero/negative or far-ahead stamps dropped, samples older than max_age
         dropped as late, anything else accepted, huge or not)."""
-        from adaptive_streamer.nodes.common import sec_to_stamp
+        from adaptive_streamer.io.stamps import sec_to_stamp
         table = self.bridge._table
         before = vars(table.counters(0)).copy()
         now = self.now()

@@ -237,7 +237,7 @@ def copy_bag(src: Path, dst: Path, drop: tuple[str, ...] = (),
     """A copy of the bag ``src`` at ``dst`` without the topics ``drop``; ``change`` maps a
     topic to ``(msgtype, msgdef, digest, function of (receive time, raw bytes))`` giving
     the new bytes (None drops the message); ``custom_data`` keeps the metadata entries."""
-    from adaptive_streamer.replay.bag_io import BagWriter, read_bag
+    from adaptive_streamer.io.bag_io import BagWriter, read_bag
 
     bag = read_bag(src)
     writer = BagWriter(dst)

@@ -8,10 +8,10 @@ import numpy as np
 import pytest
 
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.scenario.arm import DEMO_ARM
-from adaptive_streamer.core.scenario.closed_loop import (CellSettings, ClosedLoopError,
+from adaptive_streamer.sim.arm import DEMO_ARM
+from adaptive_streamer.sim.closed_loop import (CellSettings, ClosedLoopError,
                                                          run_closed_loop)
-from adaptive_streamer.core.scenario.config import load_scenario
+from adaptive_streamer.sim.config import load_scenario
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "config" / "demo"
@@ -49,7 +49,7 @@ def hand_lateral(y: np.ndarray, offset: float, angle: float) -> np.ndarray:
     with n_real = R(angle) n = (-cos a, -sin a) and the point (0.80, 0) of the nominal edge
     moving to C + R(a) (-0.2, 0) + offset n, the signed distance (P - Q) . n_real is
     ``-offset cos a - y sin a - 0.2 (1 - cos a)`` (worked by hand from the definitions in
-    adaptive_streamer/core/scenario/panel.py)."""
+    adaptive_streamer/sim/panel.py)."""
     return -offset * math.cos(angle) - y * math.sin(angle) - 0.2 * (1.0 - math.cos(angle))
 
 

@@ -14,13 +14,12 @@ from onnx.reference import ReferenceEvaluator
 
 from adaptive_streamer.core.feedback import FeatureVector
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.observation import ObservationLayout
 from adaptive_streamer.core.policies import load_card, load_policy
 from adaptive_streamer.core.policies.base import PolicyInputs, RunningConfig, neutral_inputs
-from adaptive_streamer.core.reference_files import load_reference
-from adaptive_streamer.core.scenario.arm import DEMO_ARM
-from adaptive_streamer.core.scenario.closed_loop import EDGE_FEATURES, run_closed_loop
-from adaptive_streamer.core.scenario.config import load_scenario
+from adaptive_streamer.core.reference_files import load_reference_file as load_reference
+from adaptive_streamer.sim.arm import DEMO_ARM
+from adaptive_streamer.sim.closed_loop import EDGE_FEATURES, run_closed_loop
+from adaptive_streamer.sim.config import load_scenario
 from adaptive_streamer.core.segment import MotionState
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -78,7 +77,7 @@ def test_onnx_models_match_the_onnx_reference_evaluator(running, reference, name
     # onnxruntime (through the policy) vs onnx.reference.ReferenceEvaluator, the ONNX
     # project's own Python implementation of the operator specifications
     policy = load_policy(DEMO / name, running)
-    layout = ObservationLayout.from_card(policy.card)
+    layout = policy.card.observation_layout()
     evaluator = ReferenceEvaluator(str(policy.card.model))
     rng = np.random.default_rng(5)
     for _ in range(40):

@@ -18,10 +18,11 @@ from rclpy.parameter import Parameter
 from rosgraph_msgs.msg import Clock
 from sensor_msgs.msg import JointState
 
-from adaptive_streamer.core.scenario.arm import DEMO_ARM
-from adaptive_streamer.core.scenario.config import load_scenario
-from adaptive_streamer.core.scenario.nominal_path import nozzle_poses
-from adaptive_streamer.nodes.common import reliable_qos, sec_to_stamp, stamp_to_sec
+from adaptive_streamer.sim.arm import DEMO_ARM
+from adaptive_streamer.sim.config import load_scenario
+from adaptive_streamer.sim.nominal_path import nozzle_poses
+from adaptive_streamer.io.stamps import sec_to_stamp, stamp_to_sec
+from adaptive_streamer.nodes.common import reliable_qos
 from adaptive_streamer.nodes.edge_sensor import EdgeSensor, EdgeSensorError
 
 pytestmark = pytest.mark.ros

@@ -79,7 +79,7 @@ def test_feedback_stamped_ahead_of_the_clock_cannot_hide_a_dropout(fuzz):
     later when the clock reaches the stamp."""
     from sensor_msgs.msg import JointState
 
-    from adaptive_streamer.nodes.common import sec_to_stamp
+    from adaptive_streamer.io.stamps import sec_to_stamp
     fuzz.ensure_following()
     events0 = len(fuzz.adapter.session.watchdog.events)
     fuzz.probe.feedback = None                        # the genuine source goes away

@@ -12,7 +12,6 @@ from onnx.reference import ReferenceEvaluator
 
 from adaptive_streamer.core.feedback import FeatureVector
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.observation import ObservationLayout
 from adaptive_streamer.core.policies import (LinearFeedbackPolicy, OnnxPolicy, PolicyError,
                                              PolicyInputs, RunningConfig, TrackerPolicy,
                                              load_card, load_policy, neutral_inputs,
@@ -154,7 +153,7 @@ def test_onnx_mlp_matches_the_onnx_reference_evaluator(cards):
     # Reference: onnx.reference.ReferenceEvaluator (the ONNX project's pure-numpy
     # implementation of the operator specification) on the same model and observation.
     reference = ReferenceEvaluator(str(cards / "mlp7.onnx"))
-    layout = ObservationLayout.from_card(load_card(cards / "mlp7.card.yaml"))
+    layout = load_card(cards / "mlp7.card.yaml").observation_layout()
     rng = np.random.default_rng(1)
     for _ in range(20):
         inp = random_inputs(rng)
@@ -172,7 +171,7 @@ def test_onnx_accepts_flat_and_batched_shapes(cards, in_shape, out_shape):
     policy = load_policy(with_model_card(cards, model), running7())
     reference = ReferenceEvaluator(str(model))  # onnx.reference, as above
     inp = random_inputs(np.random.default_rng(2))
-    obs = ObservationLayout.from_card(policy.card).build(inp)
+    obs = policy.card.observation_layout().build(inp)
     feed = obs if len(in_shape) == 1 else obs[None, :]
     np.testing.assert_allclose(policy.act(inp), reference.run(None, {"obs": feed})[0].reshape(-1),
                                rtol=1e-5, atol=1e-6)

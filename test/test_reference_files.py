@@ -11,7 +11,7 @@ from rosbags.rosbag2 import StoragePlugin, Writer
 from rosbags.typesys import Stores, get_typestore
 
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.reference_files import (ReferenceFileError, load_bag, load_csv,
+from adaptive_streamer.io.reference_bags import (ReferenceFileError, load_bag, load_csv,
                                                     load_reference, load_yaml)
 
 DATA = Path(__file__).parent / "data"

@@ -24,10 +24,10 @@ from trajectory_msgs.msg import JointTrajectory
 from adaptive_streamer.core.feasibility import ensure_feasible
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.playback import Playback
-from adaptive_streamer.core.reference_files import load_reference
+from adaptive_streamer.io.reference_bags import load_reference
 from adaptive_streamer.nodes.common import reliable_qos
 from adaptive_streamer.nodes.reference_server import ReferenceServer, ReferenceServerError
-from adaptive_streamer.nodes.trajectory_conversions import msg_to_window
+from adaptive_streamer.io.trajectory_conversions import msg_to_window
 
 pytestmark = pytest.mark.ros
 
@@ -388,7 +388,7 @@ def test_main_prints_error_and_exits_nonzero():
 
 def test_trajectory_conversions_round_trip_reuse_and_errors():
     from adaptive_streamer.core.playback import Window
-    from adaptive_streamer.nodes.trajectory_conversions import (TrajectoryMessageError,
+    from adaptive_streamer.io.trajectory_conversions import (TrajectoryMessageError,
                                                                 window_to_msg)
     rng = np.random.default_rng(3)
     names = ("a", "b", "c")

@@ -9,7 +9,7 @@ import shutil
 import pytest
 
 from adaptive_streamer.replay import cli_replay
-from adaptive_streamer.replay.bag_io import BagError
+from adaptive_streamer.io.bag_io import BagError
 from adaptive_streamer.replay.compare import compare
 from adaptive_streamer.replay.run import ReplayError, replay
 import replay_harness

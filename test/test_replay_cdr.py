@@ -15,10 +15,10 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from adaptive_streamer.core import decision_record
 from adaptive_streamer.core.cycle import Decision
 from adaptive_streamer.core.segment import MotionState
-from adaptive_streamer.nodes.trajectory_conversions import TrajectoryMessageError, msg_to_window
+from adaptive_streamer.io.trajectory_conversions import TrajectoryMessageError, msg_to_window
 from adaptive_streamer.replay import fast_cdr
-from adaptive_streamer.replay.bag_io import decode, encode
-from adaptive_streamer.replay.messages import JointStateReader, WindowReader, decision_records
+from adaptive_streamer.io.bag_io import decode, encode
+from adaptive_streamer.io.messages import JointStateReader, WindowReader, decision_records
 
 import pytest
 

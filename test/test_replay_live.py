@@ -18,7 +18,7 @@ from sensor_msgs.msg import JointState
 from trajectory_msgs.msg import JointTrajectory
 
 from adaptive_streamer.nodes.common import reliable_qos
-from adaptive_streamer.replay.bag_io import read_bag
+from adaptive_streamer.io.bag_io import read_bag
 from adaptive_streamer.replay.live import input_topics, republish
 import replay_harness
 

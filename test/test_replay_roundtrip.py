@@ -16,7 +16,7 @@ from rosbags.rosbag2 import Reader
 
 from adaptive_streamer.core import decision_record
 from adaptive_streamer.replay import cli_replay
-from adaptive_streamer.replay.bag_io import decode
+from adaptive_streamer.io.bag_io import decode
 from adaptive_streamer.replay.compare import compare
 from adaptive_streamer.replay.run import replay
 from adaptive_streamer.core.adapter_setup import DEFAULTS

@@ -9,15 +9,15 @@ import yaml
 from scipy.interpolate import make_interp_spline
 from scipy.spatial.transform import Rotation
 
-from adaptive_streamer.core.scenario.arm import DEMO_ARM, KinematicsError
-from adaptive_streamer.core.scenario.config import (ScenarioError, load_scenario,
+from adaptive_streamer.sim.arm import DEMO_ARM, KinematicsError
+from adaptive_streamer.sim.config import (ScenarioError, load_scenario,
                                                     parse_scenario)
-from adaptive_streamer.core.scenario.line_sensor import (LineSensor, SensorConfig,
+from adaptive_streamer.sim.line_sensor import (LineSensor, SensorConfig,
                                                          true_edge_reading)
-from adaptive_streamer.core.scenario.metrics import lateral_error
-from adaptive_streamer.core.scenario.nominal_path import (nominal_joint_path, nozzle_poses,
+from adaptive_streamer.sim.metrics import lateral_error
+from adaptive_streamer.sim.nominal_path import (nominal_joint_path, nozzle_poses,
                                                           path_distance)
-from adaptive_streamer.core.scenario.panel import Panel, PanelError, draw_placement
+from adaptive_streamer.sim.panel import Panel, PanelError, draw_placement
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "config" / "demo"

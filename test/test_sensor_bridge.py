@@ -23,8 +23,9 @@ from scipy import signal
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64, Float64MultiArray
 
-from adaptive_streamer.nodes.common import reliable_qos, sec_to_stamp, stamp_to_sec
-from adaptive_streamer.nodes.field_paths import (FieldPathError, compile_fields, is_stamped,
+from adaptive_streamer.io.stamps import sec_to_stamp, stamp_to_sec
+from adaptive_streamer.nodes.common import reliable_qos
+from adaptive_streamer.io.field_paths import (FieldPathError, compile_fields, is_stamped,
                                                  message_class)
 from adaptive_streamer.nodes.sensor_bridge import BridgeConfigError, SensorBridge, main
 

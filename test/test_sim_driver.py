@@ -20,8 +20,9 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 
-from adaptive_streamer.core.sim_plant import PlantConfig, SimPlant
-from adaptive_streamer.nodes.common import reliable_qos, sec_to_stamp, stamp_to_sec
+from adaptive_streamer.sim.plant import PlantConfig, SimPlant
+from adaptive_streamer.io.stamps import sec_to_stamp, stamp_to_sec
+from adaptive_streamer.nodes.common import reliable_qos
 from adaptive_streamer.nodes.sim_driver import SimDriver, SimDriverError
 from test_sim_plant import underdamped_step
 

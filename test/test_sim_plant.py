@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 from scipy.linalg import expm
 
-from adaptive_streamer.core.sim_plant import PlantConfig, PlantError, SimPlant, discretise_lag
+from adaptive_streamer.sim.plant import PlantConfig, PlantError, SimPlant, discretise_lag
 
 
 def underdamped_step(t, wn, zeta):

@@ -3,8 +3,8 @@
 `build_session` IS the adapter node's configure step (``nodes/adapter.py`` calls it with
 its parameter values) and the offline replay's: the same parameter names and `DEFAULTS`,
 limits, running configuration, policy, approach tracker, watchdog and cycle settings, so a
-replay decides exactly as the live node did. `load_params_file` reads the adapter's
-section of a standard ROS 2 params file.
+replay decides exactly as the live node did. (`adaptive_streamer.io.params_files` reads the
+adapter's section of a standard ROS 2 params file.)
 
 Policies: a card path, or a built-in kind (``tracker``, ``hold``) (e.g. replay's
 ``--policy``).
@@ -12,10 +12,8 @@ Policies: a card path, or a built-in kind (``tracker``, ``hold``) (e.g. replay's
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any, Mapping
 
-import yaml
 
 from .cycle import CycleConfig
 from .feedback import FeedbackParser
@@ -62,44 +60,6 @@ class SessionSetup:
     def period(self) -> float:
         """Decision period [s]."""
         return self.running.decision_period
-
-
-def _flatten(data: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for k, v in data.items():
-        key = f"{prefix}{k}"
-        if isinstance(v, Mapping):
-            out.update(_flatten(v, key + "."))
-        else:
-            out[key] = v
-    return out
-
-
-def load_params_file(path: str | Path, node: str = "adapter") -> dict[str, Any]:
-    """The ``ros__parameters`` of ``node`` (its base name, or ``/**``) in a params file."""
-    from ..share import expand
-
-    p = Path(path)
-    try:
-        data = yaml.safe_load(expand(p.read_text()))
-    except OSError as exc:
-        raise SetupError(f"cannot read params file '{p}': {exc.strerror}") from None
-    except yaml.YAMLError as exc:
-        raise SetupError(f"params file '{p}': not valid YAML: {exc}") from None
-    if not isinstance(data, Mapping):
-        raise SetupError(f"params file '{p}': expected a mapping of node names")
-    base = node.strip("/").split("/")[-1]
-    merged: dict[str, Any] = {}
-    found = False
-    for key in ("/**", base, f"/{base}", node, node.strip("/")):
-        section = data.get(key)
-        if isinstance(section, Mapping) and isinstance(section.get("ros__parameters"), Mapping):
-            merged.update(_flatten(section["ros__parameters"]))
-            found = True
-    if not found:
-        raise SetupError(f"params file '{p}': no section for node '{base}' (expected "
-                         f"'{base}: {{ros__parameters: ...}}'); sections: {sorted(map(str, data))}")
-    return merged
 
 
 def _get(params: Mapping[str, Any], name: str) -> Any:

@@ -39,15 +39,11 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .limits import JointLimits
-
-if TYPE_CHECKING:
-    from .policies.base import PolicyInputs
-    from .policies.card import PolicyCard
+from .policy_inputs import PolicyInputs
 
 HORIZON_BLOCKS = ("reference_position", "reference_velocity", "reference_acceleration")
 BLOCK_KINDS = ("joint_position", "joint_velocity", "joint_acceleration", *HORIZON_BLOCKS,
@@ -171,17 +167,12 @@ class ObservationLayout:
         self._views_for: np.ndarray | None = None
         self._out_views: tuple = ()
 
-    @classmethod
-    def from_card(cls, card: "PolicyCard") -> "ObservationLayout":
-        """The layout of a policy card (its observation blocks and limits)."""
-        return cls(card.observation, card.limits)
-
     def describe(self) -> str:
         """Blocks with their index ranges, e.g. ``joint_position [0:7], ...``."""
         return ", ".join(f"{b.label()} [{s.start}:{s.stop}]"
                          for b, s in zip(self.blocks, self.slices))
 
-    def build(self, inputs: "PolicyInputs", out: np.ndarray | None = None) -> np.ndarray:
+    def build(self, inputs: PolicyInputs, out: np.ndarray | None = None) -> np.ndarray:
         """The observation for ``inputs`` as float32 of shape (size,).
 
         Written into ``out`` (float32, C-contiguous, ``size`` entries, any shape) when

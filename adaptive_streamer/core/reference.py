@@ -17,7 +17,7 @@ uniformly by a factor ``lam`` (`ReferenceTrajectory.time_scaled`) gives exactly 
 reparameterised curve ``q(t / lam)``, since both end conditions are invariant under a
 uniform change of the time variable.
 
-Files are read by `adaptive_streamer.core.reference_files`; untimed waypoints are timed by
+Files are read by `adaptive_streamer.core.reference_files` (CSV, YAML) and `adaptive_streamer.io.reference_bags` (rosbag2); untimed waypoints are timed by
 `adaptive_streamer.core.timing`; limits are checked by `adaptive_streamer.core.feasibility`.
 """
 from __future__ import annotations

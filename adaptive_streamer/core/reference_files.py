@@ -1,4 +1,5 @@
-"""Reading references from files: CSV, the project's own YAML, and rosbag2 topics.
+"""Reading references from files: CSV and the project's own YAML (rosbag2 topics are read
+by `adaptive_streamer.io.reference_bags`, which uses the same checks).
 
 CSV (seconds, radians; ``#`` comment lines and blank lines are skipped)::
 
@@ -21,14 +22,6 @@ limits)::
       - [0.0, 0.1]
       - [0.4, -0.2]
 
-rosbag2 (read with the ``rosbags`` library): a topic of ``sensor_msgs/msg/JointState``
-(one sample per message: names, positions) or ``trajectory_msgs/msg/JointTrajectory``
-(either exactly one message holding the whole trajectory, times from ``time_from_start``,
-or a stream of one-point messages). A stream sample's time is ``header.stamp`` (plus the
-point's ``time_from_start``), or the bag's receive time when the stamp is zero. Velocities
-and accelerations in the files are ignored: they are derived from the positions by the
-reference's spline, so they are always consistent with it.
-
 Every file is checked: the joints against the expected joints and the limits (unknown or
 missing joint), NaN/inf values, strictly increasing times, no gap between samples larger
 than ``max_gap``, positions within the limits. Errors name the file, the line (CSV/YAML) or
@@ -49,36 +42,23 @@ from .reference import ReferenceTrajectory, TrajectoryError
 from .timing import DEFAULT_FRACTION, TimingError, time_parameterise
 
 DEFAULT_MAX_GAP = 1.0  # s
-JOINT_STATE = "sensor_msgs/msg/JointState"
-JOINT_TRAJECTORY = "trajectory_msgs/msg/JointTrajectory"
-BAG_SUFFIXES = (".mcap", ".db3")
 
 
 class ReferenceFileError(ValueError):
     """A reference file is missing, malformed, or violates the expected joints or limits."""
 
 
-def is_bag(path: str | Path) -> bool:
-    """True for a rosbag2 directory, or a .mcap/.db3 storage file inside one."""
-    p = Path(path)
-    return p.is_dir() or p.suffix.lower() in BAG_SUFFIXES
-
-
-def load_reference(path: str | Path, *, topic: str | None = None,
-                   joints: Sequence[str] | None = None, limits: JointLimits | None = None,
-                   max_gap: float | None = DEFAULT_MAX_GAP, ends: str = "rest",
-                   fraction: float = DEFAULT_FRACTION) -> ReferenceTrajectory:
-    """Load a reference from a CSV, own YAML or rosbag2 (``topic`` required) by its kind.
+def load_reference_file(path: str | Path, *, joints: Sequence[str] | None = None,
+                        limits: JointLimits | None = None,
+                        max_gap: float | None = DEFAULT_MAX_GAP, ends: str = "rest",
+                        fraction: float = DEFAULT_FRACTION) -> ReferenceTrajectory:
+    """Load a reference from a CSV or own YAML file by its suffix.
 
     ``joints`` fixes the expected joints and their order (default: the file's); ``limits``
     (when given) must name every joint and bounds the positions; waypoint files need it.
     ``max_gap`` is the largest allowed time between samples (None: no check).
     """
     p = Path(path)
-    if is_bag(p):
-        if not topic:
-            raise ReferenceFileError(f"{p}: a rosbag2 reference needs the topic to read")
-        return load_bag(p, topic, joints=joints, limits=limits, max_gap=max_gap, ends=ends)
     suffix = p.suffix.lower()
     if suffix == ".csv":
         return load_csv(p, joints=joints, limits=limits, max_gap=max_gap, ends=ends)
@@ -122,7 +102,7 @@ def load_csv(path: str | Path, *, joints: Sequence[str] | None = None,
         labels.append(f"line {line}")
     if header is None:
         raise ReferenceFileError(f"{p}: empty file; expected a header 'time,<joint>,...' and rows")
-    return _build(str(p), header, times, rows, labels, joints, limits, max_gap, ends)
+    return build_reference(str(p), header, times, rows, labels, joints, limits, max_gap, ends)
 
 
 def _cell(path: Path, line: int, what: str, text: str) -> float:
@@ -182,7 +162,7 @@ def load_yaml(path: str | Path, *, joints: Sequence[str] | None = None,
         rows.append([_yaml_number(p, labels[i], f"joint '{names[k]}'", v)
                      for k, v in enumerate(pos)])
     if kind == "points":
-        return _build(str(p), names, times, rows, labels, joints, limits, max_gap, ends)
+        return build_reference(str(p), names, times, rows, labels, joints, limits, max_gap, ends)
     if limits is None:
         raise ReferenceFileError(f"{p}: untimed 'waypoints' need joint limits for the time "
                                  "parameterisation (give a limits file)")
@@ -205,138 +185,6 @@ def _yaml_number(path: Path, label: str, what: str, value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise ReferenceFileError(f"{path}: {label}: {what}: not a number: {value!r}")
     return float(value)
-
-
-# ---------------------------------------------------------------------- rosbag2
-def load_bag(path: str | Path, topic: str, *, joints: Sequence[str] | None = None,
-             limits: JointLimits | None = None, max_gap: float | None = DEFAULT_MAX_GAP,
-             ends: str = "rest") -> ReferenceTrajectory:
-    """Read a JointState or JointTrajectory topic from a rosbag2 (directory or storage file)."""
-    from rosbags.rosbag2 import Reader, ReaderError
-    from rosbags.serde import SerdeError
-    from rosbags.typesys import Stores, get_typestore
-
-    p = Path(path)
-    bag = p if p.is_dir() else p.parent
-    src = f"{bag} topic '{topic}'"
-    typestore = get_typestore(Stores.ROS2_JAZZY)
-    msgs: list[tuple[int, Any]] = []
-    try:
-        with Reader(bag) as reader:
-            conns = [c for c in reader.connections if c.topic == topic]
-            if not conns:
-                topics = sorted({c.topic for c in reader.connections})
-                raise ReferenceFileError(f"{bag}: no topic '{topic}' in the bag; topics: {topics}")
-            msgtype = conns[0].msgtype
-            if msgtype not in (JOINT_STATE, JOINT_TRAJECTORY):
-                raise ReferenceFileError(f"{src}: type {msgtype} is not usable; expected "
-                                         f"{JOINT_STATE} or {JOINT_TRAJECTORY}")
-            for i, (conn, logtime, raw) in enumerate(reader.messages(connections=conns)):
-                try:
-                    msgs.append((logtime, _decode(typestore, raw, conn.msgtype)))
-                except SerdeError as exc:
-                    raise ReferenceFileError(f"{src}: message {i}: cannot decode "
-                                             f"{conn.msgtype}: {exc}") from None
-    except (ReaderError, OSError) as exc:
-        raise ReferenceFileError(f"{bag}: cannot read rosbag2: {exc}") from None
-    if not msgs:
-        raise ReferenceFileError(f"{src}: the topic has no messages")
-    if msgtype == JOINT_STATE:
-        names, times, rows, labels = _joint_states(src, msgs)
-    else:
-        names, times, rows, labels = _joint_trajectories(src, msgs)
-    return _build(src, names, times, rows, labels, joints, limits, max_gap, ends)
-
-
-def _decode(typestore: Any, raw: bytes, msgtype: str) -> Any:
-    """CDR bytes -> message, accepting up to 7 bytes of final padding.
-
-    ``rclpy.serialization.serialize_message`` (Fast CDR, Jazzy) pads a message to an 8-byte
-    boundary, where rosbags' size check allows only 3 bytes; bags written from such bytes
-    would otherwise be refused (messages taken from DDS arrive unpadded).
-    Decoding reads lengths from the data, so a shorter buffer that still decodes gives the
-    same message; trailing bytes are dropped only until it does.
-    """
-    from rosbags.serde import SerdeError
-
-    try:
-        return typestore.deserialize_cdr(raw, msgtype)
-    except SerdeError as first:
-        if "size mismatch" not in str(first):
-            raise
-        for cut in range(4, 8):
-            try:
-                return typestore.deserialize_cdr(raw[:len(raw) - cut], msgtype)
-            except SerdeError:
-                continue
-        raise
-
-
-def _stamp(msg: Any, logtime: int) -> float:
-    st = msg.header.stamp
-    if st.sec == 0 and st.nanosec == 0:
-        return logtime * 1e-9
-    return st.sec + st.nanosec * 1e-9
-
-
-def _aligned(src: str, label: str, names: list[str], got: Sequence[str],
-             values: np.ndarray) -> list[float]:
-    """``values`` reordered from ``got`` to ``names``; errors for unknown/missing/short."""
-    got = list(got)
-    if len(values) != len(got):
-        raise ReferenceFileError(f"{src}: {label}: {len(got)} joint names but {len(values)} "
-                                 "positions")
-    if sorted(got) != sorted(names):
-        extra = [g for g in got if g not in names]
-        if extra:
-            raise ReferenceFileError(f"{src}: {label}: unknown joint '{extra[0]}' (the first "
-                                     f"message has {names})")
-        missing = [n for n in names if n not in got]
-        if missing:
-            raise ReferenceFileError(f"{src}: {label}: joint '{missing[0]}' is missing "
-                                     f"(expected {names})")
-        raise ReferenceFileError(f"{src}: {label}: a joint name is repeated in {got}")
-    return [float(values[got.index(n)]) for n in names]
-
-
-Rows = tuple[list[str], list[float], list[list[float]], list[str]]
-
-
-def _joint_states(src: str, msgs: list[tuple[int, Any]]) -> Rows:
-    names = list(msgs[0][1].name)
-    times, rows, labels = [], [], []
-    for i, (logtime, msg) in enumerate(msgs):
-        label = f"message {i}"
-        rows.append(_aligned(src, label, names, msg.name, np.asarray(msg.position)))
-        times.append(_stamp(msg, logtime))
-        labels.append(label)
-    return names, times, rows, labels
-
-
-def _joint_trajectories(src: str, msgs: list[tuple[int, Any]]) -> Rows:
-    def tfs(pt: Any) -> float:
-        return pt.time_from_start.sec + pt.time_from_start.nanosec * 1e-9
-
-    if len(msgs) == 1 and len(msgs[0][1].points) >= 2:
-        msg = msgs[0][1]
-        names = list(msg.joint_names)
-        labels = [f"message 0 point {k}" for k in range(len(msg.points))]
-        rows = [_aligned(src, labels[k], names, names, np.asarray(pt.positions))
-                for k, pt in enumerate(msg.points)]
-        return names, [tfs(pt) for pt in msg.points], rows, labels
-    names = list(msgs[0][1].joint_names)
-    times, rows, labels = [], [], []
-    for i, (logtime, msg) in enumerate(msgs):
-        label = f"message {i}"
-        if len(msg.points) != 1:
-            raise ReferenceFileError(
-                f"{src}: {label}: has {len(msg.points)} points; expected either one message "
-                "holding the whole trajectory or a stream of one-point messages")
-        pt = msg.points[0]
-        rows.append(_aligned(src, label, names, msg.joint_names, np.asarray(pt.positions)))
-        times.append(_stamp(msg, logtime) + tfs(pt))
-        labels.append(label)
-    return names, times, rows, labels
 
 
 # ---------------------------------------------------------------------- shared checks
@@ -393,7 +241,7 @@ def _check_samples(src: str, names: Sequence[str], times: Sequence[float] | None
     return expected, pos
 
 
-def _build(src: str, names: Sequence[str], times: Sequence[float],
+def build_reference(src: str, names: Sequence[str], times: Sequence[float],
            rows: Sequence[Sequence[float]], labels: Sequence[str],
            joints: Sequence[str] | None, limits: JointLimits | None,
            max_gap: float | None, ends: str) -> ReferenceTrajectory:

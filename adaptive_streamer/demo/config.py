@@ -13,8 +13,8 @@ from ..core.feasibility import FeasibilityError, ensure_feasible
 from ..core.limits import JointLimits, LimitsError
 from ..core.policies import PolicyError, load_card
 from ..core.reference import ReferenceTrajectory
-from ..core.reference_files import ReferenceFileError, load_reference
-from ..core.scenario.config import load_scenario
+from ..io.reference_bags import ReferenceFileError, load_reference
+from ..sim.config import load_scenario
 from ..share import demo_file, expand
 
 KIND_CARDS = {"onnx": "policy_edge.yaml", "linear_feedback": "policy_feedback.yaml",

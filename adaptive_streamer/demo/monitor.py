@@ -24,9 +24,10 @@ from trajectory_msgs.msg import JointTrajectory
 
 from ..core import decision_record
 from ..core.cycle import Decision
-from ..nodes.common import reliable_qos, stamp_to_sec
+from ..io.stamps import stamp_to_sec
+from ..nodes.common import reliable_qos
 from ..nodes.lifecycle_client import LifecycleClient
-from ..nodes.trajectory_conversions import fill_trajectory, msg_to_window
+from ..io.trajectory_conversions import fill_trajectory, msg_to_window
 
 
 @dataclass

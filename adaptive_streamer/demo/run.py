@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from ..bringup import NodeEntry, Processes
-from ..core.scenario.config import load_scenario
+from ..sim.config import load_scenario
 from ..safety import CAUTIONS
 from .config import DemoConfig, DemoError, build_config, fault_card
 from .options import FAULTS, Injection, OptionError, parse_injection
@@ -205,7 +205,7 @@ def _reference_only(cfg: DemoConfig) -> tuple[np.ndarray, np.ndarray]:
     """(times from the pass start, lateral error [m]) of the same pass without adaptation
     (the tracker), by the offline closed loop: the same core code as the live adapter, the
     same seed, limits and reference, no DDS."""
-    from ..core.scenario.closed_loop import run_closed_loop
+    from ..sim.closed_loop import run_closed_loop
     res = run_closed_loop("tracker", seed=cfg.seed, limits=cfg.limits, reference=cfg.reference)
     return res.pass_times, res.pass_lateral_error
 
@@ -214,7 +214,7 @@ def _report(cfg: DemoConfig, monitor, args: argparse.Namespace, t_start: float,
             t_end: float) -> int:
     from .report import plot_deviation, plot_joints, plot_lateral, plot_timing, write_summary
     from .summary import Series, summarise
-    from ..core.scenario.metrics import lateral_error
+    from ..sim.metrics import lateral_error
 
     series = Series.of(monitor.data, len(cfg.limits))
     scenario = load_scenario(cfg.params["edge_sensor"]["scenario"])

@@ -8,8 +8,8 @@ import numpy as np
 
 from ..core.cycle import Decision
 from ..core.limits import JointLimits
-from ..core.scenario.metrics import lateral_error
-from ..core.scenario.panel import Panel
+from ..sim.metrics import lateral_error
+from ..sim.panel import Panel
 from ..core.stream_metrics import StreamReport, check_stream, period_stats, time_resolution_of
 from .monitor import Recorded
 

@@ -51,10 +51,11 @@ from adaptive_streamer.core.session import (SessionInputs, StreamingSession,
 from adaptive_streamer.core.stream import StreamClock
 
 from . import common
-from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, stamp_to_sec
+from ..io.stamps import stamp_to_sec
+from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name
 from .driver_outputs import DriverOutput, fill_setpoint, setpoint_message
 from .stream_thread import StreamThread
-from .trajectory_conversions import TrajectoryMessageError, msg_to_window
+from ..io.trajectory_conversions import TrajectoryMessageError, msg_to_window
 
 RUNTIME_PARAMS = ("policy", "shadow_policy", "limit_scale", "policy_active")
 

@@ -1,22 +1,21 @@
-"""Helpers shared by the rclpy shells: stamps, parameters, diagnostics, QoS and a clean main.
+"""Helpers shared by the rclpy shells: parameters, diagnostics, QoS and a clean main.
 
 Nothing here does motion math; it only moves values between ROS and the core.
 """
 from __future__ import annotations
 
-import math
 import signal
 import sys
 from typing import Any, Callable, Iterable, Sequence
 
 import rclpy
-from builtin_interfaces.msg import Time as TimeMsg
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from rcl_interfaces.msg import ParameterDescriptor
 from rclpy.executors import ExternalShutdownException, Executor, SingleThreadedExecutor
 from rclpy.node import Node
 from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy,
                        qos_profile_sensor_data)
+
 
 OK, WARN, ERROR, STALE = (DiagnosticStatus.OK, DiagnosticStatus.WARN, DiagnosticStatus.ERROR,
                           DiagnosticStatus.STALE)
@@ -38,22 +37,6 @@ class SetupNode(Node):
     def _setup(self) -> None:
         """Declare parameters, make publishers, subscriptions and timers."""
         raise NotImplementedError
-
-
-def stamp_to_sec(stamp: TimeMsg) -> float:
-    """builtin_interfaces/Time -> float seconds."""
-    return stamp.sec + stamp.nanosec * 1e-9
-
-
-def sec_to_stamp(t: float, out: TimeMsg | None = None) -> TimeMsg:
-    """Float seconds -> builtin_interfaces/Time (filled into ``out`` when given)."""
-    msg = out if out is not None else TimeMsg()
-    sec = math.floor(t)
-    nsec = int(round((t - sec) * 1e9))
-    if nsec >= 1_000_000_000:
-        sec, nsec = sec + 1, nsec - 1_000_000_000
-    msg.sec, msg.nanosec = int(sec), nsec
-    return msg
 
 
 def now_sec(node: Node) -> float:

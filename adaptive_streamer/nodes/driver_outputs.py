@@ -35,7 +35,8 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 
 from adaptive_streamer.core.segment import MotionState
 
-from .common import declare, qos_by_name, sec_to_stamp
+from ..io.stamps import sec_to_stamp
+from .common import declare, qos_by_name
 
 OUTPUT_TYPES = ("position", "velocity", "trajectory")
 DEFAULT_TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",

@@ -3,7 +3,7 @@
 Subscribes ``joint_states`` (the measured state from the driver), computes the nozzle pose
 with the demo arm's forward kinematics and, at the sensor rate, takes a sample of the
 nozzle's lateral offset from the real panel edge and of the edge angle relative to the
-sensor's travel axis (`adaptive_streamer.core.scenario.line_sensor`). Each sample is
+sensor's travel axis (`adaptive_streamer.sim.line_sensor`). Each sample is
 published ``latency`` seconds later on ``edge_sensor/offset`` as geometry_msgs/PointStamped:
 
     point.x = 0 (unused)   point.y = lateral offset [m]   point.z = edge angle [rad]
@@ -36,9 +36,9 @@ import numpy as np
 from geometry_msgs.msg import PointStamped
 from sensor_msgs.msg import JointState
 
-from adaptive_streamer.core.scenario.arm import DEMO_ARM
-from adaptive_streamer.core.scenario.config import ScenarioError, load_scenario
-from adaptive_streamer.core.scenario.line_sensor import LineSensor, true_edge_reading
+from adaptive_streamer.sim.arm import DEMO_ARM
+from adaptive_streamer.sim.config import ScenarioError, load_scenario
+from adaptive_streamer.sim.line_sensor import LineSensor, true_edge_reading
 
 from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
                      run_nodes, sec_to_stamp, stamp_to_sec)

@@ -9,7 +9,7 @@ publishers' endpoint info) are stored with the topic. Topics are picked up as th
 time under ``use_sim_time``).
 
 The adapter's effective parameters and the files they name are stored as run info
-(`adaptive_streamer.replay.run_info`): a ``std_msgs/String`` message on
+(`adaptive_streamer.io.run_info`): a ``std_msgs/String`` message on
 ``adaptive_streamer/run_info`` once the adapter's parameter services answer, again when
 its parameters change (``/parameter_events``), and in ``metadata.yaml`` at close.
 
@@ -20,7 +20,7 @@ crash loses at most the chunk being filled (at most ``chunk_size`` bytes or
 Parameters (read-only):
   output            bag folder to create (default: ``bags/run_<UTC time>``)
   topics            topics to record; relative names resolve in the recorder's namespace
-                    (default: `adaptive_streamer.replay.recorder.STACK_TOPICS`)
+                    (default: `adaptive_streamer.io.recording.STACK_TOPICS`)
   compression       none | zstd | lz4 (MCAP chunk compression, default none)
   chunk_size        bytes per chunk, 1024 .. 1048576 (default 262144)
   chunk_duration    close a chunk once its oldest message is this old [s] (default 1.0)
@@ -36,7 +36,6 @@ from __future__ import annotations
 import array
 import datetime as _dt
 import functools
-import importlib
 import sys
 from typing import Any
 
@@ -45,9 +44,9 @@ from rclpy.node import Node
 from rclpy.parameter import parameter_value_to_python
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 
-from adaptive_streamer.replay import run_info
-from adaptive_streamer.replay.bag_io import BagError, BagWriter, encode, typestore
-from adaptive_streamer.replay.recorder import STACK_TOPICS, qos_to_rosbags
+from adaptive_streamer.io import run_info
+from adaptive_streamer.io.bag_io import BagError, BagWriter, encode, typestore
+from adaptive_streamer.io.recording import STACK_TOPICS, installed_message_class, qos_to_rosbags
 
 from .common import declare, run_nodes
 
@@ -56,15 +55,6 @@ STRING = "std_msgs/msg/String"
 
 class RecorderError(ValueError):
     """The recorder's parameters are invalid."""
-
-
-def message_class(msgtype: str) -> Any:
-    """The rclpy message class of ``pkg/msg/Name`` (None when not installed)."""
-    try:
-        pkg, kind, name = msgtype.split("/")
-        return getattr(importlib.import_module(f"{pkg}.{kind}"), name)
-    except (ValueError, ImportError, AttributeError):
-        return None
 
 
 class RecorderNode(Node):
@@ -123,7 +113,7 @@ class RecorderNode(Node):
             if not infos:
                 continue  # no publisher yet: its QoS is not known
             msgtype = types[0]
-            cls = message_class(msgtype)
+            cls = installed_message_class(msgtype)
             if cls is None or msgtype not in typestore().types:
                 self._skipped[name] = msgtype
                 self.get_logger().error(f"topic '{name}': message type '{msgtype}' is unknown "

@@ -1,7 +1,7 @@
 """``reference_server`` node: plays a reference trajectory as a rolling window.
 
 Loads a reference (CSV, own YAML points or waypoints, or a rosbag2 topic; see
-`adaptive_streamer.core.reference_files`), checks it against the joint limits (refusing it,
+`adaptive_streamer.io.reference_bags`), checks it against the joint limits (refusing it,
 or slowing it down when ``slow_down`` is set), and every decision period publishes the
 next ``horizon`` points on ``reference/window`` (trajectory_msgs/JointTrajectory;
 header.stamp = when points[0] applies, points[i].time_from_start = i * decision_period,
@@ -44,11 +44,11 @@ from adaptive_streamer.core.feasibility import FeasibilityError, ensure_feasible
 from adaptive_streamer.core.limits import JointLimits, LimitsError
 from adaptive_streamer.core.playback import (END_MODES, Playback, PlaybackError,
                                              validate_override)
-from adaptive_streamer.core.reference_files import ReferenceFileError, load_reference
+from adaptive_streamer.io.reference_bags import ReferenceFileError, load_reference
 
 from .common import (ERROR, OK, WARN, DiagnosticsReporter, SetupNode, declare, now_sec,
                      reliable_qos, run_nodes)
-from .trajectory_conversions import samples_to_msg, window_to_msg
+from ..io.trajectory_conversions import samples_to_msg, window_to_msg
 
 START_MODES = ("service", "immediate")
 

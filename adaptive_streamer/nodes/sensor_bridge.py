@@ -1,7 +1,7 @@
 """``sensor_bridge`` node: sensor topics -> one stamped, named ``feedback`` vector.
 
 Each configured input subscribes to one topic, reads numeric fields by path (see
-`adaptive_streamer.nodes.field_paths`), and feeds the core feature table
+`adaptive_streamer.io.field_paths`), and feeds the core feature table
 (`adaptive_streamer.core.feedback`), which scales, filters, ages and counts. The node
 publishes ``feedback`` (``sensor_msgs/JointState`` as a named vector; encoding in
 `adaptive_streamer.core.feedback`) and ``/diagnostics``.
@@ -52,7 +52,7 @@ from adaptive_streamer.core.feedback import (FeatureTable, FeedbackError, Filter
 from adaptive_streamer.nodes.common import (ERROR, OK, WARN, DiagnosticsReporter, SetupNode,
                                             declare, now_sec, qos_by_name, run_nodes,
                                             sec_to_stamp, stamp_to_sec)
-from adaptive_streamer.nodes.field_paths import (FieldPathError, compile_fields, is_stamped,
+from adaptive_streamer.io.field_paths import (FieldPathError, compile_fields, is_stamped,
                                                  message_class, type_name)
 
 _ENTRY_NAME = "abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789_"

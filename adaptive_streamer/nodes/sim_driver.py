@@ -1,7 +1,7 @@
 """``sim_driver`` node: a simulated robot driver for the demo cell and the tests.
 
 Takes the adapter's driver output on one command topic (chosen by ``command_interface``),
-tracks it with the core plant (`adaptive_streamer.core.sim_plant`: transport delay,
+tracks it with the core plant (`adaptive_streamer.sim.plant`: transport delay,
 second-order lag, measurement noise, hold on command timeout) and publishes
 ``joint_states`` (sensor_msgs/JointState: name, position, velocity; effort empty) at
 ``rate``. All times are ROS time, so it runs under ``use_sim_time``.
@@ -53,7 +53,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
 from trajectory_msgs.msg import JointTrajectory
 
-from adaptive_streamer.core.sim_plant import PlantConfig, PlantError, SimPlant
+from adaptive_streamer.sim.plant import PlantConfig, PlantError, SimPlant
 
 from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
                      run_nodes)

@@ -155,8 +155,8 @@ def lateral_error_hook(result: ReplayResult, stream: Stream, scenario: str | Non
     and angle); the nozzle point is the demo arm's forward kinematics of the replayed
     setpoint positions while the adapter was following.
     """
-    from adaptive_streamer.core.scenario.config import load_scenario
-    from adaptive_streamer.core.scenario.metrics import lateral_error
+    from adaptive_streamer.sim.config import load_scenario
+    from adaptive_streamer.sim.metrics import lateral_error
 
     panel = load_scenario(scenario).panel(seed, offset_mm, angle_deg)
     follow = [(d.time, d.time + result.setup.period) for d in result.decisions

@@ -19,7 +19,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from .bag_io import BagError
+from ..io.bag_io import BagError
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -63,7 +63,7 @@ def run(args: argparse.Namespace) -> int:
     """Run the replay command; returns the exit code."""
     from .live import LiveReplayError
     from .run import ReplayError
-    from .run_info import RunInfoError
+    from ..io.run_info import RunInfoError
     from ..core.adapter_setup import SetupError
     try:
         if args.live:

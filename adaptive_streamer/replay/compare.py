@@ -32,9 +32,9 @@ from adaptive_streamer.core.guard import SetpointGuard
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.stream import CommandPlan, Segment
 
-from .bag_io import decode
-from .fast_cdr import header_stamp
-from .messages import DIAGNOSTIC_ARRAY, WindowReader
+from ..io.bag_io import decode
+from ..io.fast_cdr import header_stamp
+from ..io.messages import DIAGNOSTIC_ARRAY, WindowReader
 from .run import ReplayResult
 
 PERCENTILES = (50, 90, 99)
@@ -136,7 +136,7 @@ def recorded_stream(result: ReplayResult) -> Stream | None:
 
 
 def tick_time(sec: int, nanosec: int) -> float:
-    """The float time a stamp was made from (``nodes.common.sec_to_stamp`` rounding).
+    """The float time a stamp was made from (``io.stamps.sec_to_stamp`` rounding).
 
     At epoch times a float second has a resolution of about 0.24 us, so at most one float
     rounds to a given nanosecond stamp: it is found among the neighbours of

@@ -27,10 +27,10 @@ import numpy as np
 from adaptive_streamer.core.feedback import FeatureVector, FeedbackParser
 from adaptive_streamer.core.playback import Window
 from adaptive_streamer.core.session import SessionInputs, feedback_valid_since
-from adaptive_streamer.nodes.trajectory_conversions import TrajectoryMessageError
+from adaptive_streamer.io.trajectory_conversions import TrajectoryMessageError
 
-from .bag_io import TopicData
-from .messages import JointStateReader, MessageError, WindowReader, header_stamps
+from ..io.bag_io import TopicData
+from ..io.messages import JointStateReader, MessageError, WindowReader, header_stamps
 
 NS = 1e-9
 

@@ -19,8 +19,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
 
-from .bag_io import Bag, read_bag
-from .run_info import TOPIC as RUN_INFO
+from ..io.bag_io import Bag, read_bag
+from ..io.run_info import TOPIC as RUN_INFO
 
 OUTPUT_SUFFIXES = ("setpoints", "shadow/setpoints", "driver/position_command",
                    "driver/velocity_command", "driver/trajectory_command", "/decisions",
@@ -76,7 +76,7 @@ def republish(path: str | Path, rate: float = 1.0, topics: Sequence[str] | None 
     from rclpy.context import Context
     from rosgraph_msgs.msg import Clock
 
-    from adaptive_streamer.nodes.recorder import message_class
+    from adaptive_streamer.io.recording import installed_message_class as message_class
 
     if not rate > 0:
         raise LiveReplayError(f"rate must be positive, got {rate!r}")
@@ -139,8 +139,8 @@ def republish(path: str | Path, rate: float = 1.0, topics: Sequence[str] | None 
 
 def _stream_rate(bag: Bag) -> float:
     """The recorded adapter's stream rate (run info), else `MIN_CLOCK_HZ`."""
-    from . import run_info
-    from .messages import read_string
+    from ..io import run_info
+    from ..io.messages import read_string
     for name, data in bag.topics.items():
         if name.endswith("/" + RUN_INFO) and len(data):
             try:

@@ -10,9 +10,8 @@
 parameters, follows its stdout (which topics it records) and stops it with SIGINT, which
 closes the bag. The node itself is `adaptive_streamer.nodes.recorder`.
 
-`STACK_TOPICS` are the topics recorded by default (relative names resolve in the
-recorder's namespace); `qos_to_rosbags` converts an rclpy QoS profile to the ``rosbags``
-form stored in the bag.
+`adaptive_streamer.io.recording.STACK_TOPICS` are the topics recorded by default
+(relative names resolve in the recorder's namespace).
 """
 from __future__ import annotations
 
@@ -24,39 +23,9 @@ import time
 from pathlib import Path
 from typing import Any, Sequence
 
-STACK_TOPICS = (
-    "joint_states", "feedback", "edge_sensor/offset", "reference/window", "reference/path",
-    "setpoints", "driver/position_command", "driver/velocity_command",
-    "driver/trajectory_command", "shadow/setpoints", "/diagnostics", "adapter/decisions",
-    "stop", "robot_description", "/parameter_events",
-)
-
 
 class RecorderProcessError(RuntimeError):
     """The recorder process failed to start, died, or did not stop in time."""
-
-
-def qos_to_rosbags(q: Any) -> Any:
-    """An rclpy ``QoSProfile`` (e.g. a publisher's offered QoS) as a ``rosbags`` Qos."""
-    from rosbags.interfaces import (Qos, QosDurability, QosHistory, QosLiveliness,
-                                    QosReliability, QosTime)
-
-    def span(d: Any) -> QosTime:
-        ns = int(d.nanoseconds)
-        return QosTime(ns // 1_000_000_000, ns % 1_000_000_000)
-
-    def enum(kind: Any, value: Any, unknown: Any) -> Any:
-        try:
-            return kind(int(value))
-        except ValueError:
-            return unknown
-
-    return Qos(enum(QosHistory, q.history, QosHistory.UNKNOWN), int(q.depth),
-               enum(QosReliability, q.reliability, QosReliability.UNKNOWN),
-               enum(QosDurability, q.durability, QosDurability.UNKNOWN),
-               span(q.deadline), span(q.lifespan),
-               enum(QosLiveliness, q.liveliness, QosLiveliness.UNKNOWN),
-               span(q.liveliness_lease_duration), bool(q.avoid_ros_namespace_conventions))
 
 
 def _param_value(value: Any) -> str:
@@ -75,7 +44,7 @@ class Recorder:
 
     Args:
         output: bag folder to create (must not exist).
-        topics: topics to record (None: `STACK_TOPICS`).
+        topics: topics to record (None: `adaptive_streamer.io.recording.STACK_TOPICS`).
         namespace: ROS namespace of the recorder ('' = root).
         compression, chunk_size, chunk_duration: see the node.
         adapter_node: adapter whose parameters are stored ('' = none).

@@ -20,10 +20,10 @@ import numpy as np
 
 from adaptive_streamer.core import decision_record
 
-from .bag_io import BagWriter, encode, typestore
+from ..io.bag_io import BagWriter, encode, typestore
 from .compare import Comparison, Stream
-from .fast_cdr import Layouts
-from .messages import FLOAT64_ARRAY, JOINT_TRAJECTORY
+from ..io.fast_cdr import Layouts
+from ..io.messages import FLOAT64_ARRAY, JOINT_TRAJECTORY
 from .run import ReplayResult
 
 
@@ -31,7 +31,7 @@ _STAMP = struct.Struct("<iI")
 
 
 def _stamp(t: float) -> tuple[int, int]:
-    """Float seconds -> (sec, nanosec), rounded as ``nodes.common.sec_to_stamp`` does."""
+    """Float seconds -> (sec, nanosec), rounded as ``io.stamps.sec_to_stamp`` does."""
     sec = math.floor(t)
     nsec = int(round((t - sec) * 1e9))
     if nsec >= 1_000_000_000:

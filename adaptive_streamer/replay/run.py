@@ -37,13 +37,13 @@ from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.stream import Segment
 from adaptive_streamer.core.watchdog import Trip
 
-from . import run_info as run_info_mod
-from .bag_io import Bag, TopicData, read_bag
+from ..io import run_info as run_info_mod
+from ..io.bag_io import Bag, TopicData, read_bag
 from .inputs import InputRebuilder
-from .messages import (BOOL, FLOAT64_ARRAY, JOINT_STATE, JOINT_TRAJECTORY, MessageError,
-                       STRING, JointStateReader, decision_records, read_bool, read_string)
-from ..core.adapter_setup import (DEFAULTS, SessionSetup, SetupError, build_session,
-                            load_params_file)
+from ..io.messages import (BOOL, FLOAT64_ARRAY, JOINT_STATE, JOINT_TRAJECTORY, MessageError,
+                           STRING, JointStateReader, decision_records, read_bool, read_string)
+from ..core.adapter_setup import DEFAULTS, SessionSetup, SetupError, build_session
+from ..io.params_files import load_params_file
 
 # logical input -> (relative name, expected type); resolved in the adapter's namespace
 INPUT_TOPICS = {
@@ -120,8 +120,8 @@ def _check_type(bag: Bag, topic: str, expected: str) -> TopicData | None:
 def _check_joints(bag: Bag, topic: str, data: TopicData, joints: tuple[str, ...],
                   kind: str) -> None:
     """Clear error when the first message of ``topic`` lacks a joint of the limits."""
-    from .messages import WindowReader
-    from adaptive_streamer.nodes.trajectory_conversions import TrajectoryMessageError
+    from ..io.messages import WindowReader
+    from adaptive_streamer.io.trajectory_conversions import TrajectoryMessageError
     if kind == "window":
         try:
             WindowReader(joints).read(data.raw[0])
@@ -445,7 +445,7 @@ def _run_nearest(result: ReplayResult, runner: _Runner, found: dict[str, TopicDa
     period, rate = setup.period, setup.rate
     setpoints = found["setpoints"]
     if setpoints is not None:
-        from .messages import header_stamps
+        from ..io.messages import header_stamps
         t0 = float(header_stamps(setpoints.raw[:1])[0])
     else:
         first = max(int(inputs.windows.times[0]), int(inputs.joint_states.times[0])) * 1e-9

@@ -1,4 +1,5 @@
-"""What every policy shares: its inputs, its protocol, the running configuration, its error.
+"""What every policy shares: its protocol and a neutral test input (its inputs, running
+configuration and error type live in `core.policy_inputs` and `policies.running`).
 
 A policy is called once per decision cycle with a `PolicyInputs` and returns one raw action
 per joint. What the action means is the policy's ``action_meaning``:
@@ -14,43 +15,20 @@ return NaN: the cycle and watchdog deal with a non-finite action.
 """
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Protocol
 
 import numpy as np
 
 from ..feedback import FeatureVector
-from ..limits import JointLimits
+from ..policy_inputs import PolicyInputs
 from ..segment import MotionState
+from .running import ACTION_MEANINGS, PolicyError, RunningConfig
 
 if TYPE_CHECKING:
     from .card import PolicyCard
 
-ACTION_MEANINGS = ("normalised", "acceleration", "brake")
-
-
-class PolicyError(ValueError):
-    """A policy card, model or policy configuration is invalid or does not fit the adapter."""
-
-
-@dataclass(frozen=True)
-class PolicyInputs:
-    """Everything a policy sees at one decision instant (joint arrays in the running order).
-
-    ``ref_*`` rows are the reference at ``time + i * T``, i = 0..H-1 (real timeline; row 0
-    applies at the decision instant). ``feedback`` is None when no feedback is configured
-    or none was received. ``previous_action`` is the policy's previous raw output (zeros at
-    the start).
-    """
-
-    time: float
-    state: MotionState
-    ref_positions: np.ndarray
-    ref_velocities: np.ndarray
-    ref_accelerations: np.ndarray
-    feedback: FeatureVector | None
-    previous_action: np.ndarray
+__all__ = ["ACTION_MEANINGS", "Policy", "PolicyError", "PolicyInputs", "RunningConfig",
+           "neutral_inputs"]
 
 
 class Policy(Protocol):
@@ -65,41 +43,6 @@ class Policy(Protocol):
 
     def act(self, inputs: PolicyInputs) -> np.ndarray:
         """Raw action, float64 of shape (n,); may contain NaN."""
-
-
-@dataclass(frozen=True, eq=False)
-class RunningConfig:
-    """What the adapter runs with; a policy card is checked against it.
-
-    ``limits`` must be for exactly ``joints`` (same order). ``horizon`` is the number of
-    reference points available per decision (H >= 1); ``features`` the feedback features
-    the adapter receives (possibly none).
-    """
-
-    joints: tuple[str, ...]
-    decision_period: float
-    limits: JointLimits
-    horizon: int
-    features: tuple[str, ...] = ()
-
-    def __post_init__(self) -> None:
-        object.__setattr__(self, "joints", tuple(str(j) for j in self.joints))
-        object.__setattr__(self, "features", tuple(str(f) for f in self.features))
-        if self.limits.names != self.joints:
-            raise PolicyError(f"running configuration: limits are for joints "
-                              f"{list(self.limits.names)} but the joints are {list(self.joints)}")
-        period = self.decision_period
-        if isinstance(period, bool) or not isinstance(period, (int, float)) \
-                or not (math.isfinite(period) and period > 0.0):
-            raise PolicyError(f"running configuration: decision_period must be a positive "
-                              f"number of seconds, got {period!r}")
-        if isinstance(self.horizon, bool) or not isinstance(self.horizon, (int, np.integer)) \
-                or self.horizon < 1:
-            raise PolicyError(f"running configuration: horizon must be an integer >= 1 "
-                              f"(reference points per decision), got {self.horizon!r}")
-        if len(set(self.features)) != len(self.features):
-            raise PolicyError(f"running configuration: feedback features repeat: "
-                              f"{list(self.features)}")
 
 
 def neutral_inputs(running: RunningConfig) -> PolicyInputs:

@@ -90,8 +90,8 @@ import numpy as np
 import yaml
 
 from ..limits import JointLimits, LimitsError
-from ..observation import BLOCK_KINDS, HORIZON_BLOCKS, ObservationBlock
-from .base import PolicyError, RunningConfig
+from ..observation import BLOCK_KINDS, HORIZON_BLOCKS, ObservationBlock, ObservationLayout
+from .running import PolicyError, RunningConfig
 
 CARD_VERSION = 1
 KINDS = ("onnx", "tracker", "linear_feedback", "hold")
@@ -175,6 +175,10 @@ class PolicyCard:
         if self.kind in ("tracker", "linear_feedback"):
             return TRACKING_POINTS
         return max((b.horizon for b in self.observation), default=1)
+
+    def observation_layout(self) -> ObservationLayout:
+        """The layout of this card's observation (its blocks and limits)."""
+        return ObservationLayout(self.observation, self.limits)
 
 
 def default_natural_frequency(period: float) -> float:

@@ -15,7 +15,6 @@ from __future__ import annotations
 import numpy as np
 import onnxruntime as ort
 
-from ..observation import ObservationLayout
 from .base import PolicyError, PolicyInputs
 from .card import OnnxOptions, PolicyCard
 
@@ -65,7 +64,7 @@ class OnnxPolicy:
             raise PolicyError(f"{card.source}: kind '{card.kind}' has no model")
         self.card = card
         self.action_meaning = card.action
-        self.layout = ObservationLayout.from_card(card)
+        self.layout = card.observation_layout()
         self.needs_feedback = self.layout.features
         options = card.onnx or OnnxOptions()
         so = ort.SessionOptions()

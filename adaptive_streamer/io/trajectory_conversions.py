@@ -21,7 +21,7 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from adaptive_streamer.core.playback import Window
 from adaptive_streamer.core.reference import Samples
 
-from .common import sec_to_stamp, stamp_to_sec
+from .stamps import sec_to_stamp, stamp_to_sec
 
 
 class TrajectoryMessageError(ValueError):

@@ -39,21 +39,21 @@ from typing import Sequence
 
 import numpy as np
 
-from ..alignment import align
-from ..cycle import CycleConfig, Decision
-from ..feasibility import ensure_feasible
-from ..feedback import FeatureTable, FeedbackParser, FilterSpec, InputSpec, Verdict
-from ..limits import JointLimits
-from ..playback import Playback
-from ..policies import BUILT_IN_KINDS, build_policy, check_card, load_card, policy_for_kind
-from ..policies.base import Policy, RunningConfig
-from ..policies.card import PolicyCard
-from ..reference import ReferenceTrajectory
-from ..reference_files import load_reference
-from ..segment import MotionState
-from ..session import SessionInputs, StreamingSession, feedback_valid_since
-from ..sim_plant import PlantConfig, SimPlant
-from ..watchdog import Trip, WatchdogConfig
+from ..core.alignment import align
+from ..core.cycle import CycleConfig, Decision
+from ..core.feasibility import ensure_feasible
+from ..core.feedback import FeatureTable, FeedbackParser, FilterSpec, InputSpec, Verdict
+from ..core.limits import JointLimits
+from ..core.playback import Playback
+from ..core.policies import BUILT_IN_KINDS, build_policy, check_card, load_card, policy_for_kind
+from ..core.policies.base import Policy, RunningConfig
+from ..core.policies.card import PolicyCard
+from ..core.reference import ReferenceTrajectory
+from ..core.reference_files import load_reference_file
+from ..core.segment import MotionState
+from ..core.session import SessionInputs, StreamingSession, feedback_valid_since
+from .plant import PlantConfig, SimPlant
+from ..core.watchdog import Trip, WatchdogConfig
 from .arm import DEMO_ARM
 from .config import Scenario, default_scenario_path, load_scenario
 from .line_sensor import LineSensor, true_edge_reading
@@ -249,7 +249,7 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int,
     if limits is None or isinstance(limits, (str, Path)):
         limits = JointLimits.from_file(limits or demo_file("limits.yaml"))
     if reference is None or isinstance(reference, (str, Path)):
-        reference = load_reference(reference or demo_file("reference.csv"), limits=limits)
+        reference = load_reference_file(reference or demo_file("reference.csv"), limits=limits)
     reference, _, _ = ensure_feasible(reference, limits, slow_down=cfg.slow_down,
                                       fraction=cfg.limit_fraction)
     if reference.names != limits.names:

@@ -161,7 +161,7 @@ def load_scenario(path: str | Path | None = None) -> Scenario:
 
 def default_scenario_path() -> Path:
     """The demo scenario file in the package's share folder."""
-    from ...share import ShareError, demo_file
+    from ..share import ShareError, demo_file
     try:
         path = demo_file("scenario.yaml")
     except ShareError as exc:

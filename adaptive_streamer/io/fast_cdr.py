@@ -228,7 +228,7 @@ def header_stamp(raw: bytes) -> tuple[int, int]:
 
 
 def stamp_seconds(sec: int, nanosec: int) -> float:
-    """Seconds from a Time, computed exactly as ``nodes.common.stamp_to_sec`` does."""
+    """Seconds from a Time, computed exactly as ``io.stamps.stamp_to_sec`` does."""
     return sec + nanosec * 1e-9
 
 

@@ -19,7 +19,7 @@ import numpy as np
 from adaptive_streamer.core import decision_record
 from adaptive_streamer.core.cycle import Decision
 from adaptive_streamer.core.playback import Window
-from adaptive_streamer.nodes.trajectory_conversions import TrajectoryMessageError, msg_to_window
+from adaptive_streamer.io.trajectory_conversions import TrajectoryMessageError, msg_to_window
 
 from . import fast_cdr
 from .bag_io import decode
