@@ -128,7 +128,8 @@ def run_child(kinds: list[str], args: list[str]) -> int:
 def run_one_process(entries: list[NodeEntry], params_file: str) -> int:
     """All nodes in this process (one executor; the adapter keeps its stream thread)."""
     from .nodes import common
-    from .nodes.adapter import AdapterNode, make_executor
+    from .nodes.adapter import AdapterNode
+    from .nodes.threads import make_executor
 
     namespaces = {e.namespace for e in entries}
     if len(namespaces) > 1:

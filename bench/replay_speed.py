@@ -33,7 +33,7 @@ from policy_speed import FEATURES, arm_limits, write_cards, write_mlp  # noqa: E
 from adaptive_streamer.core import decision_record  # noqa: E402
 from adaptive_streamer.core.segment import MotionState  # noqa: E402
 from adaptive_streamer.core.session import SessionInputs  # noqa: E402
-from adaptive_streamer.replay import run_info  # noqa: E402
+from adaptive_streamer.io import run_info  # noqa: E402
 from adaptive_streamer.io.bag_io import BagWriter, encode, typestore  # noqa: E402
 from adaptive_streamer.replay.compare import compare  # noqa: E402
 from adaptive_streamer.io.messages import JointStateReader, WindowReader  # noqa: E402

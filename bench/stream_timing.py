@@ -104,7 +104,8 @@ def run_cell(folder: Path) -> None:
 
 def run_adapter(folder: Path, rate: float, priority: int, decision_priority: int) -> None:
     """The adapter alone in its process (autostart), as its executable runs it."""
-    from adaptive_streamer.nodes.adapter import AdapterNode, make_executor, prepare_process
+    from adaptive_streamer.nodes.adapter import AdapterNode
+    from adaptive_streamer.nodes.threads import make_executor, prepare_process
     from adaptive_streamer.nodes.common import run_nodes
     from rclpy.parameter import Parameter as P
     params = [P("policy", value=str(folder / "tracker.card.yaml")),

@@ -42,7 +42,8 @@ from trajectory_msgs.msg import JointTrajectory
 from adaptive_streamer.core.decision_record import decode
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.policies.card import default_natural_frequency
-from adaptive_streamer.nodes.adapter import AdapterNode, make_executor
+from adaptive_streamer.nodes.adapter import AdapterNode
+from adaptive_streamer.nodes.threads import make_executor
 from adaptive_streamer.nodes.common import reliable_qos
 from adaptive_streamer.nodes.reference_server import ReferenceServer
 from adaptive_streamer.nodes.sim_driver import SimDriver

@@ -999,7 +999,8 @@ class ClockFuzz:
         from rosgraph_msgs.msg import Clock
         from trajectory_msgs.msg import JointTrajectory
 
-        from adaptive_streamer.nodes.adapter import AdapterNode, make_executor
+        from adaptive_streamer.nodes.adapter import AdapterNode
+        from adaptive_streamer.nodes.threads import make_executor
         from adaptive_streamer.nodes.common import reliable_qos
         from adaptive_streamer.nodes.lifecycle_client import LifecycleClient
         from adaptive_streamer.nodes.reference_server import ReferenceServer

@@ -25,7 +25,7 @@ from sensor_msgs.msg import JointState
 from std_msgs.msg import String
 from trajectory_msgs.msg import JointTrajectory
 
-from adaptive_streamer.replay import run_info
+from adaptive_streamer.io import run_info
 from adaptive_streamer.io.bag_io import read_bag, repair_bag
 from adaptive_streamer.replay.recorder import Recorder
 

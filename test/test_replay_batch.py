@@ -22,7 +22,7 @@ def live_bag(tmp_path_factory):
 def test_batch_table_ranks_bags_and_policies(tmp_path, live_bag):
     second = replay_harness.copy_bag(live_bag, tmp_path / "second")
     rows = run_batch([live_bag, second], [None, "hold", str(tmp_path / "missing.card.yaml")],
-                     tmp_path / "out", hook="adaptive_streamer.replay.batch:lateral_error_hook",
+                     tmp_path / "out", hook="adaptive_streamer.demo.replay_metric:lateral_error_hook",
                      hook_options={"scenario": str(demo_file("scenario.yaml"))}, jobs=2)
     assert len(rows) == 6 and [r["rank"] for r in rows] == list(range(1, 7))
     failed = [r for r in rows if r["error"]]

@@ -1,6 +1,6 @@
 """Replay's message reading against the reference (de)serialisers.
 
-The fast layout readers (`replay.fast_cdr`, `replay.messages`) must give exactly what the
+The fast layout readers (`io.fast_cdr`, `io.messages`) must give exactly what the
 node gets from rclpy: checked against ``rclpy.serialization`` (the ROS 2 middleware's own
 CDR, Fast CDR in Jazzy) and ``rosbags`` (an independent implementation), on random
 messages including empty arrays and the trailing bytes rclpy leaves after a message.
@@ -16,7 +16,7 @@ from adaptive_streamer.core import decision_record
 from adaptive_streamer.core.cycle import Decision
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.io.trajectory_conversions import TrajectoryMessageError, msg_to_window
-from adaptive_streamer.replay import fast_cdr
+from adaptive_streamer.io import fast_cdr
 from adaptive_streamer.io.bag_io import decode, encode
 from adaptive_streamer.io.messages import JointStateReader, WindowReader, decision_records
 

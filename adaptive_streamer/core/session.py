@@ -10,7 +10,8 @@ The adapter node (and the offline replay) drive one `StreamingSession`:
 * `decide(now, inputs)` runs the watchdog's input checks (staleness, following error) and
   one decision cycle, and commits the result if it is still for the current instant (the
   shadow policy, if any, is stepped on the same inputs);
-* `stop`, `reset` and the trip list drive the latched stop.
+* `stop`, `reset` (`reset_on` with the inputs' checks and a policy probe) and the trip list
+  drive the latched stop.
 
 Thread-safety: `sample` (stream thread) and `decide` (decision thread) share a lock held
 only while committing or sampling, never while the policy runs.
@@ -23,6 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .alignment import AlignmentError, align, validate_window
 from .cycle import CycleConfig, Decision, DecisionCycle
 from .feedback import FeatureVector
 from .guard import SetpointGuard
@@ -30,6 +32,7 @@ from .limit_stage import LimitStage
 from .limits import JointLimits
 from .playback import Window
 from .policies.base import Policy
+from .policy_inputs import PolicyInputs
 from .segment import MotionState, integrate
 from .stream import CommandPlan, Segment, StreamError
 from .watchdog import InputAges, Trip, Watchdog, WatchdogConfig
@@ -143,6 +146,37 @@ class StreamingSession:
         if ok:
             self.cycle.reset()
         return ok, msg
+
+    def reset_on(self, now: float, inputs: SessionInputs) -> tuple[bool, str]:
+        """Reset (the adapter's ``~/reset``) unless an input fault persists on the current
+        inputs or the policy still fails on them."""
+        persisting = self.input_faults(now, inputs, bool(self.cycle.policy.needs_feedback))
+        probe = self.probe_policy(inputs)
+        if probe:
+            persisting.append(("policy_fault", probe))
+        return self.reset(persisting)
+
+    def probe_policy(self, inputs: SessionInputs) -> str | None:
+        """Run the policy once on the current inputs; a reason if it still fails."""
+        st = self.cycle.state
+        if st is None or inputs.window is None:
+            return None
+        try:
+            validate_window(inputs.window)
+        except AlignmentError as exc:
+            return f"reference/window is unusable: {exc}"
+        try:
+            ref = align(inputs.window, self.cycle.t + np.arange(self.cycle_config.horizon)
+                        * self.period)
+            out = self.cycle.policy.act(PolicyInputs(
+                self.cycle.t, st, ref.positions, ref.velocities, ref.accelerations,
+                inputs.feedback, self.cycle.previous_action))
+            out = np.asarray(out, float)
+            if out.shape != (len(self.limits),) or not np.all(np.isfinite(out)):
+                return "the policy still outputs NaN/inf or the wrong size on the current inputs"
+        except Exception as exc:
+            return f"the policy still fails on the current inputs: {exc}"
+        return None
 
     def swap_policy(self, policy: Policy) -> None:
         """Follow with ``policy`` from the next decision boundary."""

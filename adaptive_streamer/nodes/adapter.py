@@ -13,26 +13,23 @@ Transitions (drive them with the lifecycle services, e.g. from Python with
 * deactivate / shutdown: a controlled stop while the stream keeps running; the managed
   publishers are deactivated only once at rest (or after ``stop_timeout``).
 
-Threads: a multi-threaded executor; the stream timer has its own callback group (steady
-clock; ROS time under ``use_sim_time``), the decision runs in another (triggered when the
-stream enters a new segment), subscriptions and services in a third. Callbacks only store
-the latest message; every computation is in the core.
+Threads: the stream runs in its own thread (`stream_thread`), sleeping to absolute tick
+times; one executor thread (`threads.make_executor`) runs the subscriptions, the services
+and the decision (triggered by a guard condition when the stream enters the last committed
+segment). Callbacks only store the latest message; conversions are in
+`adaptive_streamer.io` and every decision and check is in the core.
 """
 from __future__ import annotations
 
-import math
 import os
-import sys
 import threading
 import time
-from collections import deque
 from typing import Any
 
 import numpy as np
 from lifecycle_msgs.msg import State as StateMsg
 from rcl_interfaces.msg import SetParametersResult
 from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
-from rclpy.executors import SingleThreadedExecutor
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
 from rclpy.parameter import Parameter
 from rclpy.serialization import deserialize_message
@@ -42,22 +39,24 @@ from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
 
 from adaptive_streamer.core import decision_record
+from adaptive_streamer.core.activation import check_activation, first_tick
 from adaptive_streamer.core.adapter_setup import DEFAULTS, WATCHDOG_PARAMS, build_session
+from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, session_summary,
+                                                   session_values)
 from adaptive_streamer.core.policies import load_policy
-from adaptive_streamer.core.policies.base import PolicyInputs
 from adaptive_streamer.core.segment import MotionState
-from adaptive_streamer.core.session import (SessionInputs, StreamingSession,
-                                            feedback_valid_since)
+from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import StreamClock
 
 from . import common
+from ..io.adapter_inputs import LatestInputs
 from ..io.stamps import stamp_to_sec
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name
 from .driver_outputs import DriverOutput, fill_setpoint, setpoint_message
 from .stream_thread import StreamThread
-from ..io.trajectory_conversions import TrajectoryMessageError, msg_to_window
+from .threads import make_executor, prepare_process, set_thread_priority
 
-RUNTIME_PARAMS = ("policy", "shadow_policy", "limit_scale", "policy_active")
+LEVELS = {StatusLevel.OK: OK, StatusLevel.WARN: WARN, StatusLevel.ERROR: ERROR}
 
 
 class AdapterNode(LifecycleNode):
@@ -66,7 +65,7 @@ class AdapterNode(LifecycleNode):
     def __init__(self, name: str = "adapter", **kwargs: Any) -> None:
         super().__init__(name, **kwargs)
         self._declare_parameters()
-        self._priority_note = _set_thread_priority(
+        self._priority_note = set_thread_priority(
             int(self.get_parameter("decision_priority").value))
         self._stream_group = MutuallyExclusiveCallbackGroup()
         self._decide_group = MutuallyExclusiveCallbackGroup()
@@ -75,15 +74,14 @@ class AdapterNode(LifecycleNode):
         self._internal_set = threading.local()
         self._policy_lock = threading.Lock()
         self._latest: dict[str, Any] = {}
-        self._window_cache: tuple[Any, Any] = (None, None)
+        self._latest_inputs: LatestInputs | None = None
         self._stream_timer = None
         self._decide_gc = None
         self._ticks: StreamClock | None = None
         self._paused_for: object | None = None
         self._counters = {"guard_failures": 0, "bad_joint_states": 0, "bad_windows": 0,
                           "decision_errors": 0, "stream_errors": 0, "policy_swaps_failed": 0}
-        self._decision_times: list[float] = []
-        self._lateness: deque[float] = deque(maxlen=2000)  # tick wake-up minus nominal [s]
+        self._timings = CycleTimings()
         self._status = "unconfigured"
         self.add_on_set_parameters_callback(self._on_set_parameters)
         self._diag = common.DiagnosticsReporter(self, "adapter", values=self._diag_values)
@@ -189,7 +187,7 @@ class AdapterNode(LifecycleNode):
         Runs in its own thread at the decision thread's priority, so that while it holds
         the interpreter it is not preempted by other processes (the stream thread would
         wait for it)."""
-        _set_thread_priority(int(self.get_parameter("decision_priority").value))
+        set_thread_priority(int(self.get_parameter("decision_priority").value))
         with self._policy_lock:
             try:
                 policy = load_policy(path, self._running) if path else None
@@ -241,7 +239,7 @@ class AdapterNode(LifecycleNode):
         self._set_internal("policy_active", card)
         self._joints = list(self._running.joints)
         self._rate = rate
-        self._parser = setup.parser
+        self._latest_inputs = LatestInputs(self._joints, setup.parser)
         self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
                          for name in self._param("outputs") if name]
         self._setpoint_pub = self.create_lifecycle_publisher(
@@ -280,38 +278,18 @@ class AdapterNode(LifecycleNode):
         session = self.session
         now = now_sec(self)
         js = self._joint_state()
-        timeout = session.watchdog.config.joint_states_timeout
-        if js is None or now - js[0] > timeout:
-            self.get_logger().error(
-                "activate refused: joint_states is not fresh (none within "
-                f"{timeout * 1e3:.0f} ms)")
+        wd = session.watchdog.config
+        check = check_activation(
+            now, self._joints, session.limits, js[0] if js else None, js[2] if js else None,
+            js[3] if js else None, wd.joint_states_timeout,
+            self._latest_inputs.window_received, wd.reference_timeout,
+            float(self._param("activation_velocity")))
+        if not check.ok:
+            self.get_logger().error(f"activate refused: {check.refusal}")
             return TransitionCallbackReturn.FAILURE
-        window = self._latest.get("window")
-        ref_timeout = session.watchdog.config.reference_timeout
-        if window is None or now - window[0] > ref_timeout:
-            self.get_logger().error(
-                "activate refused: no fresh reference/window (none within "
-                f"{ref_timeout * 1e3:.0f} ms); is the reference server running?")
-            return TransitionCallbackReturn.FAILURE
-        _, stamp, positions, velocities = js
-        still = float(self._param("activation_velocity"))
-        if velocities is not None and np.max(np.abs(velocities)) > still:
-            i = int(np.argmax(np.abs(velocities)))
-            self.get_logger().error(
-                f"activate refused: joint '{self._joints[i]}' is moving at {velocities[i]:.4g} "
-                f"rad/s (activation_velocity {still:g})")
-            return TransitionCallbackReturn.FAILURE
-        lim = session.limits
-        outside = (positions < lim.position_min) | (positions > lim.position_max)
-        if outside.any():  # the guard would hold back every setpoint of the recovery move
-            i = int(np.argmax(outside))
-            self.get_logger().error(
-                f"activate refused: joint '{self._joints[i]}' is at {positions[i]:.6g} rad, "
-                f"outside its position range [{lim.position_min[i]:.6g}, "
-                f"{lim.position_max[i]:.6g}] rad (limits_file); bring it into the range first")
-            return TransitionCallbackReturn.FAILURE
+        positions = js[2]
         z = np.zeros(len(self._joints))
-        t0 = math.ceil(now * self._rate) / self._rate
+        t0 = first_tick(now, self._rate)
         session.begin(t0, MotionState(positions, z, z))
         self._ticks = StreamClock(t0, self._rate)
         self._decide_gc = self.create_guard_condition(self._on_decide,
@@ -386,6 +364,7 @@ class AdapterNode(LifecycleNode):
         self._setpoint_pub = self._shadow_pub = self._decision_pub = self._pause_client = None
         self._outputs, self._subs, self._adapter_services = [], [], []
         self._latest.clear()
+        self._latest_inputs = None
         self.session = None
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
@@ -428,10 +407,14 @@ class AdapterNode(LifecycleNode):
         return parsed
 
     def _on_window(self, msg: JointTrajectory) -> None:
-        self._latest["window"] = (now_sec(self), msg)
+        latest = self._latest_inputs
+        if latest is not None:
+            latest.set_window(now_sec(self), msg)
 
     def _on_feedback(self, msg: JointState) -> None:
-        self._latest["feedback"] = (now_sec(self), msg)
+        latest = self._latest_inputs
+        if latest is not None:
+            latest.set_feedback(now_sec(self), msg)
 
     def _on_stop_topic(self, msg: Bool) -> None:
         session = self.session
@@ -445,34 +428,14 @@ class AdapterNode(LifecycleNode):
             session.watchdog.stop_requested = None
 
     def _inputs(self, now: float) -> SessionInputs:
-        window, window_rx = None, None
-        w = self._latest.get("window")
-        if w is not None:
-            window_rx, msg = w
-            if self._window_cache[0] is msg:
-                window = self._window_cache[1]
-            else:
-                try:
-                    window = msg_to_window(msg, self._joints)
-                except TrajectoryMessageError as exc:
-                    self._counters["bad_windows"] += 1
-                    self.get_logger().warn(f"reference/window ignored: {exc}",
-                                           throttle_duration_sec=5.0)
-                    window, window_rx = None, None
-                self._window_cache = (msg, window)
-        feedback, valid_since = None, self._latest.get("feedback_valid_since")
-        f = self._latest.get("feedback")
-        if f is not None and self._parser is not None:
-            rx, msg = f
-            try:
-                feedback = self._parser.parse(msg.name, msg.position, stamp_to_sec(msg.header.stamp))
-            except ValueError:
-                feedback = None
-            if feedback is not None and feedback.all_valid:
-                valid_since = feedback_valid_since(feedback.stamp, rx)
-                self._latest["feedback_valid_since"] = valid_since
+        latest = self._latest_inputs
+        win = latest.window()
+        if win.error is not None:
+            self._counters["bad_windows"] += 1
+            self.get_logger().warn(win.error, throttle_duration_sec=5.0)
+        fb = latest.feedback()
         js = self._joint_state()
-        return SessionInputs(window, window_rx, feedback, valid_since,
+        return SessionInputs(win.window, win.received, fb.feedback, fb.valid_since,
                              js[2] if js else None, js[1] if js else None, js[0] if js else None)
 
     # ------------------------------------------------------------------ stream & decide
@@ -491,7 +454,7 @@ class AdapterNode(LifecycleNode):
                         "driver holds on its command timeout)", throttle_duration_sec=5.0)
                 return
             t = clock.time_of(i)
-            self._lateness.append(now - t)
+            self._timings.lateness.append(now - t)
             sp, reason = session.sample(t)
             if reason is None:
                 fill_setpoint(self._setpoint_msg, t, sp)
@@ -524,9 +487,7 @@ class AdapterNode(LifecycleNode):
             if d is not None:
                 self._decision_msg.data = decision_record.encode(d).tolist()
                 self._decision_pub.publish(self._decision_msg)
-            self._decision_times.append(time.perf_counter() - t0)
-            if len(self._decision_times) > 2000:
-                del self._decision_times[:1000]
+            self._timings.decision.append(time.perf_counter() - t0)
             self._react(session)
         except Exception as exc:  # never let an exception escape the decision callback
             self._counters["decision_errors"] += 1
@@ -580,13 +541,7 @@ class AdapterNode(LifecycleNode):
             response.success, response.message = False, "not streaming (activate first)"
             return response
         now = now_sec(self)
-        inputs = self._inputs(now)
-        needs = bool(session.cycle.policy.needs_feedback)
-        persisting = session.input_faults(now, inputs, needs)
-        probe = self._probe_policy(session, inputs)
-        if probe:
-            persisting.append(("policy_fault", probe))
-        ok, msg = session.reset(persisting)
+        ok, msg = session.reset_on(now, self._inputs(now))
         if ok:
             self._diag.set(OK, "reset: approaching the reference")
             self._paused_for = None
@@ -594,115 +549,30 @@ class AdapterNode(LifecycleNode):
         self.get_logger().info(msg)
         return response
 
-    def _probe_policy(self, session: StreamingSession, inputs: SessionInputs) -> str | None:
-        """Run the policy once on the current inputs; a reason if it still fails."""
-        st = session.cycle.state
-        if st is None or inputs.window is None:
-            return None
-        from adaptive_streamer.core.alignment import AlignmentError, align, validate_window
-        try:
-            validate_window(inputs.window)
-        except AlignmentError as exc:
-            return f"reference/window is unusable: {exc}"
-        try:
-            ref = align(inputs.window, session.cycle.t + np.arange(session.cycle_config.horizon)
-                        * session.period)
-            out = session.cycle.policy.act(PolicyInputs(
-                session.cycle.t, st, ref.positions, ref.velocities, ref.accelerations,
-                inputs.feedback, session.cycle.previous_action))
-            out = np.asarray(out, float)
-            if out.shape != (len(self._joints),) or not np.all(np.isfinite(out)):
-                return "the policy still outputs NaN/inf or the wrong size on the current inputs"
-        except Exception as exc:
-            return f"the policy still fails on the current inputs: {exc}"
-        return None
-
     # ------------------------------------------------------------------ diagnostics
     def _diag_values(self) -> list[tuple[str, Any]]:
         s = self.session
         vals: list[tuple[str, Any]] = [("status", self._status)]
         if s is None:
             return vals
-        ts = np.array(self._decision_times[-500:]) * 1e3 if self._decision_times else np.array([np.nan])
-        pt = np.array(s.cycle.stats.policy_times[-500:]) * 1e3 if s.cycle.stats.policy_times else np.array([np.nan])
-        trip = s.watchdog.trip
-        vals += [("mode", s.mode), ("policy_active", self._param("policy_active")),
-                 ("limit_scale", s.limit_scale),
-                 ("decisions", s.cycle.stats.decisions),
-                 ("late_decisions", s.late_decisions),
-                 ("skipped_ticks", self._ticks.skipped if self._ticks else 0),
+        vals += [("policy_active", self._param("policy_active")),
                  ("stream_thread", self._stream_timer.priority_note if self._stream_timer
                   else "not running"),
-                 ("decision_thread", self._priority_note),
-                 ("tick_late_ms_p50", _pct(self._lateness, 50)),
-                 ("tick_late_ms_p99", _pct(self._lateness, 99)),
-                 ("decision_ms_p50", float(np.median(ts))),
-                 ("decision_ms_p99", float(np.percentile(ts, 99))),
-                 ("policy_ms_p50", float(np.median(pt))),
-                 ("policy_swaps", s.cycle.stats.policy_swaps),
-                 ("non_viable_states", s.cycle.stats.non_viable),
-                 ("limit_transitions", s.cycle.stats.limit_transitions),
-                 ("trip", "none" if trip is None else trip.kind),
-                 ("trip_message", "" if trip is None else trip.message),
-                 ("trip_time", math.nan if trip is None else trip.time)]
-        vals += [(f"count.{k}", v) for k, v in s.watchdog.counts.items() if v]
+                 ("decision_thread", self._priority_note)]
+        vals += session_values(s, self._timings, self._ticks.skipped if self._ticks else 0)
         vals += list(self._counters.items())
-        if s.shadow_policy is not None:
-            st = s.shadow_stats
-            vals += [("shadow.decisions", st.decisions), ("shadow.rms_du", st.rms_du),
-                     ("shadow.max_abs_du", st.max_abs_du), ("shadow.restarts", st.stopped)]
         for out in getattr(self, "_outputs", []):
             vals += list(out.status().items())
-        if trip is None and s.mode in ("approaching", "following"):
-            self._diag.set(OK, f"active: {s.mode}")
-        elif s.mode == "stopped" and trip is None:
-            self._diag.set(OK, "stopped (at rest)")
-        if self._counters["guard_failures"] or s.late_decisions:
-            if trip is None:
-                self._diag.set(WARN, f"{s.mode}; guard failures {self._counters['guard_failures']}, "
-                               f"late decisions {s.late_decisions}")
+        summary = session_summary(s, self._counters["guard_failures"])
+        if summary is not None:
+            self._diag.set(LEVELS[summary.level], summary.message)
         return vals
-
-
-def _set_thread_priority(priority: int) -> str:
-    """SCHED_FIFO ``priority`` for the calling thread, or normal scheduling for 0."""
-    try:
-        if priority <= 0:
-            if os.sched_getscheduler(0) != os.SCHED_OTHER:
-                os.sched_setscheduler(0, os.SCHED_OTHER, os.sched_param(0))
-            return "thread at normal priority"
-        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(priority))
-    except (OSError, AttributeError) as exc:
-        return f"thread at normal priority (SCHED_FIFO {priority} refused: {exc})"
-    return f"thread at SCHED_FIFO priority {priority}"
-
-
-def _pct(values: deque[float], q: float) -> float:
-    return float(np.percentile(np.fromiter(values, float), q)) * 1e3 if values else math.nan
-
-
-def make_executor() -> SingleThreadedExecutor:
-    """The executor for the adapter: one thread for subscriptions, services and decisions
-    (the stream has its own thread); the GIL switch interval is shortened so the stream
-    thread gets the interpreter promptly."""
-    sys.setswitchinterval(0.0001)
-    return SingleThreadedExecutor()
-
-
-MIDDLEWARE_PRIORITY = 5
-
-
-def prepare_process() -> str:
-    """Call before rclpy starts in the adapter's own process: asks for SCHED_FIFO
-    ``MIDDLEWARE_PRIORITY`` so the middleware's send and receive threads, created at init,
-    inherit it (a loaded machine then delays the stream's messages less); the node's
-    ``decision_priority`` later sets the executor thread's own priority (0: normal)."""
-    return _set_thread_priority(MIDDLEWARE_PRIORITY)
 
 
 def main(args: list[str] | None = None) -> int:
     """Run the adapter node until Ctrl-C (the arm is brought to rest first)."""
     prepare_process()
+
     def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
         for node in nodes:
             if isinstance(node, AdapterNode):

@@ -40,8 +40,9 @@ from adaptive_streamer.sim.arm import DEMO_ARM
 from adaptive_streamer.sim.config import ScenarioError, load_scenario
 from adaptive_streamer.sim.line_sensor import LineSensor, true_edge_reading
 
+from ..io.stamps import sec_to_stamp, stamp_to_sec
 from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
-                     run_nodes, sec_to_stamp, stamp_to_sec)
+                     run_nodes)
 
 _LOG_THROTTLE_S = 5.0
 

@@ -50,8 +50,8 @@ from sensor_msgs.msg import JointState
 from adaptive_streamer.core.feedback import (FeatureTable, FeedbackError, FilterSpec, InputSpec,
                                              Verdict)
 from adaptive_streamer.nodes.common import (ERROR, OK, WARN, DiagnosticsReporter, SetupNode,
-                                            declare, now_sec, qos_by_name, run_nodes,
-                                            sec_to_stamp, stamp_to_sec)
+                                            declare, now_sec, qos_by_name, run_nodes)
+from adaptive_streamer.io.stamps import sec_to_stamp, stamp_to_sec
 from adaptive_streamer.io.field_paths import (FieldPathError, compile_fields, is_stamped,
                                                  message_class, type_name)
 

@@ -11,10 +11,11 @@ the thread polls the clock in short sleeps, so a paused clock pauses the stream)
 """
 from __future__ import annotations
 
-import os
 import threading
 import time
 from typing import Callable
+
+from .threads import set_thread_priority
 
 
 class StreamThread:
@@ -25,9 +26,8 @@ class StreamThread:
         next_due: returns the nominal time of the next tick to publish.
         tick: the tick callback (publishes at most one setpoint).
         max_sleep: longest single sleep [s] (bounds the reaction to a stop or sim clock).
-        priority: SCHED_FIFO priority of the thread (0: normal scheduling). Real-time
-            priority for the control thread is common practice; it needs the privilege
-            (root or CAP_SYS_NICE), otherwise the thread runs normally and says so.
+        priority: SCHED_FIFO priority of the thread (0: normal scheduling; see
+            `threads.set_thread_priority`).
     """
 
     def __init__(self, now: Callable[[], float], next_due: Callable[[], float],
@@ -57,13 +57,8 @@ class StreamThread:
         return self._thread.is_alive() and not self._stop.is_set()
 
     def _run(self) -> None:
-        if self._priority > 0:
-            try:  # this thread only (Linux: pid 0 is the calling thread)
-                os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(self._priority))
-                self.priority_note = f"stream thread at SCHED_FIFO priority {self._priority}"
-            except (OSError, AttributeError) as exc:
-                self.priority_note = (f"stream thread at normal priority (SCHED_FIFO "
-                                      f"{self._priority} refused: {exc})")
+        if self._priority > 0:  # this thread only (Linux: pid 0 is the calling thread)
+            self.priority_note = set_thread_priority(self._priority, "stream thread")
         while not self._stop.is_set():
             now = self._now()
             self._tick(now)

@@ -36,7 +36,8 @@ from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.watchdog import WatchdogConfig, WatchdogError
 
 from .common import (ERROR, OK, DiagnosticsReporter, SetupNode, declare, qos_by_name,
-                     reliable_qos, run_nodes, stamp_to_sec)
+                     reliable_qos, run_nodes)
+from ..io.stamps import stamp_to_sec
 
 STOP_INTERVAL_S = 1.0
 

@@ -1,13 +1,9 @@
-"""rosbag2 recording and reading (rosbags, MCAP), offline replay and reports.
+"""Offline and live replay of recorded bags, batch comparison and reports (core + io).
 
 ==================  ===============================================================
 module              holds
 ==================  ===============================================================
-``bag_io``          chunked MCAP bag writer, bag reader with crash recovery, repair
-``recorder``        `Recorder`: the ``recorder`` node in a child process; stack topics
-``run_info``        the adapter's parameters and files stored in a bag
-``fast_cdr``        exact, fast reading of the per-cycle message types
-``messages``        bag bytes -> windows, joint states, decision records
+``recorder``        `Recorder`: the ``recorder`` node in a child process
 ``inputs``          per-cycle `SessionInputs` rebuilt from a bag
 ``run``             `replay`: the decision cycles re-run on a bag
 ``compare``         replayed vs recorded: decisions, setpoints, limits, trips, timing
@@ -17,6 +13,7 @@ module              holds
 ``cli_replay``      ``adaptive-streamer replay``
 ==================  ===============================================================
 
-The session itself is built by `adaptive_streamer.core.adapter_setup.build_session`, the
+Bags are read and written by `adaptive_streamer.io` (``bag_io``, ``messages``, ``fast_cdr``,
+``run_info``). The session itself is built by `adaptive_streamer.core.adapter_setup.build_session`, the
 same function the live adapter's configure step calls.
 """

@@ -3,7 +3,7 @@
 Every (bag, policy) pair is replayed in its own worker process (`multiprocessing`, all
 cores by default) and compared with its recording. The table ranks the runs by the task
 metric: the metric hook's first value when a hook is given (e.g. the demo's lateral
-error, `lateral_error_hook`), else the RMS planned deviation from the reference while
+error, `adaptive_streamer.demo.replay_metric:lateral_error_hook`), else the RMS planned deviation from the reference while
 following; runs that tripped the watchdog rank after those that did not; failed runs last
 (with their error).
 
@@ -22,10 +22,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Sequence
 
-import numpy as np
-
-from .compare import Stream, compare
-from .run import ReplayResult, replay
+from .compare import compare
+from .run import replay
 
 BASE_COLUMNS = ("rank", "bag", "policy", "mode", "cycles", "rms_deviation", "max_deviation",
                 "trips", "first_trip", "peak_velocity", "peak_acceleration", "peak_jerk",
@@ -44,7 +42,7 @@ class Task:
     hook_options: tuple[tuple[str, Any], ...]
 
 
-def _hook(spec: str) -> Any:
+def load_hook(spec: str) -> Any:
     module, _, name = spec.partition(":")
     try:
         return getattr(importlib.import_module(module), name)
@@ -74,7 +72,7 @@ def run_task(task: Task) -> dict[str, Any]:
             "deterministic": c.deterministic if c.compared and task.policy is None else "",
             "error": ""})
         if task.hook:
-            row.update(_hook(task.hook)(result, stream, **dict(task.hook_options)))
+            row.update(load_hook(task.hook)(result, stream, **dict(task.hook_options)))
     except Exception as exc:  # a failed run is a row of the table, named with its error
         row["error"] = f"{type(exc).__name__}: {exc}"
     return row
@@ -127,7 +125,7 @@ def run_batch(bags: Sequence[str | Path], policies: Sequence[str | None],
     """Replay every bag with every policy (None = the recorded one) on ``jobs`` processes
     (default: all cores); write and return the ranked table."""
     if hook:
-        _hook(hook)  # fail early, before the workers start
+        load_hook(hook)  # fail early, before the workers start
     tasks = [Task(str(b), p, str(params_file) if params_file else None, namespace, hook,
                   tuple(sorted((hook_options or {}).items())))
              for b in bags for p in (policies or [None])]
@@ -144,30 +142,3 @@ def run_batch(bags: Sequence[str | Path], policies: Sequence[str | None],
     rows = rank(rows, metric)
     write_tables(rows, Path(out), metric)
     return rows
-
-
-def lateral_error_hook(result: ReplayResult, stream: Stream, scenario: str | None = None,
-                       seed: int | None = None, offset_mm: float | None = None,
-                       angle_deg: float | None = None) -> dict[str, float]:
-    """The demo's task metric: the true lateral error of the commanded nozzle path [mm].
-
-    The panel is the scenario's real placement (drawn from ``seed``, or the given offset
-    and angle); the nozzle point is the demo arm's forward kinematics of the replayed
-    setpoint positions while the adapter was following.
-    """
-    from adaptive_streamer.sim.config import load_scenario
-    from adaptive_streamer.sim.metrics import lateral_error
-
-    panel = load_scenario(scenario).panel(seed, offset_mm, angle_deg)
-    follow = [(d.time, d.time + result.setup.period) for d in result.decisions
-              if d.mode == "following"]
-    if not follow or not len(stream.t):
-        return {"lateral_rms_mm": math.nan, "lateral_max_mm": math.nan}
-    starts = np.array([a for a, _ in follow])
-    k = np.searchsorted(starts, stream.t, side="right") - 1
-    inside = (k >= 0) & (stream.t < starts[np.maximum(k, 0)] + result.setup.period)
-    if not inside.any():
-        return {"lateral_rms_mm": math.nan, "lateral_max_mm": math.nan}
-    e = lateral_error(stream.p[inside], panel) * 1e3
-    return {"lateral_rms_mm": float(np.sqrt(np.mean(e * e))),
-            "lateral_max_mm": float(np.max(np.abs(e)))}

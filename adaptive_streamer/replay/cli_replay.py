@@ -21,6 +21,9 @@ from pathlib import Path
 
 from ..io.bag_io import BagError
 
+# the demo cell's lateral-error metric, loaded by name (replay does not import the demo)
+SCENARIO_HOOK = "adaptive_streamer.demo.replay_metric:lateral_error_hook"
+
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Add the replay options to ``parser``."""
@@ -81,7 +84,7 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _single(args: argparse.Namespace, policy: str | None) -> int:
-    from .batch import lateral_error_hook
+    from .batch import load_hook
     from .compare import compare
     from .report import write_outputs
     from .run import replay
@@ -105,7 +108,7 @@ def _single(args: argparse.Namespace, policy: str | None) -> int:
     print(f"RMS deviation from the reference {task['rms_deviation']:.4g} rad, "
           f"replay trips: {len(c.trips['replay'])}")
     if args.scenario:
-        metrics = lateral_error_hook(result, stream, **_hook_options(args))
+        metrics = load_hook(SCENARIO_HOOK)(result, stream, **_hook_options(args))
         print("lateral error: " + ", ".join(f"{k} {v:.4g}" for k, v in metrics.items()))
     print(f"written: {out / 'report.md'}, {out / 'summary.json'}, {out / 'bag'}"
           + (f", {len(facts.get('plots', []))} plots" if facts.get("plots") else ""))
@@ -114,7 +117,7 @@ def _single(args: argparse.Namespace, policy: str | None) -> int:
 
 def _batch(args: argparse.Namespace, policies: list[str | None]) -> int:
     from .batch import run_batch
-    hook = "adaptive_streamer.replay.batch:lateral_error_hook" if args.scenario else None
+    hook = SCENARIO_HOOK if args.scenario else None
     rows = run_batch(args.bags, policies, args.out, args.params, args.namespace, hook,
                      _hook_options(args) if hook else None, args.jobs)
     metric = "lateral_rms_mm" if hook else "rms_deviation"
