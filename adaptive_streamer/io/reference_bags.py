@@ -42,12 +42,8 @@ def load_reference(path: str | Path, *, topic: str | None = None,
                    joints: Sequence[str] | None = None, limits: JointLimits | None = None,
                    max_gap: float | None = DEFAULT_MAX_GAP, ends: str = "rest",
                    fraction: float = DEFAULT_FRACTION) -> ReferenceTrajectory:
-    """Load a reference from a CSV, own YAML or rosbag2 (``topic`` required) by its kind.
-
-    ``joints`` fixes the expected joints and their order (default: the file's); ``limits``
-    (when given) must name every joint and bounds the positions; waypoint files need it.
-    ``max_gap`` is the largest allowed time between samples (None: no check).
-    """
+    """Load a reference from a rosbag2 (``topic`` required) or, for any other path, as
+    `adaptive_streamer.core.reference_files.load_reference_file` does (same arguments)."""
     p = Path(path)
     if is_bag(p):
         if not topic:
