@@ -235,6 +235,8 @@ class AdapterNode(LifecycleNode):
     def _configure(self) -> None:
         params = {n: self._param(n) for n in DEFAULTS}
         setup = build_session(params, robot_description=self._robot_description)
+        if setup.limits_note:
+            self.get_logger().info(setup.limits_note)
         self.session, self._running = setup.session, setup.running
         card, rate = params["policy"], setup.rate
         self._set_internal("policy_active", card)

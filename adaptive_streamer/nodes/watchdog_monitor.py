@@ -71,6 +71,8 @@ class WatchdogMonitor(SetupNode):
             limits = JointLimits.from_file(limits_file, dynamics or None)
         except LimitsError as exc:
             raise WatchdogMonitorError(f"parameter 'limits_file': {exc}") from None
+        if limits.left_out:
+            self.get_logger().info(limits.left_out)
         try:
             config = WatchdogConfig(following_error=float(following),
                                     command_latency=float(latency))
