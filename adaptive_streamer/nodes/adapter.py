@@ -35,7 +35,6 @@ from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
 from rclpy.executors import SingleThreadedExecutor
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
 from rclpy.parameter import Parameter
-from rclpy.serialization import deserialize_message
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension, String
 from std_srvs.srv import Trigger
@@ -49,6 +48,7 @@ from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import (SessionInputs, StreamingSession,
                                             feedback_valid_since)
 from adaptive_streamer.core.stream import StreamClock
+from adaptive_streamer.io.joint_states import JointStateMerger
 
 from . import common
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, stamp_to_sec
@@ -87,6 +87,7 @@ class AdapterNode(LifecycleNode):
         self.add_on_set_parameters_callback(self._on_set_parameters)
         self._diag = common.DiagnosticsReporter(self, "adapter", values=self._diag_values)
         self._robot_description: str | None = None
+        self._js_merger: JointStateMerger | None = None
         self.create_subscription(String, "robot_description", self._on_robot_description,
                                  common.reliable_qos(1, transient_local=True),
                                  callback_group=self._io_group)
@@ -241,6 +242,7 @@ class AdapterNode(LifecycleNode):
         card, rate = params["policy"], setup.rate
         self._set_internal("policy_active", card)
         self._joints = list(self._running.joints)
+        self._js_merger = JointStateMerger(self._joints)
         self._rate = rate
         self._parser = setup.parser
         self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
@@ -387,6 +389,7 @@ class AdapterNode(LifecycleNode):
         self._setpoint_pub = self._shadow_pub = self._decision_pub = self._pause_client = None
         self._outputs, self._subs, self._adapter_services = [], [], []
         self._latest.clear()
+        self._js_merger = None
         self.session = None
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
@@ -400,33 +403,20 @@ class AdapterNode(LifecycleNode):
         self._robot_description = msg.data
 
     def _on_joint_states(self, data: bytes) -> None:
-        """Store the raw message (parsed only when a decision needs it, see `_joint_state`)."""
-        self._latest["joint_states_raw"] = (now_sec(self), data)
+        """Store the raw message (merged with the others when a decision needs it)."""
+        merger = self._js_merger
+        if merger is not None:
+            merger.add(data, now_sec(self))
 
     def _joint_state(self) -> tuple[float, float, np.ndarray, np.ndarray | None] | None:
-        """Latest joint state: (received, stamp, positions, velocities) in joint order."""
-        raw = self._latest.get("joint_states_raw")
-        cached = self._latest.get("joint_states")
-        if raw is None or (cached is not None and cached[0] == raw[0]):
-            return cached
-        rx, data = raw
-        try:
-            msg = deserialize_message(data, JointState)
-            names = list(msg.name)
-            idx = [names.index(j) for j in self._joints]
-            pos = np.asarray(msg.position, float)[idx]
-            vel = (np.asarray(msg.velocity, float)[idx] if len(msg.velocity) == len(names)
-                   else None)
-            if not np.all(np.isfinite(pos)):
-                raise ValueError("non-finite position")
-            stamp = stamp_to_sec(msg.header.stamp)
-        except (ValueError, IndexError, TypeError):
-            self._counters["bad_joint_states"] += 1
-            self._latest["joint_states_raw"] = None
-            return self._latest.get("joint_states")
-        parsed = (rx, stamp if stamp > 0 else rx, pos, vel)
-        self._latest["joint_states"] = parsed
-        return parsed
+        """Merged joint state: (oldest received, oldest stamp, positions, velocities) in
+        joint order; None until every joint has been seen."""
+        merger = self._js_merger
+        if merger is None:
+            return None
+        js = merger.state()
+        self._counters["bad_joint_states"] += merger.take_rejected()
+        return None if js is None else (js.received, js.stamp, js.position, js.velocity)
 
     def _on_window(self, msg: JointTrajectory) -> None:
         self._latest["window"] = (now_sec(self), msg)

@@ -1,0 +1,1 @@
+"""Message and file input/output of the nodes and tools (ROS messages, bags, files)."""
