@@ -16,7 +16,7 @@ from rclpy.serialization import serialize_message
 from sensor_msgs.msg import JointState
 
 from adaptive_streamer.io.joint_states import (JointStateError, JointStateMerger,
-                                               joint_positions)
+                                               cdr_decoder, joint_positions, structure_key)
 
 ARM = ["a1", "a2", "a3", "wrist"]
 
@@ -100,3 +100,39 @@ def test_the_state_is_reused_until_a_message_arrives():
     assert m.state() is first
     m.add(js(["a1"], [1.0]), received=2.0)
     assert m.state() is not first and np.array_equal(first.position, [0, 0, 0, 0])
+
+
+def test_the_fast_cdr_decoder_reads_what_rclpy_deserializes():
+    # rclpy's deserializer is the reference; the merged numbers must agree bit for bit
+    msgs = [js(["gripper", "a3", "a1", "a2"], [0.02, 3.1, 1.1, -2.2], [0.5, 0.3, 0.1, 0.2],
+               stamp=5.25), js(["wrist"], [4.4], stamp=5.5), js(["a1"], [math.nan]),
+            b"\x00\x01\x00\x00garbage"]
+    ref, fast = JointStateMerger(ARM), JointStateMerger(ARM, decode=cdr_decoder())
+    for i, m in enumerate(msgs):
+        ref.add(m, received=10.0 + i)
+        fast.add(m, received=10.0 + i)
+    a, b = ref.state(), fast.state()
+    assert a.position.tobytes() == b.position.tobytes() and a.velocity is b.velocity is None
+    assert (a.received, a.stamp) == (b.received, b.stamp) == (10.0, 5.25)
+    assert ref.take_rejected() == fast.take_rejected() == 2
+
+
+def test_messages_with_the_same_names_share_a_structure_key():
+    a = js(["a1", "a2"], [0.1, 0.2], [0.0, 0.0], stamp=3.0)
+    b = js(["a1", "a2"], [9.0, 8.0], [], stamp=4.5)
+    c = js(["a1", "a3"], [0.1, 0.2], stamp=3.0)
+    framed = JointState(name=["a1", "a2"], position=[0.1, 0.2])
+    framed.header.frame_id = "tern_base"
+    assert structure_key(a) == structure_key(b) != structure_key(c)
+    assert structure_key(serialize_message(framed)) != structure_key(a)
+    assert structure_key(js(["a1", "a2"], [0, 0], raw=False)) == ("", ("a1", "a2"))
+    assert structure_key(b"\x00\x01") == b"\x00\x01"      # not walkable: its own key
+
+
+def test_a_fold_while_adding_renews_the_state():
+    m = JointStateMerger(["a1"], pending_limit=2)
+    m.add(js(["a1"], [1.0]), received=1.0)
+    assert m.state().received == 1.0
+    for k, names in enumerate((["a1", "x"], ["a1", "y"], ["a1", "z"])):  # 3 name sets > 2
+        m.add(js(names, [2.0 + k, 0.0]), received=2.0 + k)
+    assert m.state().received == 4.0 and m.state().position.tolist() == [4.0]

@@ -48,7 +48,7 @@ from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import (SessionInputs, StreamingSession,
                                             feedback_valid_since)
 from adaptive_streamer.core.stream import StreamClock
-from adaptive_streamer.io.joint_states import JointStateMerger
+from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 
 from . import common
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, stamp_to_sec
@@ -57,6 +57,7 @@ from .stream_thread import StreamThread
 from .trajectory_conversions import TrajectoryMessageError, msg_to_window
 
 RUNTIME_PARAMS = ("policy", "shadow_policy", "limit_scale", "policy_active")
+JOINT_STATES_DEPTH = 100  # joint_states messages queued (0.2 s at 500 Hz)
 
 
 class AdapterNode(LifecycleNode):
@@ -242,7 +243,7 @@ class AdapterNode(LifecycleNode):
         card, rate = params["policy"], setup.rate
         self._set_internal("policy_active", card)
         self._joints = list(self._running.joints)
-        self._js_merger = JointStateMerger(self._joints)
+        self._js_merger = JointStateMerger(self._joints, decode=cdr_decoder())
         self._rate = rate
         self._parser = setup.parser
         self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
@@ -260,8 +261,11 @@ class AdapterNode(LifecycleNode):
         self._decision_msg = Float64MultiArray()
         self._decision_msg.layout.dim = [MultiArrayDimension(label=decision_record.LABEL)]
         self._subs = [
+            # deep: a driver may send its joints in several streams on the topic, and a
+            # message of a slow stream must not be dropped behind a fast one
             self.create_subscription(JointState, "joint_states", self._on_joint_states,
-                                     qos_by_name(self._param("joint_states_qos"), 5),
+                                     qos_by_name(self._param("joint_states_qos"),
+                                                 JOINT_STATES_DEPTH),
                                      callback_group=self._io_group, raw=True),
             self.create_subscription(JointTrajectory, "reference/window", self._on_window,
                                      common.reliable_qos(5), callback_group=self._io_group),

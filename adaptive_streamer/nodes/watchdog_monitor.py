@@ -81,7 +81,7 @@ class WatchdogMonitor(SetupNode):
         except WatchdogError as exc:
             raise WatchdogMonitorError(str(exc)) from None
         try:
-            qos = qos_by_name(js_qos, 10)
+            qos = qos_by_name(js_qos, 100)  # deep: joints may come in several streams
         except ValueError as exc:
             raise WatchdogMonitorError(f"parameter 'joint_states_qos': {exc}") from None
         self.monitor = StreamMonitor(limits, config)
