@@ -94,6 +94,15 @@ class TernCell(h.Cell):
             self.driver_process.kill()
             self.driver_process.wait(timeout=10.0)
             raise AssertionError(f"the tern driver did not start (said {first!r})")
+        try:
+            self._start_nodes(folder)
+        except BaseException:
+            self.driver_process.kill()
+            self.driver_process.wait(timeout=10.0)
+            raise
+
+    def _start_nodes(self, folder: Path) -> None:
+        """The nodes of this process; the adapter last."""
         self.probe = h.Probe()
         self.pause_pub = self.probe.create_publisher(Bool, "tern_driver/flange_paused",
                                                      reliable_qos(1))
