@@ -149,3 +149,16 @@ def test_the_adapter_setup_takes_robot_description_and_the_joints_parameter():
     assert "tern_finger_a" in setup.limits_note and "robot_description" in setup.limits_note
     np.testing.assert_array_equal(setup.session.limits.jerk_max,
                                   [v["jerk"] for v in expected(TERN, TERN_DYN).values()])
+
+
+@pytest.mark.parametrize("joint, words", [
+    ('<joint name="tern_rail_slide" type="fixed"><parent link="world"/>'
+     '<child link="tern_rail_bed"/></joint>', "joint 'tern_rail_slide' is defined twice"),
+    ('<joint type="fixed"><parent link="world"/><child link="tern_rail_bed"/></joint>',
+     "a <joint> .* has no name"),
+])
+def test_a_malformed_joint_list_is_refused(joint, words):
+    # joint names are unique within a robot (URDF specification, from memory)
+    text = RAIL.read_text().replace("</robot>", joint + "</robot>")
+    with pytest.raises(LimitsError, match=words):
+        JointLimits.from_urdf_string(text, DATA / "tern_rail.limits.yaml", source="rail")

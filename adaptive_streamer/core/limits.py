@@ -245,8 +245,14 @@ class JointLimits:
         dyn, dyn_source = _dynamics_mapping(dynamics, source)
         movable: dict[str, dict[str, Any]] = {}
         mimic: list[str] = []
+        seen: set[str] = set()
         for joint in root.findall("joint"):
             kind, name = joint.get("type", ""), joint.get("name", "")
+            if not name:
+                raise LimitsError(f"{source}: a <joint> (type '{kind}') has no name")
+            if name in seen:
+                raise LimitsError(f"{source}: joint '{name}' is defined twice")
+            seen.add(name)
             if kind in ("fixed", "floating", "planar"):
                 continue
             if kind not in ("revolute", "continuous", "prismatic"):
