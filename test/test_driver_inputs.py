@@ -124,9 +124,6 @@ class TernCell(h.Cell):
             Parameter("stream_rate", value=h.RATE),
             Parameter("decision_period", value=h.PERIOD),
             Parameter("watchdog.joint_states_timeout", value=0.3),
-            # the merged state carries the oldest joint's stamp (the 50 Hz flange): the
-            # arm joints are compared with the command up to one flange period earlier
-            Parameter("watchdog.following_error", value=0.15),
             # what is checked here is the inputs, not the timing: a late decision brakes (the
             # stream check below still holds) but should not end the run on a loaded machine,
             # nor should the lag behind the reference that the braking leaves

@@ -36,7 +36,8 @@ def test_subsets_merge_in_the_adapter_order_once_every_joint_was_seen():
     s = m.state()
     assert s.position.tolist() == [1.0, 2.0, 3.0, 4.0]
     assert s.velocity is None                    # empty velocity arrays
-    assert s.received == 10.001 and s.stamp == 10.0   # the oldest joint counts
+    assert s.received == 10.001                  # the oldest joint counts
+    assert s.stamps.tolist() == [10.0, 10.0, 10.0, 10.004]   # each joint's message
 
 
 def test_a_stale_subset_makes_the_state_stale():
@@ -46,7 +47,7 @@ def test_a_stale_subset_makes_the_state_stale():
         t = 1.0 + 0.002 * (k + 1)
         m.add(js(ARM[:3], [k, k, k], [0.0] * 3, stamp=t), received=t)
     s = m.state()
-    assert s.received == 1.0 and s.stamp == 1.0  # unstamped wrist: its receive time
+    assert s.received == 1.0 and s.stamps[3] == 1.0  # unstamped wrist: its receive time
     assert s.position[:3].tolist() == [49.0] * 3 and s.position[3] == 0.5
 
 
@@ -113,7 +114,8 @@ def test_the_fast_cdr_decoder_reads_what_rclpy_deserializes():
         fast.add(m, received=10.0 + i)
     a, b = ref.state(), fast.state()
     assert a.position.tobytes() == b.position.tobytes() and a.velocity is b.velocity is None
-    assert (a.received, a.stamp) == (b.received, b.stamp) == (10.0, 5.25)
+    assert a.received == b.received == 10.0
+    assert a.stamps.tobytes() == b.stamps.tobytes() and a.stamps[0] == 5.25
     assert ref.take_rejected() == fast.take_rejected() == 2
 
 

@@ -4,8 +4,9 @@ A driver may publish the arm at one rate and a wrist or a gripper in messages of
 name joints the adapter does not command, in any order, and leave ``velocity`` empty.
 `JointStateMerger` keeps, per commanded joint, the latest position and velocity and when
 they were received; `JointStateMerger.state` gives them in the adapter's joint order once
-every joint has been seen, with the OLDEST receive time (and header stamp) among the joints,
-so one stale subset makes the whole state stale.
+every joint has been seen, with the OLDEST receive time among the joints, so one stale
+subset makes the whole state stale, and with each joint's measurement time (the stamp of
+the message it came in), so each joint is compared with the command at its own time.
 
 Messages are stored as they come (serialized bytes or ``sensor_msgs/JointState``), the
 latest of each set of names only (`structure_key`; a newer message with the same names
@@ -65,9 +66,9 @@ class MergedJointState:
     """The merged state in the commanded joint order."""
 
     received: float                # oldest receive time among the joints [s]
-    stamp: float                   # oldest stamp among the joints [s]
     position: np.ndarray
     velocity: np.ndarray | None    # None when a joint's velocity is missing
+    stamps: np.ndarray             # per joint: the stamp of the message it came in [s]
 
 
 Decoder = Callable[[Any], JointStateFields]
@@ -227,8 +228,8 @@ class JointStateMerger:
             if self._cached is None and np.all(np.isfinite(self._received)):
                 vel = self._velocity
                 self._cached = MergedJointState(
-                    float(self._received.min()), float(self._stamp.min()),
-                    self._position.copy(), None if np.isnan(vel).any() else vel.copy())
+                    float(self._received.min()), self._position.copy(),
+                    None if np.isnan(vel).any() else vel.copy(), self._stamp.copy())
             return self._cached
 
     def take_rejected(self) -> int:

@@ -300,7 +300,7 @@ class AdapterNode(LifecycleNode):
                 "activate refused: no fresh reference/window (none within "
                 f"{ref_timeout * 1e3:.0f} ms); is the reference server running?")
             return TransitionCallbackReturn.FAILURE
-        _, stamp, positions, velocities = js
+        _, _, positions, velocities = js
         still = float(self._param("activation_velocity"))
         if velocities is not None and np.max(np.abs(velocities)) > still:
             i = int(np.argmax(np.abs(velocities)))
@@ -412,15 +412,15 @@ class AdapterNode(LifecycleNode):
         if merger is not None:
             merger.add(data, now_sec(self))
 
-    def _joint_state(self) -> tuple[float, float, np.ndarray, np.ndarray | None] | None:
-        """Merged joint state: (oldest received, oldest stamp, positions, velocities) in
+    def _joint_state(self) -> tuple[float, np.ndarray, np.ndarray, np.ndarray | None] | None:
+        """Merged joint state: (oldest received, stamp per joint, positions, velocities) in
         joint order; None until every joint has been seen."""
         merger = self._js_merger
         if merger is None:
             return None
         js = merger.state()
         self._counters["bad_joint_states"] += merger.take_rejected()
-        return None if js is None else (js.received, js.stamp, js.position, js.velocity)
+        return None if js is None else (js.received, js.stamps, js.position, js.velocity)
 
     def _on_window(self, msg: JointTrajectory) -> None:
         self._latest["window"] = (now_sec(self), msg)

@@ -113,9 +113,9 @@ class InputRebuilder:
         except (ValueError, MessageError):
             return rx, None
 
-    def _latest_joint(self, now_ns: int) -> tuple[float, float, np.ndarray] | None:
+    def _latest_joint(self, now_ns: int) -> tuple[float, np.ndarray, np.ndarray] | None:
         """As the node: every joint_states message received by ``now_ns`` merged per joint
-        (received, stamp, positions); None until every joint was seen."""
+        (oldest received, stamp per joint, positions); None until every joint was seen."""
         i = self.joint_states.latest(now_ns)
         if i < self._joint_last:  # asked for an earlier time: merge again from the start
             self._merger = JointStateMerger(self.joints, decode=self._joint_decode)
@@ -125,7 +125,7 @@ class InputRebuilder:
         self._joint_last = i
         js = self._merger.state()
         self.bad_joint_states += self._merger.take_rejected()
-        return None if js is None else (js.received, js.stamp, js.position)
+        return None if js is None else (js.received, js.stamps, js.position)
 
     def _assemble(self, wi: int | None, fi: int | None, now_ns: int) -> SessionInputs:
         window, window_rx = None, None
