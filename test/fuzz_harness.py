@@ -604,7 +604,8 @@ def joint_state_fields(spec: dict[str, Any], names: list[str], pos: list[float],
     """(names, positions, velocities, expected to be refused) of a mutated joint state.
 
     Refused (by the adapter's own rule, read independently here): a joint of the adapter
-    missing from ``name``, or its position missing or not finite."""
+    named in ``name`` whose position is missing or not finite. A message without some of
+    the adapter's joints is not refused (drivers send joints in several messages)."""
     names, pos, vel = list(names), list(pos), list(vel)
     j = spec["joint"] % len(names)
     form = spec["names"]
@@ -634,9 +635,8 @@ def joint_state_fields(spec: dict[str, Any], names: list[str], pos: list[float],
     index = {}
     for i, name in enumerate(names):
         index.setdefault(name, i)
-    refused = any(name not in index for name in JOINTS) or any(
-        index[name] >= len(pos) or not math.isfinite(pos[index[name]]) for name in JOINTS
-        if name in index)
+    refused = any(index[name] >= len(pos) or not math.isfinite(pos[index[name]])
+                  for name in JOINTS if name in index)
     return names, pos, vel, refused
 
 

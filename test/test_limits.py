@@ -101,5 +101,9 @@ def test_urdf_without_dynamics_is_refused_clearly(tmp_path):
     with pytest.raises(LimitsError, match="a URDF has no acceleration/jerk limits"):
         JointLimits.from_file(tmp_path / "cell.urdf")
     (tmp_path / "cell.limits.yaml").write_text("joints:\n  j1: {acceleration: 6, jerk: 60}\n")
+    # a joint the limits YAML does not name is left out (and said so) ...
+    lim = JointLimits.from_file(tmp_path / "cell.urdf")
+    assert lim.names == ("j1",) and "['j2']" in lim.left_out
+    # ... unless it is selected explicitly: then its acceleration and jerk are required
     with pytest.raises(LimitsError, match="joint 'j2' .* is missing"):
-        JointLimits.from_file(tmp_path / "cell.urdf")
+        JointLimits.from_file(tmp_path / "cell.urdf", joints=["j1", "j2"])

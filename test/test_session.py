@@ -10,6 +10,7 @@ the shadow plan, limit_scale changes. Committed segments are checked with test/o
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
@@ -232,3 +233,22 @@ def test_stop_request_and_reset_reapproach():
     emu.playback.resume(emu.clock.time_of(emu.i))
     emu.run(1.5)
     assert emu.s.mode == "following" and emu.worst_violation() <= TOL
+
+
+def test_joints_measured_at_different_times_are_each_compared_at_their_own_time():
+    """joint_states in two messages (the last joint 0.1 s older): an ideal driver exactly
+    LATENCY behind for each joint's own stamp has no following error; comparing every
+    joint at the oldest stamp would see the others' motion over 0.1 s."""
+    emu = Emulator(session(following_error=0.01))
+    emu.run(1.5)
+    assert emu.s.mode == "following" and emu.s.watchdog.trip is None
+    now = emu.clock.time_of(emu.i)
+    stamps = np.full(N, now)
+    stamps[-1] = now - 0.1
+    pos = emu.s.commanded_at(now - LATENCY).position.copy()
+    pos[-1] = emu.s.commanded_at(stamps[-1] - LATENCY).position[-1]
+    base = emu.inputs(now)
+    apart = dataclasses.replace(base, joint_positions=pos, joint_stamp=stamps)
+    assert emu.s.input_faults(now, apart, False) == []
+    oldest = dataclasses.replace(apart, joint_stamp=float(stamps.min()))
+    assert [k for k, _ in emu.s.input_faults(now, oldest, False)] == ["following_error"]

@@ -50,6 +50,7 @@ class SessionSetup:
     rate: float
     policy_label: str
     params: dict[str, Any] = field(default_factory=dict)
+    limits_note: str = ""  # URDF joints left out of the limits (one line; '' when none)
 
     @property
     def joints(self) -> tuple[str, ...]:
@@ -69,17 +70,15 @@ def _get(params: Mapping[str, Any], name: str) -> Any:
 def _limits(params: Mapping[str, Any], robot_description: str | None) -> JointLimits:
     path = _get(params, "limits_file")
     dyn = _get(params, "limits_dynamics") or None
-    if path:
-        limits = JointLimits.from_file(path, dyn)
-    else:
-        if robot_description is None:
-            raise SetupError("limits_file is empty and no robot_description was received")
-        if not dyn:
-            raise SetupError("limits from robot_description need limits_dynamics (a limits "
-                             "YAML with acceleration and jerk)")
-        limits = JointLimits.from_urdf_string(robot_description, dyn)
     joints = [j for j in _get(params, "joints") if j]
-    return limits.subset(joints) if joints else limits
+    if path:
+        return JointLimits.from_file(path, dyn, joints=joints)
+    if robot_description is None:
+        raise SetupError("limits_file is empty and no robot_description was received")
+    if not dyn:
+        raise SetupError("limits from robot_description need limits_dynamics (a limits "
+                         "YAML with acceleration and jerk)")
+    return JointLimits.from_urdf_string(robot_description, dyn, joints=joints)
 
 
 def build_session(params: Mapping[str, Any], policy: str | None = None,
@@ -127,4 +126,4 @@ def build_session(params: Mapping[str, Any], policy: str | None = None,
     except (ValueError, TypeError, RuntimeError) as exc:  # Limits/Policy/Card/Watchdog errors
         raise SetupError(str(exc)) from None
     parser = FeedbackParser(running.features) if running.features else None
-    return SessionSetup(session, running, parser, rate, label, dict(params))
+    return SessionSetup(session, running, parser, rate, label, dict(params), limits.left_out)

@@ -9,8 +9,10 @@ error names the joint and the field. Limits are read from the project's own YAML
       j7: {position: null, continuous: true, velocity: 3.0, acceleration: 10.0, jerk: 100.0}
 
 or from a URDF (``<limit lower upper velocity>``; a ``continuous`` joint has no position
-limits) with acceleration and jerk taken from a limits YAML beside it (same stem,
-``.limits.yaml``; or passed explicitly). The YAML may also tighten a URDF value.
+limits; a ``prismatic`` joint is in m, m/s, ...) with acceleration and jerk taken from a
+limits YAML beside it (same stem, ``.limits.yaml``; or passed explicitly). The YAML may also
+tighten a URDF value. Of a URDF, the joints the YAML names (or an explicit selection) are
+used; mimic and fixed joints never.
 """
 from __future__ import annotations
 
@@ -18,7 +20,7 @@ import math
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any, ClassVar, Iterable, Mapping, Sequence
 
 import numpy as np
 import yaml
@@ -52,6 +54,8 @@ class JointLimits:
     acceleration_max: np.ndarray
     jerk_max: np.ndarray
     continuous: np.ndarray
+    #: one line on the URDF joints the loading left out ('' when none; see `from_urdf_string`)
+    left_out: ClassVar[str] = ""
 
     def __init__(
         self,
@@ -191,10 +195,12 @@ class JointLimits:
             raise LimitsError(f"{source}: {exc}") from None
 
     @classmethod
-    def from_file(cls, path: str | Path, dynamics: str | Path | None = None) -> "JointLimits":
+    def from_file(cls, path: str | Path, dynamics: str | Path | None = None,
+                  joints: Sequence[str] | None = None) -> "JointLimits":
         """Read the own limits YAML, or a URDF plus a limits YAML for acceleration/jerk.
 
-        For a URDF, ``dynamics`` defaults to ``<stem>.limits.yaml`` beside the URDF.
+        For a URDF, ``dynamics`` defaults to ``<stem>.limits.yaml`` beside the URDF (see
+        `from_urdf_string`). ``joints`` (non-empty) selects and orders the joints.
         """
         path = Path(path)
         try:
@@ -206,82 +212,162 @@ class JointLimits:
                               f"{exc.start})") from None
         if path.suffix.lower() in (".urdf", ".xml") or text.lstrip().startswith("<"):
             dyn = Path(dynamics) if dynamics else path.with_name(path.stem + ".limits.yaml")
-            return cls.from_urdf_string(text, dyn, source=str(path))
+            return cls.from_urdf_string(text, dyn, source=str(path), joints=joints)
         try:
             data = yaml.safe_load(text)
         except yaml.YAMLError as exc:
             raise LimitsError(f"{path}: not valid YAML: {exc}") from None
-        return cls.from_mapping(data, source=str(path))
+        limits = cls.from_mapping(data, source=str(path))
+        if not joints:
+            return limits
+        try:
+            return limits.subset(joints)
+        except LimitsError as exc:
+            raise LimitsError(f"{path}: {exc}") from None
 
     @classmethod
     def from_urdf_string(cls, urdf: str, dynamics: str | Path | Mapping[str, Any],
-                         source: str = "robot_description") -> "JointLimits":
-        """Limits of the movable joints of a URDF; acceleration/jerk from ``dynamics``.
+                         source: str = "robot_description",
+                         joints: Sequence[str] | None = None) -> "JointLimits":
+        """Limits of the commandable joints of a URDF; acceleration/jerk from ``dynamics``.
 
-        ``dynamics`` is a limits YAML path or its parsed mapping; it must name every
-        movable joint with ``acceleration`` and ``jerk`` and may tighten position/velocity.
+        ``dynamics`` is a limits YAML path or its parsed mapping (``joints:`` name ->
+        acceleration, jerk, optionally a tighter position/velocity). Only ``<joint>``
+        elements directly under ``<robot>`` are joints (``<transmission>`` and control
+        blocks hold ``<joint>`` references too); fixed, floating, planar and ``<mimic>``
+        joints are never commanded and are skipped. Without ``joints`` the result holds, in
+        URDF order, the movable joints that ``dynamics`` names; with ``joints`` exactly
+        those, in that order (each must be a movable joint of the URDF and be named in
+        ``dynamics``). What was left out is described in `left_out` (one line, '' when
+        nothing).
         """
-        try:
-            root = ET.fromstring(urdf)
-        except ET.ParseError as exc:
-            raise LimitsError(f"{source}: not valid URDF XML: {exc}") from None
-        if isinstance(dynamics, Mapping):
-            dyn, dyn_source = dynamics, "dynamics mapping"
-        else:
-            dyn_source = str(dynamics)
-            try:
-                dyn = yaml.safe_load(Path(dynamics).read_text())
-            except OSError as exc:
-                raise LimitsError(
-                    f"{source}: a URDF has no acceleration/jerk limits; cannot read the limits "
-                    f"YAML '{dynamics}' beside it: {exc.strerror}") from None
-            except yaml.YAMLError as exc:
-                raise LimitsError(f"{dynamics}: not valid YAML: {exc}") from None
-            except UnicodeDecodeError as exc:
-                raise LimitsError(f"{dynamics}: not a UTF-8 text file ({exc.reason} at byte "
-                                  f"{exc.start})") from None
-        if not isinstance(dyn, Mapping) or not isinstance(dyn.get("joints"), Mapping):
-            raise LimitsError(f"{dyn_source}: expected a top-level 'joints:' mapping")
-        names, rows = [], []
-        for joint in root.iter("joint"):
+        root = _urdf_root(urdf, source)
+        dyn, dyn_source = _dynamics_mapping(dynamics, source)
+        movable: dict[str, dict[str, Any]] = {}
+        mimic: list[str] = []
+        seen: set[str] = set()
+        for joint in root.findall("joint"):
             kind, name = joint.get("type", ""), joint.get("name", "")
+            if not name:
+                raise LimitsError(f"{source}: a <joint> (type '{kind}') has no name")
+            if name in seen:
+                raise LimitsError(f"{source}: joint '{name}' is defined twice")
+            seen.add(name)
             if kind in ("fixed", "floating", "planar"):
                 continue
             if kind not in ("revolute", "continuous", "prismatic"):
-                raise LimitsError(f"{source}: joint '{name}' has unknown type '{kind}'")
-            lim = joint.find("limit")
-            if lim is None or lim.get("velocity") is None:
-                raise LimitsError(f"{source}: joint '{name}' has no <limit velocity=...>")
-            entry: dict[str, Any] = {"velocity": lim.get("velocity")}
-            if kind == "continuous":
-                entry["position"], entry["continuous"] = None, True
-            else:
-                if lim.get("lower") is None or lim.get("upper") is None:
-                    raise LimitsError(f"{source}: joint '{name}' ({kind}) needs lower and upper limits")
-                entry["position"] = [lim.get("lower"), lim.get("upper")]
+                raise LimitsError(f"{source}: joint '{name}' has unknown type '{kind}' "
+                                  "(expected revolute, continuous, prismatic, fixed, floating "
+                                  "or planar)")
+            if joint.find("mimic") is not None:
+                mimic.append(name)
+                continue
+            movable[name] = _urdf_entry(source, name, kind, joint.find("limit"))
+        if not movable:
+            raise LimitsError(f"{source}: no movable joints found (mimic joints: {mimic})"
+                              if mimic else f"{source}: no movable joints found")
+        selection = [j for j in joints or () if j]
+        if selection:
+            for name in selection:
+                if name in mimic:
+                    raise LimitsError(f"{source}: joint '{name}' is a mimic joint (it follows "
+                                      "another joint and is never commanded); movable joints: "
+                                      f"{list(movable)}")
+                if name not in movable:
+                    raise LimitsError(f"{source}: has no movable joint '{name}'; movable "
+                                      f"joints: {list(movable)}")
+            names = selection
+        else:
+            names = [n for n in movable if isinstance(dyn["joints"].get(n), Mapping)]
+            if not names:
+                raise LimitsError(f"{dyn_source}: names none of the movable joints of "
+                                  f"{source} {list(movable)}; each needs acceleration and jerk")
+        rows = []
+        for name in names:
             extra = dyn["joints"].get(name)
             if not isinstance(extra, Mapping):
                 raise LimitsError(f"{dyn_source}: joint '{name}' (from {source}) is missing; it "
                                   "needs acceleration and jerk")
-            row = list(_parse_entry(source, name, entry, require_all=False))
-            over = _parse_entry(dyn_source, name, extra, require_all=False)
-            for k in range(5):
-                if not math.isnan(over[k]):
-                    # the YAML may only tighten what the URDF says
-                    row[k] = max(row[k], over[k]) if k == 0 else (
-                        min(row[k], over[k]) if not math.isnan(row[k]) else over[k])
-            names.append(name)
-            rows.append(row)
-        if not names:
-            raise LimitsError(f"{source}: no movable joints found")
-        for name, row in zip(names, rows):
-            for k, field in ((3, "acceleration"), (4, "jerk")):
-                if math.isnan(row[k]):
-                    raise LimitsError(f"{dyn_source}: joint '{name}' needs '{field}'")
+            rows.append(_tightened(source, dyn_source, name, movable[name], extra))
         try:
-            return cls(names, *zip(*[r[:5] for r in rows]), continuous=[r[5] for r in rows])
+            limits = cls(names, *zip(*[r[:5] for r in rows]), continuous=[r[5] for r in rows])
         except LimitsError as exc:
             raise LimitsError(f"{source}: {exc}") from None
+        unused = [n for n in movable if n not in names]
+        parts = []
+        if unused:
+            why = "not in the joint selection" if selection else f"not named in {dyn_source}"
+            parts.append(f"left out movable joints {unused} ({why})")
+        if mimic:
+            parts.append(f"skipped mimic joints {mimic} (never commanded)")
+        if parts:
+            object.__setattr__(limits, "left_out", f"{source}: " + "; ".join(parts))
+        return limits
+
+
+def _urdf_root(urdf: str, source: str) -> ET.Element:
+    try:
+        root = ET.fromstring(urdf)
+    except ET.ParseError as exc:
+        raise LimitsError(f"{source}: not valid URDF XML: {exc}") from None
+    if root.tag != "robot":
+        raise LimitsError(f"{source}: expected a <robot> root element, got <{root.tag}>")
+    return root
+
+
+def _dynamics_mapping(dynamics: str | Path | Mapping[str, Any], source: str
+                      ) -> tuple[Mapping[str, Any], str]:
+    """(parsed limits YAML, its name for messages)."""
+    if isinstance(dynamics, Mapping):
+        dyn, dyn_source = dynamics, "dynamics mapping"
+    else:
+        dyn_source = str(dynamics)
+        try:
+            dyn = yaml.safe_load(Path(dynamics).read_text())
+        except OSError as exc:
+            raise LimitsError(
+                f"{source}: a URDF has no acceleration/jerk limits; cannot read the limits "
+                f"YAML '{dynamics}' beside it: {exc.strerror}") from None
+        except yaml.YAMLError as exc:
+            raise LimitsError(f"{dynamics}: not valid YAML: {exc}") from None
+        except UnicodeDecodeError as exc:
+            raise LimitsError(f"{dynamics}: not a UTF-8 text file ({exc.reason} at byte "
+                              f"{exc.start})") from None
+    if not isinstance(dyn, Mapping) or not isinstance(dyn.get("joints"), Mapping):
+        raise LimitsError(f"{dyn_source}: expected a top-level 'joints:' mapping")
+    return dyn, dyn_source
+
+
+def _urdf_entry(source: str, name: str, kind: str, lim: ET.Element | None) -> dict[str, Any]:
+    """The own-YAML entry of one movable URDF joint (position range and velocity)."""
+    if kind == "continuous":
+        # a continuous joint has no position range; its <limit> (velocity) is optional
+        entry: dict[str, Any] = {"position": None, "continuous": True}
+        if lim is not None and lim.get("velocity") is not None:
+            entry["velocity"] = lim.get("velocity")
+        return entry
+    if lim is None or lim.get("velocity") is None:
+        raise LimitsError(f"{source}: joint '{name}' ({kind}) has no <limit velocity=...>")
+    if lim.get("lower") is None or lim.get("upper") is None:
+        raise LimitsError(f"{source}: joint '{name}' ({kind}) needs lower and upper limits")
+    return {"velocity": lim.get("velocity"), "position": [lim.get("lower"), lim.get("upper")]}
+
+
+def _tightened(source: str, dyn_source: str, name: str, entry: Mapping[str, Any],
+               extra: Mapping[str, Any]) -> list:
+    """URDF row with the limits YAML's values; the YAML may only tighten the URDF."""
+    row = list(_parse_entry(source, name, entry, require_all=False))
+    over = _parse_entry(dyn_source, name, extra, require_all=False)
+    for k in range(5):
+        if not math.isnan(over[k]):
+            row[k] = max(row[k], over[k]) if k == 0 else (
+                min(row[k], over[k]) if not math.isnan(row[k]) else over[k])
+    for k, field in ((2, "velocity"), (3, "acceleration"), (4, "jerk")):
+        if math.isnan(row[k]):
+            where = (f"{source} gives no <limit velocity> and {dyn_source}"
+                     if field == "velocity" else dyn_source)
+            raise LimitsError(f"{where}: joint '{name}' needs '{field}'")
+    return row
 
 
 def _number(source: str, joint: str, field: str, value: Any) -> float:

@@ -80,9 +80,13 @@ class StreamMonitor:
             self._positions.append(np.array(sp.position, float))
         return reason
 
-    def joint_state(self, stamp: float, positions: np.ndarray) -> str | None:
+    def joint_state(self, stamp: float, positions: np.ndarray,
+                    present: np.ndarray | None = None) -> str | None:
         """Compare measured ``positions`` taken at ``stamp`` with the command
-        ``command_latency`` earlier; the reason when over ``following_error`` (counted)."""
+        ``command_latency`` earlier; the reason when over ``following_error`` (counted).
+
+        ``present`` (bool per joint) limits the comparison to the joints a message carried
+        (a driver may send the joints in several messages)."""
         positions = np.asarray(positions, float)
         if positions.shape != (self._n,):
             raise MonitorError(f"joint state must hold {self._n} positions (joints "
@@ -92,6 +96,8 @@ class StreamMonitor:
         if commanded is None:
             return None
         self.stats.judged += 1
+        if present is not None:
+            positions = np.where(present, positions, commanded)
         err, reason = self.watchdog.following(positions, commanded)
         self.stats.following_error_max = max(self.stats.following_error_max, err)
         if reason is not None:

@@ -47,7 +47,8 @@ class SessionInputs:
     feedback: FeatureVector | None
     feedback_valid_since: float | None  # last time every needed feature was valid
     joint_positions: np.ndarray | None
-    joint_stamp: float | None           # when the measured positions were taken
+    joint_stamp: float | np.ndarray | None  # when the measured positions were taken
+                                            # (one per joint when they came apart)
     joint_received: float | None
 
 
@@ -256,12 +257,29 @@ class StreamingSession:
             feedback_needed=needs_feedback)
         faults = self.watchdog.stale_inputs(ages)
         if inputs.joint_positions is not None and inputs.joint_stamp is not None:
-            cmd = self.commanded_at(inputs.joint_stamp - self.watchdog.config.command_latency)
+            cmd = self._commanded_before(inputs.joint_stamp)
             if cmd is not None:
-                _, reason = self.watchdog.following(inputs.joint_positions, cmd.position)
+                _, reason = self.watchdog.following(inputs.joint_positions, cmd)
                 if reason is not None:
                     faults.append(("following_error", reason))
         return faults
+
+    def _commanded_before(self, stamps: float | np.ndarray) -> np.ndarray | None:
+        """Commanded positions ``command_latency`` before the measurement time of each
+        joint (one stamp for all, or one per joint); None when one is outside the plan."""
+        latency = self.watchdog.config.command_latency
+        if np.ndim(stamps) == 0:
+            cmd = self.commanded_at(float(stamps) - latency)
+            return None if cmd is None else cmd.position
+        stamps = np.asarray(stamps, float)
+        out = np.empty(stamps.shape)
+        for stamp in np.unique(stamps):   # one per message the joints came in
+            cmd = self.commanded_at(float(stamp) - latency)
+            if cmd is None:
+                return None
+            mask = stamps == stamp
+            out[mask] = cmd.position[mask]
+        return out
 
     def decide(self, now: float, inputs: SessionInputs) -> Decision | None:
         """Input checks and one decision cycle; returns the decision if it was committed.

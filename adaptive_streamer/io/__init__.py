@@ -6,6 +6,8 @@ module                      holds
 ==========================  =========================================================
 ``stamps``                  builtin_interfaces/Time <-> float seconds
 ``trajectory_conversions``  JointTrajectory <-> reference windows and samples
+``joint_states``            joint_states sent in several messages, merged per joint
+``adapter_inputs``          the adapter's latest window and feedback, converted on demand
 ``field_paths``             compiled field paths into any message type (sensor bridge)
 ``params_files``            a node's section of a standard ROS 2 params file
 ``reference_bags``          references from rosbag2 topics; `load_reference` for any file

@@ -1,7 +1,7 @@
 """Bag bytes -> the values the adapter node takes from its messages.
 
 * `WindowReader`: ``reference/window`` (JointTrajectory) -> core `Window`, the same arrays
-  ``nodes.trajectory_conversions.msg_to_window`` gives (it is called for every new layout,
+  ``io.trajectory_conversions.msg_to_window`` gives (it is called for every new layout,
   so errors are the node's; later messages of that layout are gathered with `fast_cdr`
   after a bit-for-bit check on the first one).
 * `JointStateReader`: JointState -> names, position, velocity, stamp (``joint_states`` and

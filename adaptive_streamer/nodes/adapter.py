@@ -32,7 +32,6 @@ from rcl_interfaces.msg import SetParametersResult
 from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
 from rclpy.parameter import Parameter
-from rclpy.serialization import deserialize_message
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension, String
 from std_srvs.srv import Trigger
@@ -47,16 +46,17 @@ from adaptive_streamer.core.policies import load_policy
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import StreamClock
+from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 
 from . import common
 from ..io.adapter_inputs import LatestInputs
-from ..io.stamps import stamp_to_sec
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name
 from .driver_outputs import DriverOutput, fill_setpoint, setpoint_message
 from .stream_thread import StreamThread
 from .threads import make_executor, prepare_process, set_thread_priority
 
 LEVELS = {StatusLevel.OK: OK, StatusLevel.WARN: WARN, StatusLevel.ERROR: ERROR}
+JOINT_STATES_DEPTH = 100  # joint_states messages queued (0.2 s at 500 Hz)
 
 
 class AdapterNode(LifecycleNode):
@@ -86,6 +86,7 @@ class AdapterNode(LifecycleNode):
         self.add_on_set_parameters_callback(self._on_set_parameters)
         self._diag = common.DiagnosticsReporter(self, "adapter", values=self._diag_values)
         self._robot_description: str | None = None
+        self._js_merger: JointStateMerger | None = None
         self.create_subscription(String, "robot_description", self._on_robot_description,
                                  common.reliable_qos(1, transient_local=True),
                                  callback_group=self._io_group)
@@ -234,10 +235,13 @@ class AdapterNode(LifecycleNode):
     def _configure(self) -> None:
         params = {n: self._param(n) for n in DEFAULTS}
         setup = build_session(params, robot_description=self._robot_description)
+        if setup.limits_note:
+            self.get_logger().info(setup.limits_note)
         self.session, self._running = setup.session, setup.running
         card, rate = params["policy"], setup.rate
         self._set_internal("policy_active", card)
         self._joints = list(self._running.joints)
+        self._js_merger = JointStateMerger(self._joints, decode=cdr_decoder())
         self._rate = rate
         self._latest_inputs = LatestInputs(self._joints, setup.parser)
         self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
@@ -255,8 +259,11 @@ class AdapterNode(LifecycleNode):
         self._decision_msg = Float64MultiArray()
         self._decision_msg.layout.dim = [MultiArrayDimension(label=decision_record.LABEL)]
         self._subs = [
+            # deep: a driver may send its joints in several streams on the topic, and a
+            # message of a slow stream must not be dropped behind a fast one
             self.create_subscription(JointState, "joint_states", self._on_joint_states,
-                                     qos_by_name(self._param("joint_states_qos"), 5),
+                                     qos_by_name(self._param("joint_states_qos"),
+                                                 JOINT_STATES_DEPTH),
                                      callback_group=self._io_group, raw=True),
             self.create_subscription(JointTrajectory, "reference/window", self._on_window,
                                      common.reliable_qos(5), callback_group=self._io_group),
@@ -365,6 +372,7 @@ class AdapterNode(LifecycleNode):
         self._outputs, self._subs, self._adapter_services = [], [], []
         self._latest.clear()
         self._latest_inputs = None
+        self._js_merger = None
         self.session = None
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
@@ -378,33 +386,20 @@ class AdapterNode(LifecycleNode):
         self._robot_description = msg.data
 
     def _on_joint_states(self, data: bytes) -> None:
-        """Store the raw message (parsed only when a decision needs it, see `_joint_state`)."""
-        self._latest["joint_states_raw"] = (now_sec(self), data)
+        """Store the raw message (merged with the others when a decision needs it)."""
+        merger = self._js_merger
+        if merger is not None:
+            merger.add(data, now_sec(self))
 
-    def _joint_state(self) -> tuple[float, float, np.ndarray, np.ndarray | None] | None:
-        """Latest joint state: (received, stamp, positions, velocities) in joint order."""
-        raw = self._latest.get("joint_states_raw")
-        cached = self._latest.get("joint_states")
-        if raw is None or (cached is not None and cached[0] == raw[0]):
-            return cached
-        rx, data = raw
-        try:
-            msg = deserialize_message(data, JointState)
-            names = list(msg.name)
-            idx = [names.index(j) for j in self._joints]
-            pos = np.asarray(msg.position, float)[idx]
-            vel = (np.asarray(msg.velocity, float)[idx] if len(msg.velocity) == len(names)
-                   else None)
-            if not np.all(np.isfinite(pos)):
-                raise ValueError("non-finite position")
-            stamp = stamp_to_sec(msg.header.stamp)
-        except (ValueError, IndexError, TypeError):
-            self._counters["bad_joint_states"] += 1
-            self._latest["joint_states_raw"] = None
-            return self._latest.get("joint_states")
-        parsed = (rx, stamp if stamp > 0 else rx, pos, vel)
-        self._latest["joint_states"] = parsed
-        return parsed
+    def _joint_state(self) -> tuple[float, np.ndarray, np.ndarray, np.ndarray | None] | None:
+        """Merged joint state: (oldest received, stamp per joint, positions, velocities) in
+        joint order; None until every joint has been seen."""
+        merger = self._js_merger
+        if merger is None:
+            return None
+        js = merger.state()
+        self._counters["bad_joint_states"] += merger.take_rejected()
+        return None if js is None else (js.received, js.stamps, js.position, js.velocity)
 
     def _on_window(self, msg: JointTrajectory) -> None:
         latest = self._latest_inputs

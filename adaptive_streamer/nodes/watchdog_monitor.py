@@ -1,7 +1,8 @@
 """Node ``watchdog``: watches the adapter's output from outside.
 
 Subscribes ``setpoints`` (the adapter's one-point JointTrajectory stream) and
-``joint_states`` (the driver's measurement) and checks them with
+``joint_states`` (the driver's measurement; each message judged on the joints it carries)
+and checks them with
 `adaptive_streamer.core.monitor.StreamMonitor`: every setpoint against the limits and for
 continuity with the previous one, every joint state against the command
 ``command_latency`` earlier (``following_error``). Findings go to ``/diagnostics`` (status
@@ -34,6 +35,7 @@ from adaptive_streamer.core.limits import JointLimits, LimitsError
 from adaptive_streamer.core.monitor import StreamMonitor
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.watchdog import WatchdogConfig, WatchdogError
+from adaptive_streamer.io.joint_states import JointStateError, joint_positions
 
 from .common import (ERROR, OK, DiagnosticsReporter, SetupNode, declare, qos_by_name,
                      reliable_qos, run_nodes)
@@ -72,13 +74,15 @@ class WatchdogMonitor(SetupNode):
             limits = JointLimits.from_file(limits_file, dynamics or None)
         except LimitsError as exc:
             raise WatchdogMonitorError(f"parameter 'limits_file': {exc}") from None
+        if limits.left_out:
+            self.get_logger().info(limits.left_out)
         try:
             config = WatchdogConfig(following_error=float(following),
                                     command_latency=float(latency))
         except WatchdogError as exc:
             raise WatchdogMonitorError(str(exc)) from None
         try:
-            qos = qos_by_name(js_qos, 10)
+            qos = qos_by_name(js_qos, 100)  # deep: joints may come in several streams
         except ValueError as exc:
             raise WatchdogMonitorError(f"parameter 'joint_states_qos': {exc}") from None
         self.monitor = StreamMonitor(limits, config)
@@ -127,12 +131,13 @@ class WatchdogMonitor(SetupNode):
 
     def _on_joint_state(self, msg: JointState) -> None:
         try:
-            idx = self._index(list(msg.name))
-            positions = np.asarray(msg.position, float)[idx]
-        except (ValueError, IndexError) as exc:
+            got = joint_positions(msg, self._joints)
+        except JointStateError as exc:
             self._bad(f"joint_states: {exc}")
             return
-        reason = self.monitor.joint_state(stamp_to_sec(msg.header.stamp), positions)
+        if not got.present.any():  # e.g. a message of the gripper alone
+            return
+        reason = self.monitor.joint_state(got.stamp, got.position, got.present)
         if reason is not None:
             self._violation(f"following: {reason}")
 

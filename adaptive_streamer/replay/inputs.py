@@ -1,9 +1,10 @@
 """Rebuild the adapter's `SessionInputs` of each decision cycle from a bag.
 
-The live node (``nodes/adapter.py``) keeps the latest ``reference/window``, ``feedback``
-and ``joint_states`` message with its receive time and, at each decision, converts them
-(`AdapterNode._inputs`; a joint state that cannot be used leaves the one parsed before in
-use). `InputRebuilder` does the same conversions on bag messages,
+The live node (``nodes/adapter.py``) keeps the latest ``reference/window`` and ``feedback``
+message with its receive time, merges the ``joint_states`` messages per joint
+(`adaptive_streamer.io.joint_states.JointStateMerger`; a message that cannot be used is
+skipped) and, at each decision, converts them (`AdapterNode._inputs`). `InputRebuilder`
+does the same conversions on bag messages (with the same merger),
 with the bag's receive times (the recorder's clock, the same ROS time) standing in for the
 node's:
 
@@ -27,6 +28,7 @@ import numpy as np
 from adaptive_streamer.core.feedback import FeatureVector, FeedbackParser
 from adaptive_streamer.core.playback import Window
 from adaptive_streamer.core.session import SessionInputs, feedback_valid_since
+from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 from adaptive_streamer.io.trajectory_conversions import TrajectoryMessageError
 
 from ..io.bag_io import TopicData
@@ -81,9 +83,9 @@ class InputRebuilder:
         self._window_reader = WindowReader(self.joints)
         self._state_reader = JointStateReader()
         self._window_cache: tuple[int, Window | None] = (-1, None)
-        self._joint_index: dict[tuple[str, ...], list[int]] = {}
+        self._joint_decode = cdr_decoder()
+        self._merger = JointStateMerger(self.joints, decode=self._joint_decode)
         self._joint_last = -1
-        self._joint_current: tuple[float, float, np.ndarray] | None = None
         self.valid_since: float | None = None
         self.bad_windows = 0
         self.bad_joint_states = 0
@@ -103,25 +105,6 @@ class InputRebuilder:
         self._window_cache = (i, w)
         return w
 
-    def _joint(self, i: int) -> tuple[float, float, np.ndarray] | None:
-        """(receive time, stamp, positions) as the node stores a joint state; None if bad."""
-        rx = int(self.joint_states.times[i]) * NS
-        out: tuple[float, float, np.ndarray] | None
-        try:
-            names, position, _, sec, nsec = self._state_reader.read(self.joint_states.raw[i])
-            idx = self._joint_index.get(names)
-            if idx is None:
-                idx = self._joint_index[names] = [list(names).index(j) for j in self.joints]
-            pos = np.asarray(position, float)[idx]
-            if not np.all(np.isfinite(pos)):
-                raise ValueError("non-finite position")
-            stamp = sec + nsec * 1e-9
-            out = (rx, stamp if stamp > 0 else rx, pos)
-        except (ValueError, IndexError, MessageError):
-            self.bad_joint_states += 1
-            out = None
-        return out
-
     def _feedback(self, parser: FeedbackParser, i: int) -> tuple[float, FeatureVector | None]:
         rx = int(self.feedback.times[i]) * NS
         try:
@@ -130,17 +113,19 @@ class InputRebuilder:
         except (ValueError, MessageError):
             return rx, None
 
-    def _latest_joint(self, now_ns: int) -> tuple[float, float, np.ndarray] | None:
-        """As the node: the latest message is parsed when a decision needs it; if it is
-        bad, the joint state parsed before stays in use."""
+    def _latest_joint(self, now_ns: int) -> tuple[float, np.ndarray, np.ndarray] | None:
+        """As the node: every joint_states message received by ``now_ns`` merged per joint
+        (oldest received, stamp per joint, positions); None until every joint was seen."""
         i = self.joint_states.latest(now_ns)
-        if i < 0 or i == self._joint_last:
-            return self._joint_current
+        if i < self._joint_last:  # asked for an earlier time: merge again from the start
+            self._merger = JointStateMerger(self.joints, decode=self._joint_decode)
+            self._joint_last = -1
+        for k in range(self._joint_last + 1, i + 1):
+            self._merger.add(self.joint_states.raw[k], int(self.joint_states.times[k]) * NS)
         self._joint_last = i
-        js = self._joint(i)
-        if js is not None:
-            self._joint_current = js
-        return self._joint_current
+        js = self._merger.state()
+        self.bad_joint_states += self._merger.take_rejected()
+        return None if js is None else (js.received, js.stamps, js.position)
 
     def _assemble(self, wi: int | None, fi: int | None, now_ns: int) -> SessionInputs:
         window, window_rx = None, None
