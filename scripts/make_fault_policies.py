@@ -15,7 +15,9 @@ centre of the ranges, features 0; `adaptive_streamer.core.policies.neutral_input
   (The arm's own velocity would not do: the edge corrections at rest move the joints as
   fast as the pass does.)
 * ``slow_policy.yaml`` / ``.onnx`` (``--inject slow_policy@S``): the edge model's action
-  plus 0 times the sum of a long computation: a Loop of `SLOW_STEPS` products
+  plus, while the reference moves (the same test), 0 times the sum of a long computation
+  (at rest it is as fast as the edge model, so loading it takes no time): a Loop of
+  `SLOW_STEPS` products
   ``X <- tanh(X W)`` of `SLOW_SIZE` x `SLOW_SIZE` float32 matrices drawn in the graph
   (RandomNormal with fixed seeds, so the file stays small; ``X0`` also depends on the
   observation so nothing can be folded at load). About 2 ``SLOW_SIZE^3`` x `SLOW_STEPS`
@@ -104,12 +106,12 @@ def main(argv: list[str] | None = None) -> int:
                        "limit). Finite while the reference stands\nstill, so it loads and a reset "
                        "probe with the reference paused passes.\nExpected: a policy_fault stop "
                        "as soon as the pass moves."),
-        "slow_policy": (with_slow_loop(edge, layout.size, n),
+        "slow_policy": (with_slow_loop(edge, velocity, layout.size, n),
                         "Fault injection: a policy far slower than the decision period.",
-                        f"The demo edge model plus 0 x a Loop of {SLOW_STEPS} products of "
-                        f"{SLOW_SIZE}x{SLOW_SIZE} matrices\n(about "
-                        f"{2 * SLOW_SIZE ** 3 * SLOW_STEPS / 1e9:.0f} GFLOP per inference). "
-                        "Expected: late decisions, the stream brakes\nin their place, then an "
+                        "The demo edge model plus, while the reference moves, 0 x a Loop of\n"
+                        f"{SLOW_STEPS} products of {SLOW_SIZE}x{SLOW_SIZE} matrices (about "
+                        f"{2 * SLOW_SIZE ** 3 * SLOW_STEPS / 1e9:.0f} GFLOP per inference).\n"
+                        "Expected: late decisions, the stream brakes in their place, then an "
                         "overruns stop."),
     }
     limits = JointLimits.from_file(DEMO / "limits.yaml")

@@ -6,11 +6,13 @@ Two wrappers turn a policy model into a fault (both keep its input and output na
   reference moves (any joint's ``reference_velocity`` row 0, ``v_ref / v_max``, above
   `NAN_THRESHOLD`). Finite while the reference stands still, so the card loads (the load
   test inference is at rest); once the pass moves the cycle sees NaN: a ``policy_fault`` stop.
-* `with_slow_loop`: the model's action plus 0 times the sum of a long computation, a Loop
-  of `SLOW_STEPS` products ``X <- tanh(X W)`` of `SLOW_SIZE` x `SLOW_SIZE` float32 matrices
-  drawn in the graph (RandomNormal with fixed seeds, so the file stays small; ``X0`` also
-  depends on the observation so nothing can be folded at load): late decisions, then an
-  ``overruns`` stop.
+* `with_slow_loop`: the model's action plus, while the reference moves (the same test),
+  0 times the sum of a long computation, a Loop of `SLOW_STEPS` products ``X <- tanh(X W)``
+  of `SLOW_SIZE` x `SLOW_SIZE` float32 matrices drawn in the graph (RandomNormal with fixed
+  seeds, so the file stays small; ``X0`` also depends on the observation so nothing can be
+  folded at load): late decisions, then an ``overruns`` stop. At rest it is as fast as the
+  model, so loading the card (test inference and warm-up runs at rest) takes no time from
+  the other threads.
 
 `tracker_model` is the base when the run's own policy cannot be wrapped: the tracking law
 of `adaptive_streamer.core.policies.tracker` (its closed form, linear in the observation
@@ -43,7 +45,7 @@ TRACKER_OBSERVATION: tuple[Any, ...] = (
 FAULT_TEXT = {
     "nan_policy": ("NaN actions once the reference moves",
                    "Expected: a policy_fault stop as soon as the pass moves."),
-    "slow_policy": ("a policy far slower than the decision period",
+    "slow_policy": ("a policy far slower than the decision period once the reference moves",
                     "Expected: late decisions, the stream brakes in their place, then an "
                     "overruns stop."),
 }
@@ -71,28 +73,36 @@ def _inner(model: onnx.ModelProto) -> tuple[list, list, str, str]:
     return nodes, inits, inp, out
 
 
+def _moving(inp: str, velocity: slice, keepdims: int) -> tuple[list, list]:
+    """Initialisers and nodes computing ``moving`` = max |obs[velocity]| > threshold."""
+    inits = [numpy_helper.from_array(np.array([velocity.start], np.int64), "v_start"),
+             numpy_helper.from_array(np.array([velocity.stop], np.int64), "v_stop"),
+             numpy_helper.from_array(np.array([1], np.int64), "v_axis"),
+             numpy_helper.from_array(np.array(NAN_THRESHOLD, np.float32), "v_threshold")]
+    nodes = [helper.make_node("Slice", [inp, "v_start", "v_stop", "v_axis"], ["v"]),
+             helper.make_node("Abs", ["v"], ["v_abs"]),
+             helper.make_node("ReduceMax", ["v_abs"], ["v_max"], axes=[1], keepdims=keepdims),
+             helper.make_node("Greater", ["v_max", "v_threshold"], ["moving"])]
+    return inits, nodes
+
+
 def with_nan_when_moving(model: onnx.ModelProto, velocity: slice, size: int,
                          n: int) -> onnx.ModelProto:
-    """``model`` with its action replaced by NaN when max |obs[velocity]| > threshold."""
+    """``model`` with its action replaced by NaN while the reference moves."""
     nodes, inits, inp, out = _inner(model)
-    inits += [numpy_helper.from_array(np.array([velocity.start], np.int64), "v_start"),
-              numpy_helper.from_array(np.array([velocity.stop], np.int64), "v_stop"),
-              numpy_helper.from_array(np.array([1], np.int64), "v_axis"),
-              numpy_helper.from_array(np.array(NAN_THRESHOLD, np.float32), "v_threshold"),
-              numpy_helper.from_array(np.array(np.nan, np.float32), "nan")]
-    nodes += [helper.make_node("Slice", [inp, "v_start", "v_stop", "v_axis"], ["v"]),
-              helper.make_node("Abs", ["v"], ["v_abs"]),
-              helper.make_node("ReduceMax", ["v_abs"], ["v_max"], axes=[1], keepdims=1),
-              helper.make_node("Greater", ["v_max", "v_threshold"], ["moving"]),
-              helper.make_node("Where", ["moving", "nan", "base_action"], [out])]
+    more_inits, more_nodes = _moving(inp, velocity, keepdims=1)
+    inits += more_inits + [numpy_helper.from_array(np.array(np.nan, np.float32), "nan")]
+    nodes += more_nodes + [helper.make_node("Where", ["moving", "nan", "base_action"], [out])]
     return _finish(nodes, inits, "demo_fault_nan_when_moving", inp, size, n, out)
 
 
-def with_slow_loop(model: onnx.ModelProto, size: int, n: int) -> onnx.ModelProto:
-    """``model`` plus 0 x sum(tanh(X W) iterated SLOW_STEPS times)."""
+def with_slow_loop(model: onnx.ModelProto, velocity: slice, size: int,
+                   n: int) -> onnx.ModelProto:
+    """``model`` plus, while the reference moves, 0 x sum(tanh(X W) iterated SLOW_STEPS
+    times) (an If node: at rest, e.g. the load-time test inference, it is the model)."""
     nodes, inits, inp, out = _inner(model)
     k = SLOW_SIZE
-    body = helper.make_graph(
+    step = helper.make_graph(
         [helper.make_node("Identity", ["cond_in"], ["cond_out"]),
          helper.make_node("MatMul", ["x_in", "w"], ["xw"]),
          helper.make_node("Tanh", ["xw"], ["x_out"])],
@@ -102,23 +112,30 @@ def with_slow_loop(model: onnx.ModelProto, size: int, n: int) -> onnx.ModelProto
          helper.make_tensor_value_info("x_in", TensorProto.FLOAT, [k, k])],
         [helper.make_tensor_value_info("cond_out", TensorProto.BOOL, []),
          helper.make_tensor_value_info("x_out", TensorProto.FLOAT, [k, k])])
-    inits += [numpy_helper.from_array(np.array(SLOW_STEPS, np.int64), "steps"),
-              numpy_helper.from_array(np.array(True), "always"),
-              numpy_helper.from_array(np.array(0.0, np.float32), "zero")]
-    nodes += [
-        helper.make_node("RandomNormal", [], ["w"], shape=[k, k], scale=float(1.0 / np.sqrt(k)),
-                         seed=1.0, dtype=TensorProto.FLOAT),
-        helper.make_node("RandomNormal", [], ["x_draw"], shape=[k, k], seed=2.0,
-                         dtype=TensorProto.FLOAT),
+    slow = helper.make_graph(
+        [helper.make_node("RandomNormal", [], ["w"], shape=[k, k], scale=float(1.0 / np.sqrt(k)),
+                          seed=1.0, dtype=TensorProto.FLOAT),
+         helper.make_node("RandomNormal", [], ["x_draw"], shape=[k, k], seed=2.0,
+                          dtype=TensorProto.FLOAT),
+         helper.make_node("Add", ["x_draw", "obs_zero"], ["x0"]),
+         helper.make_node("Loop", ["steps", "always", "x0"], ["x_last"], body=step),
+         helper.make_node("ReduceSum", ["x_last"], ["x_sum_slow"], keepdims=0)],
+        "slow_branch", [], [helper.make_tensor_value_info("x_sum_slow", TensorProto.FLOAT, [])])
+    fast = helper.make_graph(
+        [helper.make_node("Identity", ["zero"], ["x_sum_fast"])], "fast_branch", [],
+        [helper.make_tensor_value_info("x_sum_fast", TensorProto.FLOAT, [])])
+    more_inits, more_nodes = _moving(inp, velocity, keepdims=0)
+    inits += more_inits + [numpy_helper.from_array(np.array(SLOW_STEPS, np.int64), "steps"),
+                           numpy_helper.from_array(np.array(True), "always"),
+                           numpy_helper.from_array(np.array(0.0, np.float32), "zero")]
+    nodes += more_nodes + [
         helper.make_node("ReduceSum", [inp], ["obs_sum"], keepdims=0),
         helper.make_node("Mul", ["obs_sum", "zero"], ["obs_zero"]),
-        helper.make_node("Add", ["x_draw", "obs_zero"], ["x0"]),
-        helper.make_node("Loop", ["steps", "always", "x0"], ["x_last"], body=body),
-        helper.make_node("ReduceSum", ["x_last"], ["x_sum"], keepdims=0),
+        helper.make_node("If", ["moving"], ["x_sum"], then_branch=slow, else_branch=fast),
         helper.make_node("Mul", ["x_sum", "zero"], ["nothing"]),
         helper.make_node("Add", ["base_action", "nothing"], [out]),
     ]
-    return _finish(nodes, inits, "demo_fault_slow", inp, size, n, out)
+    return _finish(nodes, inits, "demo_fault_slow_when_moving", inp, size, n, out)
 
 
 def tracker_weights(limits: JointLimits, period: float, gains: TrackerGains) -> np.ndarray:
@@ -179,10 +196,9 @@ def write_fault_card(fault: str, running: RunningConfig, gains: TrackerGains,
                                            "intra_op_threads": 1}}
     n = len(running.joints)
     base = tracker_model(running.limits, running.decision_period, gains)
-    if fault == "nan_policy":   # reference_velocity row 0: after v, a and 2 position rows
-        model = with_nan_when_moving(base, slice(4 * n, 5 * n), 8 * n, n)
-    else:
-        model = with_slow_loop(base, 8 * n, n)
+    velocity = slice(4 * n, 5 * n)   # reference_velocity row 0: after v, a, 2 position rows
+    model = (with_nan_when_moving(base, velocity, 8 * n, n) if fault == "nan_policy"
+             else with_slow_loop(base, velocity, 8 * n, n))
     folder.mkdir(parents=True, exist_ok=True)
     onnx.save(model, str(folder / f"{fault}.onnx"))
     path = folder / f"{fault}.yaml"

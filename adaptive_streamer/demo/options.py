@@ -59,3 +59,5 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="scenario seed (panel placement, sensor noise; default: the "
                              "scenario file's)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
+    parser.add_argument("--no-plots", action="store_true",
+                        help="write the summary only, no PNG plots (faster)")
