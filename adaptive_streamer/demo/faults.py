@@ -131,16 +131,16 @@ def _plan(inj: Injection, setup: SessionSetup, policy_card: Path,
                                f"watchdog.deviation_joint {limit:g} rad, so it cannot stop")
     if inj.fault not in SHIPPED_CARDS:
         return PlannedFault(inj.fault, inj.at, expected)
-    if inj.fault == "nan_policy" and not _moves(reference, setup, inj.at, run_end):
+    if not _moves(reference, setup, inj.at, run_end):
         raise FaultRefused(f"{where}: the reference stands still from +{inj.at:g} s to the "
-                           f"end of the pass (+{run_end:.1f} s), and the NaN policy only "
-                           "outputs NaN while the reference moves")
+                           f"end of the pass (+{run_end:.1f} s), and the fault policy only "
+                           "misbehaves while the reference moves")
     card, note = _fault_card(inj.fault, setup, policy_card, workdir)
     return PlannedFault(inj.fault, inj.at, expected, card, note)
 
 
 def _moves(reference: ReferenceTrajectory, setup: SessionSetup, t0: float, t1: float) -> bool:
-    """Whether the reference moves (as the NaN policy sees it) somewhere in [t0, t1)."""
+    """Whether the reference moves (as the fault policies see it) somewhere in [t0, t1)."""
     t = np.arange(t0, min(t1, reference.duration), 0.5 * setup.period)
     if t.size == 0:
         return False
