@@ -41,7 +41,8 @@ SLOW_STEPS = 100        # products per inference (about 140 ms on one core of th
 OPSET = 17
 TRACKER_OBSERVATION: tuple[Any, ...] = (
     "joint_velocity", "joint_acceleration", {"block": "reference_position", "horizon": 2},
-    {"block": "reference_velocity", "horizon": 2}, {"block": "reference_acceleration", "horizon": 2})
+    {"block": "reference_velocity", "horizon": 2},
+    {"block": "reference_acceleration", "horizon": 2})
 FAULT_TEXT = {
     "nan_policy": ("NaN actions once the reference moves",
                    "Expected: a policy_fault stop as soon as the pass moves."),

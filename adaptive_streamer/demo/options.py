@@ -9,7 +9,8 @@ FAULTS = {
     "reference_jump": "a reference window jumps by 0.2 rad on one joint (faulty reference source)",
     "joint_state_stall": "the driver stops publishing joint_states",
     "nan_policy": "the policy is swapped for one that outputs NaN during motion",
-    "slow_policy": "the policy is swapped for one that takes longer than a decision period",
+    "slow_policy": "the policy is swapped for one that takes longer than a decision period "
+                   "while the reference moves",
 }
 
 
