@@ -75,6 +75,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
          params_path: Path, workdir: Path) -> int:
     import rclpy
 
+    from ..nodes.lifecycle_client import LifecycleClientError
     from .monitor import DemoMonitor
     params_file = str(params_path)
     procs = Processes()
@@ -116,6 +117,8 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
         if monitor.adapter.state(5.0) == "active":
             monitor.adapter.deactivate()
         monitor.recording = False
+    except LifecycleClientError as exc:
+        raise DemoError(f"the adapter did not answer its lifecycle client: {exc}") from None
     finally:
         if bar is not None:
             bar.close()
@@ -123,9 +126,11 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
         monitor.stop()
         monitor.destroy_node()
         rclpy.shutdown()
+    trip = status.get("trip", "none")
+    after = f" after a {trip} stop nobody injected" if trip != "none" else ""
     for rec in records:
         if not math.isfinite(rec.time) and not rec.note:
-            rec.note = f"the run ended at +{t_end - t_start:.1f} s, before the injection"
+            rec.note = f"the run ended at +{t_end - t_start:.1f} s{after}, before the injection"
     return _report(cfg, monitor, args, t_start, t_end, records, status)
 
 
