@@ -4,7 +4,7 @@ limits' velocity, acceleration and jerk at 60 %, through the live demo
 stop that followed, whether it was the expected one, and the times from the injection to
 the stop and to rest (the demo's ``summary.json``, key ``faults``).
 
-    .venv/bin/python bench/demo_faults.py [--repeat N] [--at S] [--duration S]
+    .venv/bin/python bench/demo_faults.py [--repeat N] [--at S] [--duration S] [--faults A,B]
 
 Times are printed, never asserted; on a loaded machine an input can go stale before the
 injection (a stop nobody injected): such runs are listed as such.
@@ -56,13 +56,19 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeat", type=int, default=1)
     ap.add_argument("--at", type=float, default=1.0, help="injection time [s] (default 1)")
     ap.add_argument("--duration", type=float, default=3.5)
+    ap.add_argument("--faults", default=",".join(EXPECTED_STOP),
+                    help="comma-separated fault kinds (default: all)")
     args = ap.parse_args(argv)
+    faults = [f for f in args.faults.split(",") if f]
+    unknown = sorted(set(faults) - set(EXPECTED_STOP))
+    if unknown:
+        ap.error(f"--faults: unknown {unknown}; expected some of {list(EXPECTED_STOP)}")
     print(f"{'limits':8s} {'fault':18s} {'expected':19s} {'stop':19s} {'ok':3s} "
           f"{'to stop':>9s} {'to rest':>9s}  note")
     with tempfile.TemporaryDirectory() as tmp:
         tight = tight_limits(Path(tmp))
         for label, limits in (("demo", None), ("60%", tight)):
-            for fault in EXPECTED_STOP:
+            for fault in faults:
                 for k in range(args.repeat):
                     folder = Path(tmp) / f"{label}_{fault}_{k}"
                     folder.mkdir()
