@@ -38,13 +38,13 @@ FEATURES = ("edge_offset", "edge_angle")
 
 
 def arm_limits() -> JointLimits:
-    """Invented 7-joint limits (arm-like magnitudes; the last joint wraps)."""
+    """Invented 7-joint limits (made-up irregular values; the last joint wraps)."""
     return JointLimits([f"j{i + 1}" for i in range(N)],
-                       [-2.9, -1.8, -2.9, -3.0, -2.9, -0.1, -math.inf],
-                       [2.9, 1.8, 2.9, 0.0, 2.9, 3.7, math.inf],
-                       [2.2, 2.2, 2.2, 2.2, 2.6, 2.6, 2.6],
-                       [9.0, 5.0, 7.5, 8.0, 10.0, 12.0, 12.0],
-                       [90.0, 50.0, 75.0, 80.0, 100.0, 120.0, 120.0],
+                       [-2.71, -1.54, -2.48, -2.64, -2.93, -0.58, -math.inf],
+                       [2.63, 1.92, 2.86, 0.29, 2.51, 3.21, math.inf],
+                       [1.37, 1.61, 1.83, 2.06, 2.44, 2.71, 2.9],
+                       [6.3, 4.7, 7.9, 5.8, 9.2, 11.4, 10.6],
+                       [71.0, 43.0, 66.0, 58.0, 87.0, 104.0, 113.0],
                        continuous=[False] * 6 + [True])
 
 

@@ -15,13 +15,17 @@ centre of the ranges, features 0; `adaptive_streamer.core.policies.neutral_input
   (The arm's own velocity would not do: the edge corrections at rest move the joints as
   fast as the pass does.)
 * ``slow_policy.yaml`` / ``.onnx`` (``--inject slow_policy@S``): the edge model's action
-  plus 0 times the sum of a long computation: a Loop of `SLOW_STEPS` products
+  plus, while the reference moves (the same test), 0 times the sum of a long computation
+  (at rest it is as fast as the edge model, so loading it takes no time): a Loop of
+  `SLOW_STEPS` products
   ``X <- tanh(X W)`` of `SLOW_SIZE` x `SLOW_SIZE` float32 matrices drawn in the graph
   (RandomNormal with fixed seeds, so the file stays small; ``X0`` also depends on the
   observation so nothing can be folded at load). About 2 ``SLOW_SIZE^3`` x `SLOW_STEPS`
   flops per inference: late decisions, then an ``overruns`` stop.
 
-The script checks both with onnxruntime (1 thread): outputs vs the edge model, NaN
+The wrappers are `adaptive_streamer.demo.fault_policies` (the demo builds the same faults
+around a tracker at run time when these cards do not fit its run). The script checks both
+with onnxruntime (1 thread): outputs vs the edge model, NaN
 behaviour on a still and a moving observation, and prints the slow model's inference time
 (a timing is printed, never asserted).
 
@@ -37,92 +41,17 @@ from pathlib import Path
 import numpy as np
 import onnx
 import onnxruntime as ort
-from onnx import TensorProto, helper, numpy_helper
 
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.policies import load_card, load_policy
 from adaptive_streamer.core.policies.base import RunningConfig, neutral_inputs
 from adaptive_streamer.sim.closed_loop import EDGE_FEATURES
+from adaptive_streamer.demo.fault_policies import (NAN_THRESHOLD, SLOW_SIZE, SLOW_STEPS,
+                                                   with_nan_when_moving, with_slow_loop)
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "config" / "demo"
-NAN_THRESHOLD = 0.005   # fraction of the velocity limit
-SLOW_SIZE = 512         # matrix size of the slow model's products
-SLOW_STEPS = 100        # products per inference (about 140 ms on one core of the build machine)
-OPSET = 17
 TIMED_RUNS = 5
-
-
-def _edge_graph(model: onnx.ModelProto) -> tuple[list, list, str, str]:
-    """Nodes, initialisers, input and output names of the edge model."""
-    g = model.graph
-    return list(g.node), list(g.initializer), g.input[0].name, g.output[0].name
-
-
-def _finish(nodes: list, inits: list, name: str, inp: str, size: int, n: int,
-            out: str) -> onnx.ModelProto:
-    graph = helper.make_graph(
-        nodes, name, [helper.make_tensor_value_info(inp, TensorProto.FLOAT, [1, size])],
-        [helper.make_tensor_value_info(out, TensorProto.FLOAT, [1, n])], inits)
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)],
-                              producer_name="adaptive_streamer scripts/make_fault_policies.py")
-    model.ir_version = 8
-    onnx.checker.check_model(model, full_check=True)
-    return model
-
-
-def nan_model(edge: onnx.ModelProto, velocity: slice, size: int, n: int) -> onnx.ModelProto:
-    """The edge model with its action replaced by NaN when max |obs[velocity]| > threshold."""
-    nodes, inits, inp, out = _edge_graph(edge)
-    for node in nodes:                       # rename the edge output to an inner name
-        node.output[:] = ["edge_action" if o == out else o for o in node.output]
-    inits += [numpy_helper.from_array(np.array([velocity.start], np.int64), "v_start"),
-              numpy_helper.from_array(np.array([velocity.stop], np.int64), "v_stop"),
-              numpy_helper.from_array(np.array([1], np.int64), "v_axis"),
-              numpy_helper.from_array(np.array(NAN_THRESHOLD, np.float32), "v_threshold"),
-              numpy_helper.from_array(np.array(np.nan, np.float32), "nan")]
-    nodes += [helper.make_node("Slice", [inp, "v_start", "v_stop", "v_axis"], ["v"]),
-              helper.make_node("Abs", ["v"], ["v_abs"]),
-              helper.make_node("ReduceMax", ["v_abs"], ["v_max"], axes=[1], keepdims=1),
-              helper.make_node("Greater", ["v_max", "v_threshold"], ["moving"]),
-              helper.make_node("Where", ["moving", "nan", "edge_action"], [out])]
-    return _finish(nodes, inits, "demo_fault_nan_when_moving", inp, size, n, out)
-
-
-def slow_model(edge: onnx.ModelProto, size: int, n: int) -> onnx.ModelProto:
-    """The edge model plus 0 x sum(tanh(X W) iterated SLOW_STEPS times)."""
-    nodes, inits, inp, out = _edge_graph(edge)
-    for node in nodes:
-        node.output[:] = ["edge_action" if o == out else o for o in node.output]
-    k = SLOW_SIZE
-    scale = float(1.0 / np.sqrt(k))
-    body = helper.make_graph(
-        [helper.make_node("Identity", ["cond_in"], ["cond_out"]),
-         helper.make_node("MatMul", ["x_in", "w"], ["xw"]),
-         helper.make_node("Tanh", ["xw"], ["x_out"])],
-        "slow_step",
-        [helper.make_tensor_value_info("i", TensorProto.INT64, []),
-         helper.make_tensor_value_info("cond_in", TensorProto.BOOL, []),
-         helper.make_tensor_value_info("x_in", TensorProto.FLOAT, [k, k])],
-        [helper.make_tensor_value_info("cond_out", TensorProto.BOOL, []),
-         helper.make_tensor_value_info("x_out", TensorProto.FLOAT, [k, k])])
-    inits += [numpy_helper.from_array(np.array(SLOW_STEPS, np.int64), "steps"),
-              numpy_helper.from_array(np.array(True), "always"),
-              numpy_helper.from_array(np.array(0.0, np.float32), "zero")]
-    nodes += [
-        helper.make_node("RandomNormal", [], ["w"], shape=[k, k], scale=scale, seed=1.0,
-                         dtype=TensorProto.FLOAT),
-        helper.make_node("RandomNormal", [], ["x_draw"], shape=[k, k], seed=2.0,
-                         dtype=TensorProto.FLOAT),
-        helper.make_node("ReduceSum", [inp], ["obs_sum"], keepdims=0),
-        helper.make_node("Mul", ["obs_sum", "zero"], ["obs_zero"]),
-        helper.make_node("Add", ["x_draw", "obs_zero"], ["x0"]),
-        helper.make_node("Loop", ["steps", "always", "x0"], ["x_last"], body=body),
-        helper.make_node("ReduceSum", ["x_last"], ["x_sum"], keepdims=0),
-        helper.make_node("Mul", ["x_sum", "zero"], ["nothing"]),
-        helper.make_node("Add", ["edge_action", "nothing"], [out]),
-    ]
-    return _finish(nodes, inits, "demo_fault_slow", inp, size, n, out)
 
 
 def fault_card(name: str, title: str, text: str, edge_card_text: str) -> str:
@@ -169,19 +98,19 @@ def main(argv: list[str] | None = None) -> int:
     velocity = slice(block.start, block.start + n)      # row 0: at the decision instant
     text = edge_card_path.read_text()
     models = {
-        "nan_policy": (nan_model(edge, velocity, layout.size, n),
+        "nan_policy": (with_nan_when_moving(edge, velocity, layout.size, n),
                        "Fault injection: NaN actions once the arm moves.",
                        f"The demo edge model, but every action is NaN while the reference moves "
                        f"(a joint's\nreference velocity above {100 * NAN_THRESHOLD:g}% of its "
                        "limit). Finite while the reference stands\nstill, so it loads and a reset "
                        "probe with the reference paused passes.\nExpected: a policy_fault stop "
                        "as soon as the pass moves."),
-        "slow_policy": (slow_model(edge, layout.size, n),
+        "slow_policy": (with_slow_loop(edge, velocity, layout.size, n),
                         "Fault injection: a policy far slower than the decision period.",
-                        f"The demo edge model plus 0 x a Loop of {SLOW_STEPS} products of "
-                        f"{SLOW_SIZE}x{SLOW_SIZE} matrices\n(about "
-                        f"{2 * SLOW_SIZE ** 3 * SLOW_STEPS / 1e9:.0f} GFLOP per inference). "
-                        "Expected: late decisions, the stream brakes\nin their place, then an "
+                        "The demo edge model plus, while the reference moves, 0 x a Loop of\n"
+                        f"{SLOW_STEPS} products of {SLOW_SIZE}x{SLOW_SIZE} matrices (about "
+                        f"{2 * SLOW_SIZE ** 3 * SLOW_STEPS / 1e9:.0f} GFLOP per inference).\n"
+                        "Expected: late decisions, the stream brakes in their place, then an "
                         "overruns stop."),
     }
     limits = JointLimits.from_file(DEMO / "limits.yaml")

@@ -121,7 +121,7 @@ def running7(horizon=5, features=("edge_offset", "edge_angle"), period=0.05) -> 
 
 def random_inputs(rng, horizon=5, features=("edge_angle", "edge_offset")) -> PolicyInputs:
     """Random but plausible 7-joint inputs (feedback in a different order from the card)."""
-    p = rng.uniform(-1.0, 1.0, 7) + np.array([0, 0, 0, -1.5, 0, 1.8, 0])
+    p = rng.uniform(-1.0, 1.0, 7) + np.array([0, 0, 0, -1.2, 0, 1.3, 0])
     ref = p + np.cumsum(rng.uniform(-0.02, 0.02, (horizon, 7)), axis=0)
     valid = rng.random(len(features)) > 0.3
     values = np.where(valid, rng.uniform(-0.01, 0.01, len(features)), np.nan)
@@ -245,9 +245,9 @@ def test_nan_output_passes_through_to_the_cycle(cards):
     model = make_sqrt_linear(cards / "sqrt.onnx", OBS7, 7, bias=1.0)
     policy = load_policy(with_model_card(cards, model), running7())
     inp = neutral_inputs(running7())
-    # j1 at -2.9 (its lower limit): joint_position obs[0] = -1, so sqrt(-1 + 1) = 0; lower -> NaN
+    # j1 1 rad below its lower limit (-2.71): joint_position obs[0] < -1, so sqrt(obs + 1) is NaN
     low = inp.state.position.copy()
-    low[0] = -2.9 - 1.0
+    low[0] = -2.71 - 1.0
     action = policy.act(PolicyInputs(inp.time, MotionState(low, inp.state.velocity,
                                                            inp.state.acceleration),
                                      inp.ref_positions, inp.ref_velocities,

@@ -232,13 +232,13 @@ def test_period_mismatch_shows_both_values(folder):
 def test_limits_mismatch_lists_each_difference_with_both_values(folder):
     other = dict(LIMITS7.to_dict()["joints"])
     other["j2"] = dict(other["j2"], velocity=2.0)
-    other["j5"] = dict(other["j5"], position=[-2.5, 2.9])
+    other["j5"] = dict(other["j5"], position=[-2.5, 2.51])
     limits = JointLimits.from_mapping({"joints": other})
     with pytest.raises(CardError) as err:
         check_card(load_card(folder / "tracker7.card.yaml"), running(limits=limits))
     # JointLimits.describe_difference: card value first, then the running value
-    assert ("limits differ (card vs running): j5.position_min: -2.9 vs -2.5; "
-            "j2.velocity_max: 2.2 vs 2") in str(err.value)
+    assert ("limits differ (card vs running): j5.position_min: -2.93 vs -2.5; "
+            "j2.velocity_max: 1.61 vs 2") in str(err.value)
 
 
 def test_horizon_and_features_beyond_the_running_configuration(folder):

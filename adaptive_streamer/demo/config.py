@@ -20,7 +20,6 @@ from ..share import demo_file, expand
 KIND_CARDS = {"onnx": "policy_edge.yaml", "linear_feedback": "policy_feedback.yaml",
               "tracker": "policy_reference_only.yaml"}
 REFERENCE_ONLY_CARD = "policy_reference_only.yaml"
-FAULT_CARDS = {"nan_policy": "faults/nan_policy.yaml", "slow_policy": "faults/slow_policy.yaml"}
 SLOW_DOWN_FRACTION = 0.8
 
 
@@ -135,10 +134,3 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     return DemoConfig(params, card, label, limits_file, limits, seed,
                       played.duration, played, rate, period, notes)
 
-
-def fault_card(fault: str) -> Path:
-    """Card of a fault-injection policy."""
-    path = demo_file(FAULT_CARDS[fault])
-    if not path.is_file():
-        raise DemoError(f"fault policy card {path} is missing (run scripts/make_demo_policy.py)")
-    return path

@@ -9,7 +9,8 @@ FAULTS = {
     "reference_jump": "a reference window jumps by 0.2 rad on one joint (faulty reference source)",
     "joint_state_stall": "the driver stops publishing joint_states",
     "nan_policy": "the policy is swapped for one that outputs NaN during motion",
-    "slow_policy": "the policy is swapped for one that takes longer than a decision period",
+    "slow_policy": "the policy is swapped for one that takes longer than a decision period "
+                   "while the reference moves",
 }
 
 
@@ -59,3 +60,5 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="scenario seed (panel placement, sensor noise; default: the "
                              "scenario file's)")
     parser.add_argument("--no-progress", action="store_true", help="no progress bar")
+    parser.add_argument("--no-plots", action="store_true",
+                        help="write the summary only, no PNG plots (faster)")

@@ -4,6 +4,7 @@ from __future__ import annotations
 import html
 import json
 import math
+from dataclasses import asdict
 from pathlib import Path
 
 import matplotlib
@@ -135,7 +136,8 @@ def summary_json(summary: DemoSummary) -> dict:
             "setpoints": st.samples, "violations": st.total_violations,
             "violations_by_kind": st.violations,
             "watchdog_events": [{"time": t, "kind": k, "message": m} for t, k, m in summary.events],
-            "decision_ms": summary.decision_ms, "period_ms": summary.period}
+            "decision_ms": summary.decision_ms, "period_ms": summary.period,
+            "faults": [asdict(f) for f in summary.faults]}
 
 
 def write_summary(summary: DemoSummary, limits: JointLimits, plots: list[Path], out: Path,

@@ -22,10 +22,13 @@ from pathlib import Path
 import numpy as np
 
 from ..bringup import NodeEntry, Processes
+from ..core.adapter_setup import SetupError, build_session
+from ..io.params_files import load_params_file
 from ..sim.config import load_scenario
 from ..safety import CAUTIONS
-from .config import DemoConfig, DemoError, build_config, fault_card
-from .options import FAULTS, Injection, OptionError, parse_injection
+from .config import DemoConfig, DemoError, build_config
+from .faults import JUMP_JOINT, JUMP_OFFSET, InjectionRecord, PlannedFault, plan_faults
+from .options import FAULTS, OptionError, parse_injection
 
 CELL_NODES = ["reference_server", "sim_driver", "edge_sensor", "sensor_bridge"]
 STARTUP_TIMEOUT = 30.0
@@ -45,21 +48,37 @@ def run_demo(args: argparse.Namespace) -> int:
         cfg = build_config(args, workdir)
         for note in cfg.notes:
             print(f"note: {note}", flush=True)
-        for inj in injections:
-            print(f"fault to inject at +{inj.at:g} s: {inj.fault} ({FAULTS[inj.fault]})")
-            if inj.fault in ("nan_policy", "slow_policy"):
-                fault_card(inj.fault)
-        return _run(cfg, args, injections, workdir)
+        params_file = cfg.write_params(workdir / "params.yaml")
+        faults = _plan(cfg, args, injections, params_file, workdir)
+        for f in faults:
+            print(f"fault to inject at +{f.at:g} s: {f.fault} ({FAULTS[f.fault]}); expected "
+                  f"stop: {f.expected}{'; ' + f.note if f.note else ''}", flush=True)
+        return _run(cfg, args, faults, params_file, workdir)
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
 
 
-def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
-         workdir: Path) -> int:
+def _plan(cfg: DemoConfig, args: argparse.Namespace, injections: list,
+          params_file: Path, workdir: Path) -> list[PlannedFault]:
+    """The injections checked against the session the adapter will configure."""
+    if not injections:
+        return []
+    try:
+        setup = build_session(load_params_file(params_file))
+    except SetupError as exc:
+        raise DemoError(f"the adapter would not configure: {exc}") from None
+    run_end = cfg.reference_duration if args.duration is None \
+        else min(float(args.duration), cfg.reference_duration)
+    return plan_faults(injections, setup, cfg.policy_card, cfg.reference, run_end, workdir)
+
+
+def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
+         params_path: Path, workdir: Path) -> int:
     import rclpy
 
+    from ..nodes.lifecycle_client import LifecycleClientError
     from .monitor import DemoMonitor
-    params_file = str(cfg.write_params(workdir / "params.yaml"))
+    params_file = str(params_path)
     procs = Processes()
     logs = workdir / "logs"
     logs.mkdir()
@@ -68,6 +87,8 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
     monitor = DemoMonitor(joints)
     monitor.start()
     bar = None
+    records = [InjectionRecord(f) for f in faults]
+    status: dict[str, str] = {}
     try:
         if args.record:
             _start_recorder(procs, args.record, workdir, logs)
@@ -88,14 +109,17 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
         print(f"dispensing pass: {cfg.reference_duration:.1f} s with policy {cfg.policy_label}",
               flush=True)
         bar = _progress(cfg.reference_duration, args.no_progress)
-        t_end = _follow_pass(monitor, procs, cfg, injections, t_start, limit, bar, logs)
+        t_end = _follow_pass(monitor, procs, cfg, records, t_start, limit, bar)
         if bar is not None:
             bar.close()
             bar = None
         monitor.wait_fresh_status("adapter")
+        status = dict(monitor.adapter_status())   # the latched trip, before deactivating
         if monitor.adapter.state(5.0) == "active":
             monitor.adapter.deactivate()
         monitor.recording = False
+    except LifecycleClientError as exc:
+        raise DemoError(f"the adapter did not answer its lifecycle client: {exc}") from None
     finally:
         if bar is not None:
             bar.close()
@@ -103,7 +127,12 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, injections: list[Injection],
         monitor.stop()
         monitor.destroy_node()
         rclpy.shutdown()
-    return _report(cfg, monitor, args, t_start, t_end)
+    trip = status.get("trip", "none")
+    after = f" after a {trip} stop nobody injected" if trip != "none" else ""
+    for rec in records:
+        if not math.isfinite(rec.time) and not rec.note:
+            rec.note = f"the run ended at +{t_end - t_start:.1f} s{after}, before the injection"
+    return _report(cfg, monitor, args, t_start, t_end, records, status)
 
 
 def _start_recorder(procs: Processes, out: str, workdir: Path, logs: Path) -> Path:
@@ -155,9 +184,9 @@ def _progress(total: float, disabled: bool):
                 bar_format="{desc}: {percentage:3.0f}%|{bar}| {n:.1f}/{total:.1f} s {postfix}")
 
 
-def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, injections: list[Injection],
-                 t_start: float, limit: float, bar, logs: Path) -> float:
-    pending = list(injections)
+def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, records: list[InjectionRecord],
+                 t_start: float, limit: float, bar) -> float:
+    pending = list(records)
     rest_since = None
     stopped_at = None
     while True:
@@ -165,9 +194,9 @@ def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, injections: list[In
         _alive(procs)
         now = monitor.get_clock().now().nanoseconds * 1e-9
         elapsed = now - t_start
-        while pending and elapsed >= pending[0].at:
-            _inject(monitor, pending.pop(0))
         mode = monitor.last_mode()
+        while pending and elapsed >= pending[0].planned.at:
+            _inject(monitor, pending.pop(0), mode, now)
         if bar is not None:
             bar.n = round(min(elapsed, cfg.reference_duration), 1)
             bar.set_postfix_str(mode)
@@ -187,44 +216,76 @@ def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, injections: list[In
             return now
 
 
-def _inject(monitor, inj: Injection) -> None:
-    print(f"\ninjecting {inj.fault} at +{inj.at:g} s: {FAULTS[inj.fault]}", flush=True)
-    if inj.fault == "feedback_dropout":
+def _inject(monitor, rec: InjectionRecord, mode: str, now: float) -> None:
+    """Inject ``rec``'s fault unless the adapter has already stopped; note what happened."""
+    f = rec.planned
+    if mode in ("stopping", "stopped"):
+        rec.note = f"the adapter was already {mode} (see the watchdog events)"
+        print(f"\nnot injecting {f.fault}: {rec.note}", file=sys.stderr, flush=True)
+        return
+    print(f"\ninjecting {f.fault} at +{f.at:g} s: {FAULTS[f.fault]}", flush=True)
+    rec.time = now
+    if f.fault == "feedback_dropout":
         ok = monitor.set_param("edge_sensor", "dropout", True)
-    elif inj.fault == "joint_state_stall":
+    elif f.fault == "joint_state_stall":
         ok = monitor.set_param("sim_driver", "stall", True)
-    elif inj.fault == "reference_jump":
-        ok = monitor.publish_jumped_window(joint=1, offset=0.2)
+    elif f.fault == "reference_jump":
+        ok = monitor.publish_jumped_window(joint=JUMP_JOINT, offset=JUMP_OFFSET)
     else:
-        ok = monitor.set_param("adapter", "policy", str(fault_card(inj.fault)))
+        ok = monitor.set_param("adapter", "policy", str(f.card))
     if not ok:
-        print(f"warning: could not inject {inj.fault}", file=sys.stderr)
+        rec.time = math.nan
+        rec.note = "the injection was not accepted (see the node logs)"
+        print(f"warning: could not inject {f.fault}", file=sys.stderr)
 
 
-def _reference_only(cfg: DemoConfig) -> tuple[np.ndarray, np.ndarray]:
-    """(times from the pass start, lateral error [m]) of the same pass without adaptation
-    (the tracker), by the offline closed loop: the same core code as the live adapter, the
-    same seed, limits and reference, no DDS."""
-    from ..sim.closed_loop import run_closed_loop
-    res = run_closed_loop("tracker", seed=cfg.seed, limits=cfg.limits, reference=cfg.reference)
-    return res.pass_times, res.pass_lateral_error
+def _reference_only(cfg: DemoConfig, length: float) -> tuple[np.ndarray, np.ndarray]:
+    """(times from the pass start, lateral error [m]) of the first ``length`` seconds of the
+    same pass without adaptation (the tracker), by the offline closed loop: the same core
+    code as the live adapter, the same seed, limits and reference, no DDS."""
+    from ..sim.closed_loop import CellSettings, run_closed_loop
+    settings = CellSettings()
+    duration = None if length >= cfg.reference_duration else \
+        settings.start_delay + length + settings.decision_period
+    res = run_closed_loop("tracker", seed=cfg.seed, limits=cfg.limits, reference=cfg.reference,
+                          settings=settings, duration=duration)
+    keep = res.pass_times <= length
+    return res.pass_times[keep], res.pass_lateral_error[keep]
 
 
 def _report(cfg: DemoConfig, monitor, args: argparse.Namespace, t_start: float,
-            t_end: float) -> int:
-    from .report import plot_deviation, plot_joints, plot_lateral, plot_timing, write_summary
+            t_end: float, records: list[InjectionRecord], status: dict[str, str]) -> int:
+    from .faults import outcomes
+    from .report import write_summary
     from .summary import Series, summarise
-    from ..sim.metrics import lateral_error
 
     series = Series.of(monitor.data, len(cfg.limits))
     scenario = load_scenario(cfg.params["edge_sensor"]["scenario"])
     panel = scenario.panel(cfg.seed)
-    t_ref, e_ref = _reference_only(cfg)
     window = (t_start, min(t_end, t_start + cfg.reference_duration))
+    t_ref, e_ref = _reference_only(cfg, window[1] - window[0])
     summary = summarise(series, cfg.limits, panel, cfg.stream_rate, window, e_ref,
-                        cfg.policy_label, cfg.seed, monitor.adapter_status(), cfg.notes)
+                        cfg.policy_label, cfg.seed, monitor.adapter_status(), cfg.notes,
+                        outcomes(records, status, series.sp_t, series.sp_v))
     out = Path(args.report)
     out.mkdir(parents=True, exist_ok=True)
+    plots = [] if args.no_plots else _plots(cfg, series, panel, window, t_ref, e_ref, out)
+    md, html_path = write_summary(summary, cfg.limits, plots, out, CAUTIONS)
+    from .summary import format_summary
+    print()
+    print(format_summary(summary, cfg.limits))
+    print(f"report: {md} ({html_path.name}, {len(plots)} plots)")
+    return 0 if summary.stream.total_violations == 0 else 1
+
+
+def _plots(cfg: DemoConfig, series, panel, window: tuple[float, float], t_ref: np.ndarray,
+           e_ref: np.ndarray, out: Path) -> list[Path]:
+    """The report's PNG plots (joints against their limits, deviation, lateral error,
+    timing)."""
+    from .report import plot_deviation, plot_joints, plot_lateral, plot_timing
+    from ..sim.metrics import lateral_error
+
+    t_start = window[0]
     wd = cfg.params["adapter"].get("watchdog", {})
     plots = plot_joints(series, cfg.limits, out, t_start)
     plots.append(plot_deviation(series, (float(wd.get("deviation_joint", math.nan)),
@@ -234,12 +295,7 @@ def _report(cfg: DemoConfig, monitor, args: argparse.Namespace, t_start: float,
                               lateral_error(series.js_q[in_pass], panel) if in_pass.any()
                               else np.zeros(0), t_ref, e_ref, out))
     plots.append(plot_timing(series, cfg.stream_rate, out))
-    md, html_path = write_summary(summary, cfg.limits, plots, out, CAUTIONS)
-    from .summary import format_summary
-    print()
-    print(format_summary(summary, cfg.limits))
-    print(f"report: {md} ({html_path.name}, {len(plots)} plots)")
-    return 0 if summary.stream.total_violations == 0 else 1
+    return plots
 
 
 def _tail(path: Path, lines: int = 5) -> str:

@@ -11,6 +11,7 @@ from ..core.limits import JointLimits
 from ..sim.metrics import lateral_error
 from ..sim.panel import Panel
 from ..core.stream_metrics import StreamReport, check_stream, period_stats, time_resolution_of
+from .faults import FaultOutcome
 from .monitor import Recorded
 
 
@@ -46,6 +47,7 @@ class DemoSummary:
     notes: list[str] = field(default_factory=list)
     adapter_diag: dict[str, str] = field(default_factory=dict)
     pass_window: tuple[float, float] = (math.nan, math.nan)
+    faults: list[FaultOutcome] = field(default_factory=list)
 
     @property
     def improvement(self) -> float:
@@ -83,7 +85,7 @@ class Series:
 def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
               pass_window: tuple[float, float], reference_only_err: np.ndarray,
               policy: str, seed: int, adapter_diag: dict[str, str],
-              notes: list[str]) -> DemoSummary:
+              notes: list[str], faults: list[FaultOutcome] | None = None) -> DemoSummary:
     """The demo's figures."""
     t0, t1 = pass_window
     in_pass = (series.js_t >= t0) & (series.js_t <= t1)
@@ -102,7 +104,7 @@ def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
                        adapter_diag.get("trip_message", "")))
     return DemoSummary(policy, seed, adapted, ErrorFigures.of(reference_only_err), stream,
                        period_stats(series.sp_arrival, rate), decision_ms, events, notes,
-                       adapter_diag, pass_window)
+                       adapter_diag, pass_window, list(faults or []))
 
 
 def _pct(x: np.ndarray, q: float) -> float:
@@ -149,6 +151,9 @@ def format_summary(s: DemoSummary, limits: JointLimits) -> str:
             lines.append(f"  {kind} at {t - s.pass_window[0]:+.2f} s from the pass start: {msg}")
     else:
         lines.append("watchdog events: none")
+    if s.faults:
+        lines.append("faults injected:")
+        lines.extend(f"  {f.text()}" for f in s.faults)
     for note in s.notes:
         lines.append(f"note: {note}")
     return "\n".join(lines)
