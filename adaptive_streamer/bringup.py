@@ -12,6 +12,7 @@ the driver keep running; then every child is stopped, cleanly, without a traceba
 """
 from __future__ import annotations
 
+import ctypes
 import importlib
 import os
 import signal
@@ -37,6 +38,7 @@ NODE_KINDS = {
     "recorder": ("adaptive_streamer.nodes.recorder", "RecorderNode"),
 }
 STOP_TIMEOUT = 10.0
+PR_SET_PDEATHSIG = 1   # linux/prctl.h
 
 
 class BringupError(ValueError):
@@ -112,8 +114,21 @@ def child_command(kinds: list[str], params_file: str, namespace: str = "") -> li
             *ros_args(params_file, namespace)]
 
 
+def end_with_parent() -> None:
+    """Ask Linux to send this process SIGINT when its parent ends, so a bringup killed
+    outright leaves no node running: the adapter brings the arm to rest and exits as on
+    Ctrl-C. Elsewhere (no prctl) nothing happens."""
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(PR_SET_PDEATHSIG, int(signal.SIGINT))
+    except (OSError, AttributeError):
+        pass
+
+
 def run_child(kinds: list[str], args: list[str]) -> int:
-    """Entry of a child process: run one node (or several in one executor) until SIGINT."""
+    """Entry of a child process: run one node (or several in one executor) until SIGINT
+    (also sent when the parent ends, see `end_with_parent`)."""
+    end_with_parent()
     if len(kinds) == 1:
         module, _ = NODE_KINDS[kinds[0]]
         return int(importlib.import_module(module).main(args) or 0)

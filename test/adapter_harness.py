@@ -5,14 +5,19 @@
   input, optionally slow).
 * `check_stream`: the independent check of every streamed setpoint (finite differences on
   the nominal stamps against the streamed velocities/accelerations and the limits).
-* `Cell`: reference_server + sim_driver (+ the adapter) in background executors, and a probe
-  node that records what goes out, relays ``joint_states`` and ``reference/window`` so
-  faults can be injected (block, offset, truncate), publishes feedback, and calls services.
+* `Cell`: reference_server + sim_driver and a relay of ``joint_states`` and
+  ``reference/window`` (faults injected: block, offset, truncate) in their own process
+  (test/cell_process.py); the adapter and a probe node that records what goes out, sets the
+  relay's faults, publishes feedback and calls services in this one.
 """
 from __future__ import annotations
 
 import gc
+import json
 import math
+import queue
+import signal
+import subprocess
 import sys
 import threading
 import time
@@ -39,14 +44,13 @@ from std_msgs.msg import Bool, Float64MultiArray
 from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
 
+from adaptive_streamer.bringup import child_command
 from adaptive_streamer.core.decision_record import decode
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.policies.card import default_natural_frequency
 from adaptive_streamer.nodes.adapter import AdapterNode
 from adaptive_streamer.nodes.threads import make_executor
 from adaptive_streamer.nodes.common import reliable_qos
-from adaptive_streamer.nodes.reference_server import ReferenceServer
-from adaptive_streamer.nodes.sim_driver import SimDriver
 
 REPO = Path(__file__).resolve().parents[1]
 LIMITS_FILE = REPO / "config" / "demo" / "limits.yaml"
@@ -389,33 +393,51 @@ def at_rest(samples: list[Sample], tol: float = 1e-5) -> bool:
 
 
 # ---------------------------------------------------------------------------- the cell
-class Probe(Node):
-    """Test-side node: records outputs, relays inputs with injectable faults, calls services.
+class RelayFault:
+    """A fault of the cell relay, read and set as an attribute of `Probe`."""
 
-    Relays: ``sim/joint_states`` -> ``joint_states`` (``js_block``: drop; ``js_offset``: add
-    to positions) and ``raw/reference/window`` -> ``reference/window`` (``ref_block``,
-    ``ref_offset`` added to every point's positions, ``ref_truncate``: only the first point).
-    Feedback: when ``feedback`` holds {name: value}, a named vector is published at 50 Hz.
+    def __set_name__(self, owner: type, name: str) -> None:
+        self.name = name
+
+    def __get__(self, probe: Any, owner: type | None = None) -> Any:
+        return self if probe is None else probe._faults[self.name]
+
+    def __set__(self, probe: Any, value: Any) -> None:
+        probe._set_fault(self.name, value)
+
+
+class Probe(Node):
+    """Test-side node: records outputs, sets the cell relay's faults, publishes feedback, calls
+    services.
+
+    Faults (set through the relay's parameters, see test/cell_process.py; each assignment
+    returns once the relay took it): ``js_block`` (drop joint states), ``js_offset`` (added
+    to positions; None for none), ``ref_block``, ``ref_offset`` (added to every point's
+    positions), ``ref_truncate`` (only the first point). ``last_window`` is the latest window
+    the reference server sent (before the relay). Feedback: when ``feedback`` holds
+    {name: value}, a named vector is published at 50 Hz.
     """
+
+    js_block = RelayFault()
+    js_offset = RelayFault()
+    ref_block = RelayFault()
+    ref_offset = RelayFault()
+    ref_truncate = RelayFault()
 
     def __init__(self, adapter: str = "adapter") -> None:
         super().__init__("adapter_probe")
         self.adapter = adapter
-        self.lock = threading.Lock()
         self.setpoints: list[Sample] = []
         self.shadow: list[Sample] = []
         self.driver_positions: list[tuple[float, ...]] = []
         self.decisions: list[np.ndarray] = []
         self.diagnostics: dict[str, list[tuple[float, int, str, dict[str, str]]]] = {}
         self.logs: list[tuple[str, str]] = []
-        self.js_block = False
-        self.js_offset: np.ndarray | None = None
-        self.js_received = 0
-        self.ref_block = False
-        self.ref_offset = 0.0
-        self.ref_truncate = False
         self.last_window: JointTrajectory | None = None
         self.feedback: dict[str, float] | None = None
+        self._faults: dict[str, Any] = {"js_block": False, "js_offset": None,
+                                        "ref_block": False, "ref_offset": 0.0,
+                                        "ref_truncate": False}
         big = reliable_qos(1000)
         self.create_subscription(JointTrajectory, "setpoints",
                                  lambda m: self._sample(self.setpoints, m), big)
@@ -427,17 +449,27 @@ class Probe(Node):
                                  lambda m: self.decisions.append(np.array(m.data)), big)
         self.create_subscription(DiagnosticArray, "/diagnostics", self._diag, 100)
         self.create_subscription(Log, "/rosout", self._log, 100)
-        self.create_subscription(JointState, "sim/joint_states", self._relay_js, 10)
-        self.create_subscription(JointTrajectory, "raw/reference/window", self._relay_ref,
+        self.create_subscription(JointTrajectory, "raw/reference/window", self._window,
                                  reliable_qos(5))
-        self.js_pub = self.create_publisher(JointState, "joint_states", 10)
-        self.ref_pub = self.create_publisher(JointTrajectory, "reference/window", reliable_qos(5))
         self.feedback_pub = self.create_publisher(JointState, "feedback", 10)
         self.stop_pub = self.create_publisher(Bool, "stop", reliable_qos(1))
         self.driver_pub = self.create_publisher(Float64MultiArray, "driver/position_command", 10)
         self.create_timer(0.02, self._publish_feedback)
         self.params = AsyncParameterClient(self, adapter)
+        self.relay = AsyncParameterClient(self, "cell_relay")
         self._service_clients: dict[str, Any] = {}
+
+    def _set_fault(self, name: str, value: Any) -> None:
+        wire = value
+        if name == "js_offset":
+            wire = [0.0] if value is None else [float(x) for x in value]
+        elif name == "ref_offset":
+            wire = float(value)
+        wait_until(self.relay.services_are_ready, "the cell relay's parameter services")
+        fut = self.relay.set_parameters([Parameter(name, value=wire)])
+        wait_until(fut.done, f"the cell relay to take {name}")
+        assert fut.result().results[0].successful, name
+        self._faults[name] = value
 
     # recording
     def _sample(self, store: list[Sample], msg: JointTrajectory) -> None:
@@ -455,25 +487,8 @@ class Probe(Node):
     def _log(self, msg: Log) -> None:
         self.logs.append((msg.name, msg.msg))
 
-    # relays and injections
-    def _relay_js(self, msg: JointState) -> None:
-        self.js_received += 1
-        if self.js_block:
-            return
-        if self.js_offset is not None:
-            msg.position = (np.array(msg.position) + self.js_offset).tolist()
-        self.js_pub.publish(msg)
-
-    def _relay_ref(self, msg: JointTrajectory) -> None:
+    def _window(self, msg: JointTrajectory) -> None:
         self.last_window = msg
-        if self.ref_block:
-            return
-        if self.ref_offset:
-            for pt in msg.points:
-                pt.positions = (np.array(pt.positions) + self.ref_offset).tolist()
-        if self.ref_truncate:
-            msg.points = msg.points[:1]
-        self.ref_pub.publish(msg)
 
     def _publish_feedback(self) -> None:
         fb = self.feedback
@@ -505,51 +520,108 @@ def wait_until(cond: Callable[[], Any], what: str, timeout: float = 20.0,
         time.sleep(poll)
 
 
-def adapter_overrides(policy: Path, **params: Any) -> list[Parameter]:
+def adapter_values(policy: Path, **params: Any) -> dict[str, Any]:
     """Adapter parameters for the test cell (tests pass watchdog.* etc. as keyword names
     with '__' for '.')."""
     base = {"limits_file": str(LIMITS_FILE), "policy": str(policy), "stream_rate": RATE,
             "decision_period": PERIOD, "watchdog.joint_states_timeout": 0.3}
     base.update({k.replace("__", "."): v for k, v in params.items()})
-    return [Parameter(k, value=v) for k, v in base.items()]
+    return base
+
+
+def adapter_overrides(policy: Path, **params: Any) -> list[Parameter]:
+    """`adapter_values` as rclpy parameter overrides."""
+    return [Parameter(k, value=v) for k, v in adapter_values(policy, **params).items()]
+
+
+def start_adapter_process(folder: Path, params: dict[str, Any]) -> subprocess.Popen:
+    """The adapter in its own process, as it runs in a cell, from a ROS 2 params file."""
+    params_file = folder / "adapter_params.yaml"
+    params_file.write_text(yaml.safe_dump({"adapter": {"ros__parameters": params}}))
+    return subprocess.Popen(child_command(["adapter"], str(params_file)))
+
+
+def start_cell_process(folder: Path, config: dict[str, Any],
+                       timeout: float = 60.0) -> subprocess.Popen:
+    """Start test/cell_process.py with ``config`` and wait for its ``ready``."""
+    config_file = folder / "cell_process.json"
+    config_file.write_text(json.dumps(config))
+    proc = subprocess.Popen([sys.executable, str(Path(__file__).parent / "cell_process.py"),
+                             str(config_file)], stdout=subprocess.PIPE, text=True)
+    lines: queue.Queue[str] = queue.Queue()
+    threading.Thread(target=lambda: [lines.put(x) for x in proc.stdout], daemon=True).start()
+    try:
+        first = lines.get(timeout=timeout).strip()
+    except queue.Empty:
+        first = ""
+    if first != "ready":
+        stop_process(proc)
+        raise AssertionError(f"the cell process did not start (said {first!r})")
+    return proc
+
+
+def stop_process(proc: subprocess.Popen, timeout: float = 10.0) -> None:
+    """SIGINT a child process; SIGKILL it after ``timeout``."""
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGINT)
+        try:
+            proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(timeout=timeout)
 
 
 class Cell:
-    """reference_server + sim_driver + probe in one background executor; the adapter in its
-    own (`make_executor`) so the tests drive it only through its ROS interface.
+    """reference_server + sim_driver + the fault relay in their own process
+    (test/cell_process.py, as a driver is apart from the adapter); the probe and the adapter
+    in this one, each in its own executor (the adapter's from `make_executor`), so the tests
+    drive it only through its ROS interface.
 
     The reference is ``write_reference`` played in a loop (start_mode 'service'); the sim
     driver starts at its first point, so activation hands over to the policy at once.
     """
 
-    def __init__(self, folder: Path, policy: Path, **adapter_params: Any) -> None:
+    def __init__(self, folder: Path, policy: Path, adapter_in_process: bool = False,
+                 **adapter_params: Any) -> None:
         self.folder = folder
         self.reference_file = write_reference(folder)
+        self.processes: list[subprocess.Popen] = []
+        self.adapter: AdapterNode | None = None
+        try:
+            self.processes.append(start_cell_process(folder, {
+                "reference": {"reference_file": str(self.reference_file),
+                              "limits_file": str(LIMITS_FILE), "end_mode": "loop",
+                              "decision_period": PERIOD},
+                "driver": {"joints": JOINTS, "initial_positions": P0.tolist()}}))
+            params = adapter_values(policy, **adapter_params)
+            if not adapter_in_process:
+                self.processes.append(start_adapter_process(folder, params))
+            self._start_nodes(params if adapter_in_process else None)
+        except BaseException:
+            for proc in self.processes:
+                stop_process(proc)
+            raise
+
+    def _start_nodes(self, adapter_params: dict[str, Any] | None) -> None:
+        """The probe (and, when asked, the adapter) in this process."""
         self.probe = Probe()
-        self.reference = ReferenceServer(
-            parameter_overrides=[Parameter("reference_file", value=str(self.reference_file)),
-                                 Parameter("limits_file", value=str(LIMITS_FILE)),
-                                 Parameter("end_mode", value="loop"),
-                                 Parameter("decision_period", value=PERIOD)],
-            cli_args=["--ros-args", "-r", "reference/window:=raw/reference/window"])
-        self.driver = SimDriver(
-            parameter_overrides=[Parameter("joints", value=JOINTS),
-                                 Parameter("initial_positions", value=P0.tolist())],
-            cli_args=["--ros-args", "-r", "joint_states:=sim/joint_states"])
         self.cell_ex = SingleThreadedExecutor()
-        for node in (self.probe, self.reference, self.driver):
-            self.cell_ex.add_node(node)
-        self.adapter = AdapterNode(parameter_overrides=adapter_overrides(policy,
-                                                                         **adapter_params))
-        self.adapter_ex = make_executor()
-        self.adapter_ex.add_node(self.adapter)
+        self.cell_ex.add_node(self.probe)
+        executors = [self.cell_ex]
+        if adapter_params is not None:
+            self.adapter = AdapterNode(parameter_overrides=[
+                Parameter(k, value=v) for k, v in adapter_params.items()])
+            self.adapter_ex = make_executor()
+            self.adapter_ex.add_node(self.adapter)
+            executors.append(self.adapter_ex)
         # Everything built so far (modules, nodes, models) lives as long as the test: keep it
         # out of the collector, whose full passes over it stall every thread for 0.1-0.3 s
-        # here (the adapter shares this process) and would trip the watchdog's timeouts.
+        # and would trip the watchdog's timeouts of an adapter in this process.
         gc.collect()
         gc.freeze()
+        self._executors = executors
         self._spinners = [threading.Thread(target=self._spin, args=(ex,), daemon=True)
-                          for ex in (self.cell_ex, self.adapter_ex)]
+                          for ex in executors]
         for thread in self._spinners:
             thread.start()
 
@@ -561,8 +633,8 @@ class Cell:
             pass
 
     def close(self) -> None:
-        """Deactivate (if active), destroy every node and stop the executors (these
-        always, even when the adapter does not answer)."""
+        """Deactivate (if active), destroy every node and stop the executors and the cell
+        process (these always, even when the adapter does not answer)."""
         try:
             if self.state(timeout=5.0) == "active":
                 self.transition(Transition.TRANSITION_DEACTIVATE)
@@ -572,13 +644,18 @@ class Cell:
             self._destroy()
 
     def _destroy(self) -> None:
-        for ex in (self.adapter_ex, self.cell_ex):
-            ex.shutdown(timeout_sec=2.0)
-        for thread in self._spinners:
-            thread.join(timeout=5.0)
-        for node in (self.adapter, self.reference, self.driver, self.probe):
-            node.destroy_node()
-        gc.unfreeze()
+        try:
+            for ex in self._executors:
+                ex.shutdown(timeout_sec=2.0)
+            for thread in self._spinners:
+                thread.join(timeout=5.0)
+            for node in (self.adapter, self.probe):
+                if node is not None:
+                    node.destroy_node()
+            gc.unfreeze()
+        finally:
+            for proc in reversed(self.processes):   # the adapter first, then the cell
+                stop_process(proc)
 
     # ---------------------------------------------------------------- services
     def call(self, srv_type: Any, name: str, request: Any = None, timeout: float = 15.0,
@@ -661,9 +738,14 @@ class Cell:
         wait_until(lambda: self.mode() == mode, f"adapter mode '{mode}'", timeout)
 
     def wait_cell(self) -> None:
-        """Wait until the relays are connected to the reference server and the driver."""
-        wait_until(lambda: self.reference.count_subscribers("raw/reference/window") > 0
-                   and self.probe.js_received > 0, "the reference server and sim driver")
+        """Wait until the reference server's windows and the relayed joint states arrive."""
+        seen: list[Any] = []
+        sub = self.probe.create_subscription(JointState, "joint_states", seen.append, 10)
+        try:
+            wait_until(lambda: self.probe.last_window is not None and seen,
+                       "the reference server and sim driver")
+        finally:
+            self.probe.destroy_subscription(sub)
 
     def samples_since(self, t: float) -> list[Sample]:
         """Streamed setpoints with stamp >= ``t`` (ROS time)."""

@@ -29,8 +29,8 @@ def cell(tmp_path_factory):
     tracker = h.write_card(folder, "tracker", "tracker")
     # generous deviation thresholds: the limit_scale test makes the plan lag on purpose
     c = h.Cell(folder, tracker, watchdog__deviation_joint=0.5, watchdog__deviation_norm=1.0)
-    c.wait_cell()
     try:
+        c.wait_cell()
         yield c
     finally:
         try:

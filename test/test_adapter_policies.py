@@ -48,10 +48,10 @@ def cell(cards):
     rclpy.init()
     folder, c = cards
     cell = h.Cell(folder, c["tracker"], features=["edge_offset", "edge_angle"])
-    cell.probe.feedback = {"edge_offset": 0.0, "edge_angle": 0.0}
-    cell.start_following()
-    cell.start_reference()
     try:
+        cell.probe.feedback = {"edge_offset": 0.0, "edge_angle": 0.0}
+        cell.start_following()
+        cell.start_reference()
         yield cell
     finally:
         try:

@@ -18,13 +18,13 @@ adapter must refuse a joint state or a window is decided independently of its co
 rule "every joint present with a finite position, every point with one value per joint".
 Example counts are modest; bench/fuzz_report.py runs more. The counts are printed.
 
-The clock test runs its own small cell in sim time and sends the clock backwards.
+The clock going backwards under sim time is test_fuzz_sim_time.py (its own cell, alone).
 """
 import numpy as np
 import pytest
 
 import fuzz_harness
-from fuzz_harness import Cases, ClockFuzz, TopicFuzz
+from fuzz_harness import Cases, TopicFuzz
 
 CASES = Cases()
 EXAMPLES = {"joint_states": 20, "reference/window": 12, "feedback": 12,
@@ -56,17 +56,6 @@ def fuzz(tmp_path_factory, request):
                                       + CASES.table())
 
 
-@pytest.fixture(scope="module")
-def clock(fuzz, tmp_path_factory):
-    """The sim-time cell (after the topic fuzzing, which owns rclpy.init)."""
-    c = ClockFuzz(tmp_path_factory.mktemp("clock"))
-    try:
-        c.start()
-        yield c
-    finally:
-        c.close()
-
-
 @pytest.mark.parametrize("kind", list(EXAMPLES))
 def test_fuzzed_message_is_refused_or_stops_smoothly(fuzz, kind):
     fuzz_harness.fuzz_topics(fuzz, kind, EXAMPLES[kind], CASES)
@@ -94,28 +83,3 @@ def test_feedback_stamped_ahead_of_the_clock_cannot_hide_a_dropout(fuzz):
     finally:
         fuzz.probe.feedback = {"edge_offset": 0.0}
     CASES.add("feedback", "stopped (feedback_stale) after a stamp 30 s ahead")
-
-
-@pytest.mark.parametrize("back", [0.02, 0.4, 2.5])
-def test_sim_time_going_backwards_pauses_the_stream_then_it_goes_on_or_stops_smoothly(
-        clock, back):
-    """Under use_sim_time the clock goes back by ``back`` seconds mid-motion: the adapter
-    never streams a setpoint at a time already passed (stamps strictly increase), says so
-    in its log (for a jump of more than a tick), the reference server refuses to play
-    backwards, and the stream stays within the limits; afterwards it either follows on or
-    stopped smoothly with a named reason."""
-    n0 = len(clock.setpoints)
-    outcome = clock.run_jump(back)
-    CASES.add("sim time backwards", outcome)
-    ns, p, v, a = clock.stream()
-    assert np.all(np.diff(ns) > 0), "a setpoint stamp went backwards"
-    bad = fuzz_harness.step_check(ns, p, v, a)
-    assert not bad, bad
-    assert len(clock.setpoints) > n0, "the stream did not go on after the clock passed the jump"
-    if back > 0.05:
-        assert any(name.endswith("adapter") and "ROS time went back" in text
-                   for name, text in clock.logs), clock.logs[-10:]
-        assert any(name.endswith("reference_server") and "time went backwards" in text
-                   for name, text in clock.logs), clock.logs[-10:]
-    diag_errors = {k: clock.adapter._counters[k] for k in ("stream_errors", "decision_errors")}
-    assert diag_errors == {"stream_errors": 0, "decision_errors": 0}, diag_errors

@@ -12,15 +12,14 @@ adapter stops, naming the request); a synthetic stream with a jump is reported.
 from __future__ import annotations
 
 import math
-import threading
+import subprocess
 import time
 
 import numpy as np
 import pytest
 import rclpy
+import yaml
 from lifecycle_msgs.msg import Transition
-from rclpy.executors import SingleThreadedExecutor
-from rclpy.parameter import Parameter
 from trajectory_msgs.msg import JointTrajectory
 
 import adapter_harness as h
@@ -28,6 +27,7 @@ from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.monitor import MonitorError, StreamMonitor
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.stream import CommandPlan, Segment
+from adaptive_streamer.bringup import child_command
 from adaptive_streamer.core.watchdog import WatchdogConfig
 from adaptive_streamer.nodes.common import reliable_qos
 from adaptive_streamer.nodes.driver_outputs import fill_setpoint, setpoint_message
@@ -104,25 +104,27 @@ def cell(tmp_path_factory):
     # driver's lag alone reaches 0.025 rad in a loaded test run (j6, measured)
     c = h.Cell(folder, h.write_card(folder, "tracker", "tracker"),
                watchdog__following_error=0.1)
-    monitor = WatchdogMonitor(parameter_overrides=[
-        Parameter("limits_file", value=str(h.LIMITS_FILE)),
-        Parameter("following_error", value=0.04),   # stricter than the adapter's 0.1
-        Parameter("stop_on_violation", value=True)])
-    ex = SingleThreadedExecutor()
-    ex.add_node(monitor)
-    threading.Thread(target=ex.spin, daemon=True).start()
-    c.monitor = monitor
-    c.start_following()
-    c.start_reference()
+    # the watchdog in its own process, as it runs next to a real cell
+    params = folder / "watchdog.yaml"
+    params.write_text(yaml.safe_dump({"watchdog": {"ros__parameters": {
+        "limits_file": str(h.LIMITS_FILE),
+        "following_error": 0.04,   # stricter than the adapter's 0.1
+        "stop_on_violation": True}}}))
+    monitor = subprocess.Popen(child_command(["watchdog"], str(params)))
     try:
+        c.wait_diag(lambda v: True, "the watchdog's first diagnostics", name="watchdog",
+                    timeout=60.0)
+        c.start_following()
+        c.start_reference()
         yield c
     finally:
-        ex.shutdown(timeout_sec=2.0)
-        monitor.destroy_node()
         try:
-            c.close()
+            h.stop_process(monitor)
         finally:
-            rclpy.shutdown()
+            try:
+                c.close()
+            finally:
+                rclpy.shutdown()
 
 
 def test_node_refuses_missing_limits(cell):

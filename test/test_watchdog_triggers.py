@@ -49,12 +49,12 @@ def cell(cards):
     rclpy.init()
     folder, c = cards
     cell = h.Cell(folder, c["fault"])
-    cell.fault_card = c["fault"]
-    cell.probe.feedback = {"fault": 0.0}
-    cell.start_following()
-    cell.start_reference()
-    time.sleep(1.0)
     try:
+        cell.fault_card = c["fault"]
+        cell.probe.feedback = {"fault": 0.0}
+        cell.start_following()
+        cell.start_reference()
+        time.sleep(1.0)
         yield cell
     finally:
         try:

@@ -73,7 +73,6 @@ class AdapterNode(LifecycleNode):
         self.session: StreamingSession | None = None
         self._internal_set = threading.local()
         self._policy_lock = threading.Lock()
-        self._latest: dict[str, Any] = {}
         self._latest_inputs: LatestInputs | None = None
         self._stream_timer = None
         self._decide_gc = None
@@ -370,7 +369,6 @@ class AdapterNode(LifecycleNode):
             self.destroy_client(self._pause_client)
         self._setpoint_pub = self._shadow_pub = self._decision_pub = self._pause_client = None
         self._outputs, self._subs, self._adapter_services = [], [], []
-        self._latest.clear()
         self._latest_inputs = None
         self._js_merger = None
         self.session = None
