@@ -766,15 +766,15 @@ class Cell:
         return wait_until(resting, "the stream at rest", timeout)
 
     def start_following(self, timeout: float = 30.0) -> None:
-        """configure + activate (waiting for fresh inputs first), then follow the reference."""
+        """configure + activate (asked again until the inputs are fresh), then follow."""
         self.wait_cell()
         if self.state() == "unconfigured":
             assert self.transition(Transition.TRANSITION_CONFIGURE), "configure failed"
-        wait_until(lambda: self.probe.count_subscribers("joint_states") > 0
-                   and self.probe.count_subscribers("reference/window") > 0,
-                   "adapter subscriptions")
-        time.sleep(0.3)  # a few windows and joint states reach the new subscriptions
-        assert self.transition(Transition.TRANSITION_ACTIVATE), "activate failed"
+        # activation is refused (and says why in the log) until joint states and a window
+        # reached the adapter's new subscriptions: asked again, as bringup does
+        wait_until(lambda: self.transition(Transition.TRANSITION_ACTIVATE),
+                   "activation (fresh joint_states and a reference window)", timeout,
+                   poll=0.3)
         self.wait_mode("following", timeout)
 
     def start_reference(self) -> None:

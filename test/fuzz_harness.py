@@ -909,9 +909,14 @@ class TopicFuzz:
         else:
             msg.header.stamp.sec = -1 if stamp < 0 else 0
         self.edge_pub.publish(msg)
-        self.ah.wait_until(lambda: vars(table.counters(0))["received"] > before["received"],
-                           "the bridge to receive the sample", 5.0)
-        after = vars(table.counters(0))
+        # the bridge counts the arrival first and its verdict a moment later (its own
+        # thread): wait for both
+        def judged() -> dict[str, int] | None:
+            now = dict(vars(table.counters(0)))
+            done = now["received"] > before["received"] and any(
+                now[k] != before[k] for k in now if k != "received")
+            return now if done else None
+        after = self.ah.wait_until(judged, "the bridge to receive and judge the sample", 5.0)
         changed = [k for k in after if k != "received" and after[k] != before[k]]
         if spec["values"] in ("nan", "inf"):
             want = "dropped_nan"

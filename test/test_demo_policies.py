@@ -154,14 +154,27 @@ def test_nan_fault_stops_the_closed_loop_smoothly():
     np.testing.assert_allclose(r.commanded.velocity[-1], 0.0, atol=1e-9)
 
 
+def all_nodes(graph: onnx.GraphProto):
+    """Every node of ``graph`` and of the subgraphs its nodes hold (If branches, Loop
+    bodies)."""
+    for nd in graph.node:
+        yield nd
+        for attr in nd.attribute:
+            if attr.type == onnx.AttributeProto.GRAPH:
+                yield from all_nodes(attr.g)
+
+
 def test_slow_fault_computes_the_edge_action_through_a_long_loop(running, reference):
     card = load_card(DEMO / "faults/slow_policy.yaml")
     model = onnx.load(str(card.model))
-    loops = [nd for nd in model.graph.node if nd.op_type == "Loop"]
+    # the long loop sits in the branch an If node takes while the reference moves
+    nodes = list(all_nodes(model.graph))
+    loops = [nd for nd in nodes if nd.op_type == "Loop"]
     assert len(loops) == 1
+    assert any(nd.op_type == "If" for nd in model.graph.node)
     steps = next(onnx.numpy_helper.to_array(t) for t in model.graph.initializer
                  if t.name == loops[0].input[0])
-    draws = [nd for nd in model.graph.node if nd.op_type == "RandomNormal"]
+    draws = [nd for nd in nodes if nd.op_type == "RandomNormal"]
     size = next(a.ints for a in draws[0].attribute if a.name == "shape")
     flops = 2 * size[0] * size[1] * size[1] * int(steps)
     assert flops > 1e10       # work per inference, not a timing (timings: the build script)
