@@ -18,7 +18,7 @@ adapter must refuse a joint state or a window is decided independently of its co
 rule "every joint present with a finite position, every point with one value per joint".
 Example counts are modest; bench/fuzz_report.py runs more. The counts are printed.
 
-The clock going backwards under sim time is test_fuzz_sim_time.py (its own cell, alone).
+The clock going backwards under sim time is test_fuzz_topics_sim_time.py (its own cell, alone).
 """
 import numpy as np
 import pytest
