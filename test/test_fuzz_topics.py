@@ -20,7 +20,6 @@ Example counts are modest; bench/fuzz_report.py runs more. The counts are printe
 
 The clock going backwards under sim time is test_fuzz_topics_sim_time.py (its own cell, alone).
 """
-import numpy as np
 import pytest
 
 import fuzz_harness
