@@ -334,6 +334,12 @@ class AdapterNode(LifecycleNode):
         self._stop_and_wait()
         self._teardown_timers()
 
+    def destroy_node(self) -> None:
+        """Destroying an active adapter first brings the arm to rest and ends the stream
+        thread (which would otherwise tick on, holding the node and its DDS participant)."""
+        self.stop_at_rest()
+        super().destroy_node()
+
     def on_deactivate(self, state: LifecycleState) -> TransitionCallbackReturn:
         self._stop_and_wait()
         self._teardown_timers()
