@@ -8,6 +8,7 @@ import gc
 import itertools
 import os
 import sys
+import threading
 from pathlib import Path
 
 import pytest
@@ -39,6 +40,17 @@ def _own_domain_per_module():
     gc.collect()
     os.environ["ROS_DOMAIN_ID"] = str(1 + (os.getpid() + 37 * next(_MODULES)) % 232)
     yield
+    # an adapter destroyed while active used to leave its stream thread ticking, which kept
+    # its node and DDS participant alive and broke discovery for every later module: name
+    # the module that leaves one behind
+    streams = [t for t in threading.enumerate()
+               if t.name == "adaptive_streamer-stream" and t.is_alive()]
+    if streams:
+        for t in streams:
+            t.join(timeout=5.0)
+        assert not any(t.is_alive() for t in streams), (
+            "this module left an adapter stream thread running (an adapter node was not "
+            "deactivated or destroyed)")
     # a module whose cell failed to come up may not have shut rclpy down: the next
     # module's rclpy.init() would then fail
     if "rclpy" in sys.modules:
