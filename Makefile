@@ -27,7 +27,7 @@ $(STAMP): setup.py setup.cfg package.xml Makefile
 	touch $(STAMP)
 
 test: setup
-	$(PY) -m pytest -q $(PYTEST_ARGS) test
+	$(PY) test/run_suite.py -q $(PYTEST_ARGS)
 
 demo: setup
 	$(VENV)/bin/adaptive-streamer demo

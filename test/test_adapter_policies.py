@@ -112,9 +112,13 @@ def test_tracker_onnx_linear_feedback_and_hold(cell, cards):
     assert abs(expected[1]) > 0.02  # the check is not vacuous
 
     # hold: the plan brakes to rest and stays there while the reference moves on, until
-    # the deviation watchdog stops it (hold does not follow)
-    cell.probe.feedback = {"edge_offset": 0.0, "edge_angle": 0.0}
+    # the deviation watchdog stops it (hold does not follow). The swap takes effect at a
+    # decision after the card has loaded: the feedback stays as it was until hold runs (a
+    # change would move linear_feedback's rest point meanwhile), and the rest is taken once
+    # hold has run for a while
     swap(cell, c["hold"])
+    cell.wait_rest(hold=0.3, timeout=15.0)
+    cell.probe.feedback = {"edge_offset": 0.0, "edge_angle": 0.0}
     resting = cell.probe.setpoints[-1].position.copy()
     cell.start_reference()
     cell.wait_diag(lambda v: v.get("trip") == "deviation", "deviation trip under hold",

@@ -25,6 +25,8 @@ import pytest
 import fuzz_harness
 from fuzz_harness import Cases, TopicFuzz
 
+pytestmark = pytest.mark.ros
+
 CASES = Cases()
 EXAMPLES = {"joint_states": 20, "reference/window": 12, "feedback": 12,
             "sensor_bridge input": 30, "sim_driver command": 12}

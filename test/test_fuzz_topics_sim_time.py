@@ -10,6 +10,8 @@ import pytest
 import fuzz_harness
 from fuzz_harness import Cases, ClockFuzz
 
+pytestmark = pytest.mark.ros
+
 CASES = Cases()
 
 

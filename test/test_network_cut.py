@@ -34,6 +34,8 @@ import adapter_harness as ah
 import fuzz_harness
 from fuzz_harness import NetnsError, NetProbe, NetHosts
 
+pytestmark = pytest.mark.ros
+
 ROOT = Path(__file__).resolve().parents[1]
 JS_TIMEOUT = 0.25     # adapter watchdog.joint_states_timeout [s] (0.1 s tripped on its own
                       # while five processes started on the shared 2-core machine)

@@ -33,6 +33,8 @@ from adaptive_streamer.nodes.common import reliable_qos
 from adaptive_streamer.nodes.driver_outputs import fill_setpoint, setpoint_message
 from adaptive_streamer.nodes.watchdog_monitor import WatchdogMonitor, WatchdogMonitorError
 
+pytestmark = pytest.mark.ros
+
 EPOCH = 1_796_000_000.0
 LIM2 = JointLimits(["a", "b"], [-2.0, -1.0], [2.0, 1.0], [2.0, 1.5], [8.0, 6.0], [80.0, 60.0])
 
