@@ -5,6 +5,7 @@
     adaptive-streamer bringup --params FILE [--one-process] [--record DIR]
     adaptive-streamer replay BAG... [--params FILE] [--policy ...] [--out DIR]
     adaptive-streamer check-policy CARD_OR_MODEL
+    adaptive-streamer preflight --params FILE [--timeout S]
 """
 from __future__ import annotations
 
@@ -40,6 +41,15 @@ def _check_policy(args: argparse.Namespace) -> int:
     return run(args)
 
 
+def _preflight(args: argparse.Namespace) -> int:
+    from .preflight.run import PreflightError, run
+    try:
+        return run(args)
+    except PreflightError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser with every subcommand."""
     parser = argparse.ArgumentParser(
@@ -68,6 +78,11 @@ def build_parser() -> argparse.ArgumentParser:
     from .check_policy import add_arguments as check_arguments
     check_arguments(check)
     check.set_defaults(func=_check_policy)
+
+    pre = sub.add_parser("preflight", help="check a cell before a pass (nothing moves)")
+    from .preflight.options import add_arguments as preflight_arguments
+    preflight_arguments(pre)
+    pre.set_defaults(func=_preflight)
     return parser
 
 
