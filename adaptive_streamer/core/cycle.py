@@ -206,12 +206,9 @@ class DecisionCycle:
         if self._pending.stage is not None:  # new limits: brake until the plan fits them
             return self._braking(t, state, mode, wstamp, fstamp, "ok", "limit transition")
         try:
-            validate_window(window)
-            ref = align(window, t + self._offsets)
+            inputs = self.policy_inputs(window, feedback)
         except AlignmentError as exc:
             return self._braking(t, state, "stopping", wstamp, fstamp, "reference_stale", str(exc))
-        inputs = PolicyInputs(t, state, ref.positions, ref.velocities, ref.accelerations,
-                              feedback, self.previous_action)
         if mode == "approaching":
             policy, stage = self.approach, self.approach_stage
         else:
@@ -241,11 +238,12 @@ class DecisionCycle:
         viable = bool(r.viable.all())
         end = integrate(*state, u, self.period)
         dev_max, dev_norm, reason = self.watchdog.deviation(
-            end.position, ref.positions[1], self._continuous)
+            end.position, inputs.ref_positions[1], self._continuous)
         next_mode = mode
         if mode == "approaching":
-            close = (np.all(np.abs(end.position - ref.positions[1]) <= self.config.approach_tolerance)
-                     and np.all(np.abs(end.velocity - ref.velocities[1])
+            close = (np.all(np.abs(end.position - inputs.ref_positions[1])
+                            <= self.config.approach_tolerance)
+                     and np.all(np.abs(end.velocity - inputs.ref_velocities[1])
                                 <= self.config.approach_tolerance))
             next_mode = "following" if close else "approaching"
         elif reason is not None:
@@ -254,6 +252,17 @@ class DecisionCycle:
                            deviation_norm=dev_norm)
         return Decision(t, mode, state, wstamp, fstamp, action, r.lo, r.hi, u, viable,
                         dev_max, dev_norm, "ok", "", elapsed, next_mode)
+
+    def policy_inputs(self, window: Window, feedback: FeatureVector | None) -> PolicyInputs:
+        """What the policy sees at the current decision instant (the reference aligned at
+        ``t + i T``); raises `AlignmentError` for an unusable window. `decide` builds its
+        inputs here, so a caller can look at a decision's inputs before it is made."""
+        if self.state is None:
+            raise CycleError("policy_inputs() before begin()")
+        validate_window(window)
+        ref = align(window, self.t + self._offsets)
+        return PolicyInputs(self.t, self.state, ref.positions, ref.velocities,
+                            ref.accelerations, feedback, self.previous_action)
 
     def commit(self, d: Decision, now: float | None = None) -> bool:
         """Apply decision ``d`` if it is for the current instant; fire its watchdog verdict."""
