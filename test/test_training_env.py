@@ -134,7 +134,7 @@ def test_own_plant_plugs_in() -> None:
     assert obs.shape == env.observation_space.shape
     steps = 0
     while True:  # feed-forward of the reference acceleration tracks the reference
-        pin = env._cell.session.cycle.policy_inputs(env._inputs.window, None)
+        pin = env.policy_inputs()
         obs, reward, terminated, truncated, info = env.step(pin.ref_accelerations[1])
         steps += 1
         if terminated or truncated:

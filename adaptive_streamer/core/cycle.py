@@ -63,6 +63,14 @@ class CycleConfig:
     rest_acceleration: float = 1e-5
 
 
+def map_action(meaning: str, action: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """The next acceleration for a raw ``action`` of meaning ``normalised`` ([-1, 1] onto
+    [lo, hi], clipped) or ``acceleration`` (clipped into [lo, hi]); elementwise, any shape."""
+    if meaning == "normalised":
+        return lo + 0.5 * (np.clip(action, -1.0, 1.0) + 1.0) * (hi - lo)
+    return np.minimum(np.maximum(action, lo), hi)
+
+
 @dataclass(frozen=True)
 class Decision:
     """One decision cycle's record (everything replay needs to reproduce or compare it)."""
@@ -229,10 +237,8 @@ class DecisionCycle:
             return replace(d, action=action if action.shape == (n,) else nan, policy_time=elapsed)
         r = stage.evaluate(*state)
         meaning = policy.action_meaning
-        if meaning == "normalised":
-            u = r.lo + 0.5 * (np.clip(action, -1.0, 1.0) + 1.0) * (r.hi - r.lo)
-        elif meaning == "acceleration":
-            u = np.minimum(np.maximum(action, r.lo), r.hi)
+        if meaning in ("normalised", "acceleration"):
+            u = map_action(meaning, action, r.lo, r.hi)
         else:
             u = stage.braking(state, r)
         viable = bool(r.viable.all())

@@ -36,6 +36,7 @@ from ..core.alignment import AlignmentError
 from ..core.feedback import FeedbackParser
 from ..core.limits import JointLimits
 from ..core.policies.card import PolicyCard, load_card
+from ..core.policy_inputs import PolicyInputs
 from ..core.session import SessionInputs
 from ..sim.closed_loop import CellSettings, demo_file
 from .action_policy import ActionPolicy
@@ -167,6 +168,12 @@ class DecisionEnv(gym.Env):
             self._obs = self._observe(nxt)
         self._inputs = None if terminated or truncated else nxt
         return self._obs.copy(), float(terms.reward), terminated, truncated, info
+
+    def policy_inputs(self) -> PolicyInputs:
+        """What the policy sees at the coming decision (the observation's source)."""
+        if self._cell is None or self._inputs is None or self._inputs.window is None:
+            raise EnvError("policy_inputs(): no decision is coming (reset first)")
+        return self._cell.session.cycle.policy_inputs(self._inputs.window, self._inputs.feedback)
 
     # ------------------------------------------------------------------ internals
     def _observe(self, inputs: SessionInputs) -> np.ndarray:

@@ -51,20 +51,22 @@ class RewardWeights:
 class RewardTerms:
     """The factors of one decision's reward and their product."""
 
-    task: float
-    deviation: float
-    smoothness: float
+    task: float | np.ndarray
+    deviation: float | np.ndarray
+    smoothness: float | np.ndarray
 
     @property
-    def reward(self) -> float:
+    def reward(self) -> float | np.ndarray:
         """task * deviation * smoothness."""
         return self.task * self.deviation * self.smoothness
 
 
-def reward_terms(weights: RewardWeights, task_value: float | None, deviation_norm: float,
-                 deviation_limit: float, u: np.ndarray, previous_acceleration: np.ndarray,
+def reward_terms(weights: RewardWeights, task_value: float | np.ndarray | None,
+                 deviation_norm: float | np.ndarray, deviation_limit: float,
+                 u: np.ndarray, previous_acceleration: np.ndarray,
                  jerk_step: np.ndarray) -> RewardTerms:
-    """The reward factors of one decision.
+    """The reward factors of one decision, or of B decisions at once (arrays: task value
+    and deviation (B,), accelerations (B, n); the terms are then (B,) arrays).
 
     Args:
         task_value: the task feature's value (None or NaN when invalid or absent).
@@ -74,10 +76,14 @@ def reward_terms(weights: RewardWeights, task_value: float | None, deviation_nor
         u, previous_acceleration: committed acceleration and the one it starts from (n,).
         jerk_step: ``J T`` per joint (n,).
     """
-    task = (0.0 if task_value is None or not math.isfinite(task_value)
-            else math.exp(-(task_value / weights.task_scale) ** 2))
-    d = deviation_norm if math.isfinite(deviation_norm) else 0.0
-    deviation = math.exp(-weights.deviation_weight * (d / deviation_limit) ** 2)
-    rough = float(np.mean(((np.asarray(u) - previous_acceleration) / jerk_step) ** 2))
-    smoothness = math.exp(-weights.smoothness_weight * rough)
+    x = np.asarray(np.nan if task_value is None else task_value, float)
+    with np.errstate(invalid="ignore"):
+        task = np.where(np.isfinite(x), np.exp(-(x / weights.task_scale) ** 2), 0.0)
+    d = np.asarray(deviation_norm, float)
+    d = np.where(np.isfinite(d), d, 0.0)
+    deviation = np.exp(-weights.deviation_weight * (d / deviation_limit) ** 2)
+    rough = np.mean(((np.asarray(u) - previous_acceleration) / jerk_step) ** 2, axis=-1)
+    smoothness = np.exp(-weights.smoothness_weight * rough)
+    if task.ndim == 0 and deviation.ndim == 0 and np.ndim(smoothness) == 0:
+        return RewardTerms(float(task), float(deviation), float(smoothness))
     return RewardTerms(task, deviation, smoothness)
