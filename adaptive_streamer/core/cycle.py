@@ -63,6 +63,18 @@ class CycleConfig:
     rest_acceleration: float = 1e-5
 
 
+def policy_inputs_at(t: float, state: MotionState, window: Window,
+                     feedback: FeatureVector | None, previous_action: np.ndarray,
+                     offsets: np.ndarray) -> PolicyInputs:
+    """The policy's inputs at decision instant ``t``: the reference aligned at
+    ``t + offsets`` (``offsets = arange(H) * T``); raises `AlignmentError` for an unusable
+    window. The cycle and the dataset builder both build them here."""
+    validate_window(window)
+    ref = align(window, t + offsets)
+    return PolicyInputs(t, state, ref.positions, ref.velocities, ref.accelerations,
+                        feedback, previous_action)
+
+
 def map_action(meaning: str, action: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
     """The next acceleration for a raw ``action`` of meaning ``normalised`` ([-1, 1] onto
     [lo, hi], clipped) or ``acceleration`` (clipped into [lo, hi]); elementwise, any shape."""
@@ -265,10 +277,8 @@ class DecisionCycle:
         inputs here, so a caller can look at a decision's inputs before it is made."""
         if self.state is None:
             raise CycleError("policy_inputs() before begin()")
-        validate_window(window)
-        ref = align(window, self.t + self._offsets)
-        return PolicyInputs(self.t, self.state, ref.positions, ref.velocities,
-                            ref.accelerations, feedback, self.previous_action)
+        return policy_inputs_at(self.t, self.state, window, feedback, self.previous_action,
+                                self._offsets)
 
     def commit(self, d: Decision, now: float | None = None) -> bool:
         """Apply decision ``d`` if it is for the current instant; fire its watchdog verdict."""
