@@ -5,6 +5,8 @@
     adaptive-streamer bringup --params FILE [--one-process] [--record DIR]
     adaptive-streamer replay BAG... [--params FILE] [--policy ...] [--out DIR]
     adaptive-streamer check-policy CARD_OR_MODEL
+    adaptive-streamer preflight --params FILE [--timeout S]
+    adaptive-streamer dataset BAG... --card CARD --out FILE.npz
 """
 from __future__ import annotations
 
@@ -40,6 +42,27 @@ def _check_policy(args: argparse.Namespace) -> int:
     return run(args)
 
 
+def _preflight(args: argparse.Namespace) -> int:
+    from .preflight.run import PreflightError, run
+    try:
+        return run(args)
+    except PreflightError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+
+
+def _dataset(args: argparse.Namespace) -> int:
+    from .core.policies import PolicyError
+    from .training.dataset import DatasetError, write_table
+    try:
+        table = write_table(args.bags, args.card, args.out)
+    except (DatasetError, PolicyError) as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    print(f"{args.out}: {table.rows} decisions from {len(args.bags)} bag(s)")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser with every subcommand."""
     parser = argparse.ArgumentParser(
@@ -68,6 +91,18 @@ def build_parser() -> argparse.ArgumentParser:
     from .check_policy import add_arguments as check_arguments
     check_arguments(check)
     check.set_defaults(func=_check_policy)
+
+    pre = sub.add_parser("preflight", help="check a cell before a pass (nothing moves)")
+    from .preflight.options import add_arguments as preflight_arguments
+    preflight_arguments(pre)
+    pre.set_defaults(func=_preflight)
+
+    data = sub.add_parser("dataset", help="turn recorded bags into a training table (NPZ)")
+    data.add_argument("bags", nargs="+", metavar="BAG", help="recorded bag folders or files")
+    data.add_argument("--card", required=True,
+                      help="policy card whose observation layout the table uses")
+    data.add_argument("--out", required=True, metavar="FILE.npz", help="table to write")
+    data.set_defaults(func=_dataset)
     return parser
 
 

@@ -14,7 +14,7 @@ import pytest
 
 PKG = Path(__file__).resolve().parents[1] / "adaptive_streamer"
 LEAVES = {"share", "safety"}            # stdlib-only helpers: where installed files are; cautions
-APP = {"cli", "bringup", "check_policy"}  # the command line on top of everything
+APP = {"cli", "bringup", "check_policy", "preflight"}  # the command line on top of everything
 ALLOWED: dict[str, set[str]] = {
     "core": {"core"},
     "sim": {"core", "sim", "share"},

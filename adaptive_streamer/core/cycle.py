@@ -63,6 +63,26 @@ class CycleConfig:
     rest_acceleration: float = 1e-5
 
 
+def policy_inputs_at(t: float, state: MotionState, window: Window,
+                     feedback: FeatureVector | None, previous_action: np.ndarray,
+                     offsets: np.ndarray) -> PolicyInputs:
+    """The policy's inputs at decision instant ``t``: the reference aligned at
+    ``t + offsets`` (``offsets = arange(H) * T``); raises `AlignmentError` for an unusable
+    window. The cycle and the dataset builder both build them here."""
+    validate_window(window)
+    ref = align(window, t + offsets)
+    return PolicyInputs(t, state, ref.positions, ref.velocities, ref.accelerations,
+                        feedback, previous_action)
+
+
+def map_action(meaning: str, action: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """The next acceleration for a raw ``action`` of meaning ``normalised`` ([-1, 1] onto
+    [lo, hi], clipped) or ``acceleration`` (clipped into [lo, hi]); elementwise, any shape."""
+    if meaning == "normalised":
+        return lo + 0.5 * (np.clip(action, -1.0, 1.0) + 1.0) * (hi - lo)
+    return np.minimum(np.maximum(action, lo), hi)
+
+
 @dataclass(frozen=True)
 class Decision:
     """One decision cycle's record (everything replay needs to reproduce or compare it)."""
@@ -206,12 +226,9 @@ class DecisionCycle:
         if self._pending.stage is not None:  # new limits: brake until the plan fits them
             return self._braking(t, state, mode, wstamp, fstamp, "ok", "limit transition")
         try:
-            validate_window(window)
-            ref = align(window, t + self._offsets)
+            inputs = self.policy_inputs(window, feedback)
         except AlignmentError as exc:
             return self._braking(t, state, "stopping", wstamp, fstamp, "reference_stale", str(exc))
-        inputs = PolicyInputs(t, state, ref.positions, ref.velocities, ref.accelerations,
-                              feedback, self.previous_action)
         if mode == "approaching":
             policy, stage = self.approach, self.approach_stage
         else:
@@ -232,20 +249,19 @@ class DecisionCycle:
             return replace(d, action=action if action.shape == (n,) else nan, policy_time=elapsed)
         r = stage.evaluate(*state)
         meaning = policy.action_meaning
-        if meaning == "normalised":
-            u = r.lo + 0.5 * (np.clip(action, -1.0, 1.0) + 1.0) * (r.hi - r.lo)
-        elif meaning == "acceleration":
-            u = np.minimum(np.maximum(action, r.lo), r.hi)
+        if meaning in ("normalised", "acceleration"):
+            u = map_action(meaning, action, r.lo, r.hi)
         else:
             u = stage.braking(state, r)
         viable = bool(r.viable.all())
         end = integrate(*state, u, self.period)
         dev_max, dev_norm, reason = self.watchdog.deviation(
-            end.position, ref.positions[1], self._continuous)
+            end.position, inputs.ref_positions[1], self._continuous)
         next_mode = mode
         if mode == "approaching":
-            close = (np.all(np.abs(end.position - ref.positions[1]) <= self.config.approach_tolerance)
-                     and np.all(np.abs(end.velocity - ref.velocities[1])
+            close = (np.all(np.abs(end.position - inputs.ref_positions[1])
+                            <= self.config.approach_tolerance)
+                     and np.all(np.abs(end.velocity - inputs.ref_velocities[1])
                                 <= self.config.approach_tolerance))
             next_mode = "following" if close else "approaching"
         elif reason is not None:
@@ -254,6 +270,15 @@ class DecisionCycle:
                            deviation_norm=dev_norm)
         return Decision(t, mode, state, wstamp, fstamp, action, r.lo, r.hi, u, viable,
                         dev_max, dev_norm, "ok", "", elapsed, next_mode)
+
+    def policy_inputs(self, window: Window, feedback: FeatureVector | None) -> PolicyInputs:
+        """What the policy sees at the current decision instant (the reference aligned at
+        ``t + i T``); raises `AlignmentError` for an unusable window. `decide` builds its
+        inputs here, so a caller can look at a decision's inputs before it is made."""
+        if self.state is None:
+            raise CycleError("policy_inputs() before begin()")
+        return policy_inputs_at(self.t, self.state, window, feedback, self.previous_action,
+                                self._offsets)
 
     def commit(self, d: Decision, now: float | None = None) -> bool:
         """Apply decision ``d`` if it is for the current instant; fire its watchdog verdict."""

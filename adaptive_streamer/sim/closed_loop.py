@@ -28,7 +28,8 @@ reference window, stream tick and decision. The task metric is `lateral_error` o
 *measured* joints (what the live demo reads from ``joint_states``) over the *pass*: from the
 reference start for the reference's duration, as the live demo reports it.
 
-`run_closed_loop` returns a `ClosedLoopResult` (arrays and a `ClosedLoopSummary`).
+`run_closed_loop` returns a `ClosedLoopResult` (arrays and a `ClosedLoopSummary`);
+`CellLoop` is the same run one decision at a time (`advance`, `decide`, `result`).
 """
 from __future__ import annotations
 
@@ -42,7 +43,8 @@ import numpy as np
 from ..core.alignment import align
 from ..core.cycle import CycleConfig, Decision
 from ..core.feasibility import ensure_feasible
-from ..core.feedback import FeatureTable, FeedbackParser, FilterSpec, InputSpec, Verdict
+from ..core.feedback import (FeatureTable, FeatureVector, FeedbackParser, FilterSpec, InputSpec,
+                             Verdict)
 from ..core.limits import JointLimits
 from ..core.playback import Playback
 from ..core.policies import BUILT_IN_KINDS, build_policy, check_card, load_card, policy_for_kind
@@ -221,6 +223,214 @@ def approach_policy(running: RunningConfig, bandwidth: float) -> Policy:
     return policy_for_kind("tracker", running, kp=(w / 2) ** 2, kd=w)
 
 
+class CellLoop:
+    """The demo cell in closed loop, one decision at a time (what `run_closed_loop` runs).
+
+    Build it with the arguments of `run_closed_loop`, then alternate `advance` (the cell
+    runs on its microsecond grid until a stream tick enters a new decision period and
+    returns the session's inputs for that decision, or None when ``duration`` is over) and
+    `decide` (the session decides on those inputs); `result` gathers the record. Between
+    the two calls ``session.cycle`` holds the planned state the decision starts from, so a
+    caller can look at the decision's inputs before it is made (the training environment
+    does). ``feedback_message`` is the latest message of the sensor bridge
+    (names, values, stamp), or None before the first.
+    """
+
+    def __init__(self, policy: str | Path | PolicyCard | Policy, seed: int,
+                 duration: float | None = None,
+                 limits: JointLimits | str | Path | None = None, *,
+                 settings: CellSettings | None = None, scenario: Scenario | None = None,
+                 reference: ReferenceTrajectory | str | Path | None = None,
+                 panel: Panel | None = None,
+                 initial_positions: Sequence[float] | None = None) -> None:
+        cfg = self.settings = settings or CellSettings()
+        scenario = scenario or load_scenario()
+        if limits is None or isinstance(limits, (str, Path)):
+            limits = JointLimits.from_file(limits or demo_file("limits.yaml"))
+        if reference is None or isinstance(reference, (str, Path)):
+            reference = load_reference_file(reference or demo_file("reference.csv"),
+                                            limits=limits)
+        reference, _, _ = ensure_feasible(reference, limits, slow_down=cfg.slow_down,
+                                          fraction=cfg.limit_fraction)
+        if reference.names != limits.names:
+            raise ClosedLoopError(f"reference joints {list(reference.names)} differ from the "
+                                  f"limits' joints {list(limits.names)}")
+        self.seed, self.limits, self.reference = seed, limits, reference
+        self.panel = panel = panel or scenario.panel(seed)
+        period = cfg.decision_period
+        self._period_us = _ticks(period, "decision_period")
+        self._stream_us = _ticks(1.0 / cfg.stream_rate, "stream period (1 / stream_rate)")
+        self._driver_us = _ticks(1.0 / cfg.driver_rate, "driver period (1 / driver_rate)")
+        self._sensor_us = _ticks(1.0 / scenario.sensor.rate, "sensor period (1 / sensor rate)")
+        if not 0.0 <= cfg.window_phase < 1.0:
+            raise ClosedLoopError(f"window_phase must be in [0, 1) periods, got "
+                                  f"{cfg.window_phase}")
+        self._window_phase_us = int(round(cfg.window_phase * self._period_us))
+        self._stale_us = _ticks(round(min(max(cfg.edge_max_age / 4.0, 0.01), 0.25), 6),
+                                "bridge staleness check")
+        if duration is None:
+            duration = cfg.start_delay + reference.duration + cfg.settle
+        self._end_us = int(round(duration * _US))
+
+        base = RunningConfig(limits.names, period, limits, cfg.horizon, EDGE_FEATURES)
+        self.policy, self.running = _policy(policy, base)
+        self.session = StreamingSession(
+            limits, period, self.policy, approach_policy(self.running, cfg.approach_bandwidth),
+            CycleConfig(horizon=cfg.horizon, approach_scale=cfg.approach_scale,
+                        approach_tolerance=cfg.approach_tolerance,
+                        approach_bandwidth=cfg.approach_bandwidth),
+            cfg.watchdog)
+        self.playback = Playback(reference, period, cfg.window_points, override=1.0,
+                                 ramp_time=cfg.override_ramp_time)
+        q0 = (np.asarray(initial_positions, float) if initial_positions is not None
+              else reference.positions[0].copy())
+        self.plant = SimPlant(replace(cfg.plant, dt=self._driver_us / _US), q0, seed=seed)
+        self.sensor = LineSensor(scenario.sensor, panel.length, scenario.sensor_seed(seed))
+        self.table = FeatureTable([InputSpec("edge", EDGE_FEATURES, (1.0, 1.0), (0.0, 0.0),
+                                             cfg.edge_max_age, cfg.edge_filter)])
+        self._parser = FeedbackParser(self.running.features) if self.running.features else None
+
+        n = len(limits)
+        first = self.plant.step(0.0)
+        self.session.begin(0.0, MotionState(first.position, np.zeros(n), np.zeros(n)))
+        self._js = (0.0, 0.0, first.position)          # (received, stamp, positions)
+        self._sampled_stamp: float | None = None
+        # the server was up before the adapter
+        self._window_rx = (self._window_phase_us - self._period_us) / _US
+        self._window = self.playback.window(self._window_rx)
+        self.feedback_message: tuple[tuple[str, ...], np.ndarray, float] | None = None
+        self._valid_since: float | None = None
+        self._last_fresh = self.table.fresh(0.0)
+        self.pass_start = math.nan
+        self._segment = -1
+        self._m_t: list[float] = []
+        self._m_q: list[np.ndarray] = []
+        self._m_true: list[np.ndarray] = []
+        self._r_p: list[np.ndarray] = []
+        self._r_v: list[np.ndarray] = []
+        self._s_t: list[float] = []
+        self._s_p: list[np.ndarray] = []
+        self._s_v: list[np.ndarray] = []
+        self._s_a: list[np.ndarray] = []
+        self._s_j: list[np.ndarray] = []
+        self.decisions: list[Decision] = []
+        self._seen: list[np.ndarray] = []
+        self._record_driver(0.0, first.position, first.true_position)
+        step = math.gcd(math.gcd(self._stream_us, self._driver_us),
+                        math.gcd(self._sensor_us, self._period_us))
+        self._step_us = math.gcd(math.gcd(step, self._stale_us),
+                                 self._window_phase_us or step)
+        self._us = 0
+        self._feedback: FeatureVector | None = None
+
+    @property
+    def time(self) -> float:
+        """The cell's simulated time [s] (the last grid instant run)."""
+        return self._us / _US
+
+    @property
+    def measured_positions(self) -> np.ndarray:
+        """The latest measured joint positions (the driver's ``joint_states``)."""
+        return self._js[2]
+
+    def _record_driver(self, t: float, sample_pos: np.ndarray, true_pos: np.ndarray) -> None:
+        self._m_t.append(t)
+        self._m_q.append(sample_pos)
+        self._m_true.append(true_pos)
+        ref = align(self._window, np.array([t]))
+        self._r_p.append(ref.positions[0])
+        self._r_v.append(ref.velocities[0])
+
+    def _publish_feedback(self, now: float) -> None:
+        snap = self.table.snapshot(now)
+        self.feedback_message = (snap.names, snap.values,
+                                 snap.stamp if snap.stamp is not None else 0.0)
+        self._last_fresh = snap.fresh
+
+    def advance(self) -> SessionInputs | None:
+        """Run the cell up to the next decision; its inputs, or None at the end of the run."""
+        cfg, session = self.settings, self.session
+        period_us, window_phase_us = self._period_us, self._window_phase_us
+        while self._us + self._step_us <= self._end_us:
+            self._us += self._step_us
+            us = self._us
+            t = us / _US
+            if us % self._driver_us == 0:
+                smp = self.plant.step(t)
+                self._js = (t, t, smp.position)
+                self._record_driver(t, smp.position, smp.true_position)
+            if us % self._sensor_us == 0:
+                js = self._js
+                if js[1] != self._sampled_stamp:
+                    offset, angle, along = true_edge_reading(DEMO_ARM, self.panel, js[2])
+                    self.sensor.sample(js[1], offset[0], angle[0], along[0])
+                    self._sampled_stamp = js[1]
+                for reading in self.sensor.due(t):
+                    if reading.valid and self.table.update(
+                            0, (reading.offset, reading.angle), reading.stamp,
+                            t) is Verdict.ACCEPTED:
+                        self._publish_feedback(t)
+            if us % self._stale_us == 0 and not np.array_equal(self.table.fresh(t),
+                                                               self._last_fresh):
+                self._publish_feedback(t)
+            if (us - window_phase_us) % period_us == 0:
+                if math.isnan(self.pass_start) and t >= cfg.start_delay - 1e-9:
+                    self.playback.start(t)
+                    self.pass_start = t
+                self._window, self._window_rx = self.playback.window(t), t
+            if us % self._stream_us == 0:
+                sp, _ = session.sample(t)
+                self.plant.command(sp.position, t)
+                self._s_t.append(t)
+                self._s_p.append(sp.position)
+                self._s_v.append(sp.velocity)
+                self._s_a.append(sp.acceleration)
+                self._s_j.append(session.plan.jerk_at(t))
+                k = us // period_us
+                if k != self._segment:
+                    self._segment = k
+                    feedback = None
+                    if self.feedback_message is not None and self._parser is not None:
+                        feedback = self._parser.parse(*self.feedback_message)
+                        if feedback.all_valid:
+                            self._valid_since = feedback_valid_since(feedback.stamp, t)
+                    self._feedback = feedback
+                    js = self._js
+                    return SessionInputs(self._window, self._window_rx, feedback,
+                                         self._valid_since, js[2], js[1], js[0])
+        return None
+
+    def decide(self, inputs: SessionInputs) -> Decision | None:
+        """The session's decision on ``inputs`` (from `advance`), if it was committed."""
+        d = self.session.decide(self.time, inputs)
+        if d is not None:
+            self.decisions.append(d)
+            feedback = inputs.feedback
+            self._seen.append(np.full(len(self.running.features), np.nan) if feedback is None
+                              else feedback.values.copy())
+        return d
+
+    def result(self) -> ClosedLoopResult:
+        """Everything recorded so far."""
+        session, limits = self.session, self.limits
+        times = np.array(self._s_t)
+        commanded = MotionState(np.array(self._s_p), np.array(self._s_v), np.array(self._s_a))
+        measured = np.array(self._m_q)
+        lateral = lateral_error(measured, self.panel)
+        mt = np.array(self._m_t)
+        pass_start, duration = self.pass_start, self.reference.duration
+        in_pass = (mt >= pass_start - 1e-9) & (mt <= pass_start + duration + 1e-9)
+        summary = _summarise(session, limits, commanded, np.array(self._s_j), mt, measured,
+                             lateral, in_pass, self.decisions, self.sensor)
+        k = len(self.running.features)
+        return ClosedLoopResult(self.seed, self.policy.card.name, self.panel, times, commanded,
+                                mt, measured, np.array(self._m_true), np.array(self._r_p),
+                                np.array(self._r_v), lateral, pass_start, in_pass,
+                                list(self.decisions),
+                                np.array(self._seen).reshape(len(self._seen), k),
+                                list(session.watchdog.events), summary)
+
+
 def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int,
                     duration: float | None = None,
                     limits: JointLimits | str | Path | None = None, *,
@@ -244,145 +454,11 @@ def run_closed_loop(policy: str | Path | PolicyCard | Policy, seed: int,
         panel: the real panel (default: drawn from ``seed``).
         initial_positions: where the arm starts (default: the reference's first point).
     """
-    cfg = settings or CellSettings()
-    scenario = scenario or load_scenario()
-    if limits is None or isinstance(limits, (str, Path)):
-        limits = JointLimits.from_file(limits or demo_file("limits.yaml"))
-    if reference is None or isinstance(reference, (str, Path)):
-        reference = load_reference_file(reference or demo_file("reference.csv"), limits=limits)
-    reference, _, _ = ensure_feasible(reference, limits, slow_down=cfg.slow_down,
-                                      fraction=cfg.limit_fraction)
-    if reference.names != limits.names:
-        raise ClosedLoopError(f"reference joints {list(reference.names)} differ from the "
-                              f"limits' joints {list(limits.names)}")
-    panel = panel or scenario.panel(seed)
-    period = cfg.decision_period
-    period_us = _ticks(period, "decision_period")
-    stream_us = _ticks(1.0 / cfg.stream_rate, "stream period (1 / stream_rate)")
-    driver_us = _ticks(1.0 / cfg.driver_rate, "driver period (1 / driver_rate)")
-    sensor_us = _ticks(1.0 / scenario.sensor.rate, "sensor period (1 / sensor rate)")
-    if not 0.0 <= cfg.window_phase < 1.0:
-        raise ClosedLoopError(f"window_phase must be in [0, 1) periods, got {cfg.window_phase}")
-    window_phase_us = int(round(cfg.window_phase * period_us))
-    stale_us = _ticks(round(min(max(cfg.edge_max_age / 4.0, 0.01), 0.25), 6),
-                      "bridge staleness check")
-    if duration is None:
-        duration = cfg.start_delay + reference.duration + cfg.settle
-    end_us = int(round(duration * _US))
-
-    base = RunningConfig(limits.names, period, limits, cfg.horizon, EDGE_FEATURES)
-    pol, running = _policy(policy, base)
-    session = StreamingSession(
-        limits, period, pol, approach_policy(running, cfg.approach_bandwidth),
-        CycleConfig(horizon=cfg.horizon, approach_scale=cfg.approach_scale,
-                    approach_tolerance=cfg.approach_tolerance,
-                    approach_bandwidth=cfg.approach_bandwidth),
-        cfg.watchdog)
-    playback = Playback(reference, period, cfg.window_points, override=1.0,
-                        ramp_time=cfg.override_ramp_time)
-    q0 = (np.asarray(initial_positions, float) if initial_positions is not None
-          else reference.positions[0].copy())
-    plant = SimPlant(replace(cfg.plant, dt=driver_us / _US), q0, seed=seed)
-    sensor = LineSensor(scenario.sensor, panel.length, scenario.sensor_seed(seed))
-    table = FeatureTable([InputSpec("edge", EDGE_FEATURES, (1.0, 1.0), (0.0, 0.0),
-                                    cfg.edge_max_age, cfg.edge_filter)])
-    parser = FeedbackParser(running.features) if running.features else None
-
-    n = len(limits)
-    first = plant.step(0.0)
-    session.begin(0.0, MotionState(first.position, np.zeros(n), np.zeros(n)))
-    js = (0.0, 0.0, first.position)          # (received, stamp, positions)
-    sampled_stamp: float | None = None
-    window_rx = (window_phase_us - period_us) / _US   # the server was up before the adapter
-    window = playback.window(window_rx)
-    fb_msg: tuple[tuple[str, ...], np.ndarray, float] | None = None
-    valid_since: float | None = None
-    last_fresh = table.fresh(0.0)
-    pass_start = math.nan
-    segment = -1
-
-    m_t, m_q, m_true, r_p, r_v = [], [], [], [], []
-    s_t, s_p, s_v, s_a, s_j = [], [], [], [], []
-    decisions: list[Decision] = []
-    seen: list[np.ndarray] = []
-
-    def record_driver(t: float, sample_pos: np.ndarray, true_pos: np.ndarray) -> None:
-        m_t.append(t)
-        m_q.append(sample_pos)
-        m_true.append(true_pos)
-        ref = align(window, np.array([t]))
-        r_p.append(ref.positions[0])
-        r_v.append(ref.velocities[0])
-
-    def publish_feedback(now: float) -> None:
-        nonlocal fb_msg, last_fresh
-        snap = table.snapshot(now)
-        fb_msg = (snap.names, snap.values, snap.stamp if snap.stamp is not None else 0.0)
-        last_fresh = snap.fresh
-
-    record_driver(0.0, first.position, first.true_position)
-    step_us = math.gcd(math.gcd(stream_us, driver_us), math.gcd(sensor_us, period_us))
-    step_us = math.gcd(math.gcd(step_us, stale_us), window_phase_us or step_us)
-    for us in range(step_us, end_us + 1, step_us):
-        t = us / _US
-        if us % driver_us == 0:
-            smp = plant.step(t)
-            js = (t, t, smp.position)
-            record_driver(t, smp.position, smp.true_position)
-        if us % sensor_us == 0:
-            if js[1] != sampled_stamp:
-                offset, angle, along = true_edge_reading(DEMO_ARM, panel, js[2])
-                sensor.sample(js[1], offset[0], angle[0], along[0])
-                sampled_stamp = js[1]
-            for reading in sensor.due(t):
-                if reading.valid and table.update(0, (reading.offset, reading.angle),
-                                                  reading.stamp, t) is Verdict.ACCEPTED:
-                    publish_feedback(t)
-        if us % stale_us == 0 and not np.array_equal(table.fresh(t), last_fresh):
-            publish_feedback(t)
-        if (us - window_phase_us) % period_us == 0:
-            if math.isnan(pass_start) and t >= cfg.start_delay - 1e-9:
-                playback.start(t)
-                pass_start = t
-            window, window_rx = playback.window(t), t
-        if us % stream_us == 0:
-            sp, _ = session.sample(t)
-            plant.command(sp.position, t)
-            s_t.append(t)
-            s_p.append(sp.position)
-            s_v.append(sp.velocity)
-            s_a.append(sp.acceleration)
-            s_j.append(session.plan.jerk_at(t))
-            k = us // period_us
-            if k != segment:
-                segment = k
-                feedback = None
-                if fb_msg is not None and parser is not None:
-                    feedback = parser.parse(*fb_msg)
-                    if feedback.all_valid:
-                        valid_since = feedback_valid_since(feedback.stamp, t)
-                inputs = SessionInputs(window, window_rx, feedback, valid_since,
-                                       js[2], js[1], js[0])
-                d = session.decide(t, inputs)
-                if d is not None:
-                    decisions.append(d)
-                    seen.append(np.full(len(running.features), np.nan) if feedback is None
-                                else feedback.values.copy())
-
-    times = np.array(s_t)
-    commanded = MotionState(np.array(s_p), np.array(s_v), np.array(s_a))
-    measured = np.array(m_q)
-    ref_v = np.array(r_v)
-    lateral = lateral_error(measured, panel)
-    mt = np.array(m_t)
-    in_pass = (mt >= pass_start - 1e-9) & (mt <= pass_start + reference.duration + 1e-9)
-    summary = _summarise(session, limits, commanded, np.array(s_j), mt, measured, lateral,
-                         in_pass, decisions, sensor)
-    return ClosedLoopResult(seed, pol.card.name, panel, times, commanded, mt, measured,
-                            np.array(m_true), np.array(r_p), ref_v, lateral, pass_start,
-                            in_pass, decisions,
-                            np.array(seen).reshape(len(seen), len(running.features)),
-                            list(session.watchdog.events), summary)
+    loop = CellLoop(policy, seed, duration, limits, settings=settings, scenario=scenario,
+                    reference=reference, panel=panel, initial_positions=initial_positions)
+    while (inputs := loop.advance()) is not None:
+        loop.decide(inputs)
+    return loop.result()
 
 
 def limit_usage(limits: JointLimits, commanded: MotionState, jerk: np.ndarray) -> LimitUsage:
