@@ -1,5 +1,6 @@
 """Run the whole test suite: the modules that talk over DDS (marked ``ros``) each in a pytest
-process of their own, every other module together in one.
+process of their own, every other module together in one. DDS modules that declare the same
+``SUITE_GROUP = "name"`` share a process (the replay modules share one live recording).
 
 A test module's rclpy contexts and DDS participants live until the collector finalises them,
 and what one module leaves in the process (a participant, a discovery thread, a matched
@@ -10,6 +11,7 @@ in a process of its own; its tests do too. Extra arguments go to every pytest ru
 """
 from __future__ import annotations
 
+import re
 import subprocess
 import sys
 import time
@@ -18,6 +20,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 MARK = "pytest.mark.ros"
+GROUP = re.compile(r'^SUITE_GROUP = "([^"]+)"', re.M)
 
 
 @dataclass(frozen=True)
@@ -39,6 +42,15 @@ def dds_modules(folder: Path) -> list[Path]:
     return sorted(p for p in folder.glob("test_*.py") if MARK in p.read_text())
 
 
+def dds_runs(modules: list[Path]) -> dict[str, list[Path]]:
+    """The pytest runs of the DDS modules: label -> modules (one each, or a declared group)."""
+    runs: dict[str, list[Path]] = {}
+    for p in modules:
+        found = GROUP.search(p.read_text())
+        runs.setdefault(found.group(1) if found else p.name, []).append(p)
+    return runs
+
+
 def run(label: str, args: list[str]) -> RunResult:
     """Run pytest with ``args`` in a new process."""
     print(f"== {label}", flush=True)
@@ -52,7 +64,8 @@ def main(extra: list[str]) -> int:
     alone = dds_modules(HERE)
     ignore = [f"--ignore={p}" for p in alone]
     results = [run("modules without DDS", [*extra, *ignore, str(HERE)])]
-    results += [run(p.name, [*extra, str(p)]) for p in alone]
+    results += [run(label, [*extra, *map(str, group)])
+                for label, group in dds_runs(alone).items()]
     print("\n== suite summary")
     for r in results:
         print(f"{'ok    ' if r.ok else 'FAILED'} {r.label} ({r.seconds:.0f} s, exit {r.code})")

@@ -15,6 +15,7 @@ from adaptive_streamer.replay.run import ReplayError, replay
 import replay_harness
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
+SUITE_GROUP = "replay (one live recording)"  # test/run_suite.py
 
 
 @pytest.fixture(scope="module")

@@ -12,6 +12,7 @@ from adaptive_streamer.share import demo_file
 import replay_harness
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
+SUITE_GROUP = "replay (one live recording)"  # test/run_suite.py
 
 
 @pytest.fixture(scope="module")

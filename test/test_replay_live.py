@@ -23,6 +23,7 @@ from adaptive_streamer.replay.live import input_topics, republish
 import replay_harness
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
+SUITE_GROUP = "replay (one live recording)"  # test/run_suite.py
 WAIT_S = 15.0  # discovery bound, not a speed assertion
 
 

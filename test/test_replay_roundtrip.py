@@ -23,6 +23,7 @@ from adaptive_streamer.core.adapter_setup import DEFAULTS
 import replay_harness
 
 pytestmark = [pytest.mark.ros, pytest.mark.slow]
+SUITE_GROUP = "replay (one live recording)"  # test/run_suite.py
 
 
 @pytest.fixture(scope="module")
