@@ -100,18 +100,23 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
     return nodes, text
 
 
-def ros_args(params_file: str, namespace: str) -> list[str]:
-    """rclpy arguments for a node reading ``params_file`` in ``namespace``."""
+def ros_args(params_file: str, namespace: str, remaps: dict[str, str] | None = None
+             ) -> list[str]:
+    """rclpy arguments for a node reading ``params_file`` in ``namespace``; ``remaps`` are
+    remapping rules ``{from: to}`` (``from`` may be prefixed ``node_name:``)."""
     args = ["--ros-args", "--params-file", params_file]
     if namespace:
         args += ["-r", f"__ns:={namespace}"]
+    for src, dst in (remaps or {}).items():
+        args += ["-r", f"{src}:={dst}"]
     return args
 
 
-def child_command(kinds: list[str], params_file: str, namespace: str = "") -> list[str]:
+def child_command(kinds: list[str], params_file: str, namespace: str = "",
+                  remaps: dict[str, str] | None = None) -> list[str]:
     """Command line of a child process running the nodes ``kinds`` (one executor)."""
     return [sys.executable, "-m", "adaptive_streamer.bringup", "--child", ",".join(kinds), "--",
-            *ros_args(params_file, namespace)]
+            *ros_args(params_file, namespace, remaps)]
 
 
 def end_with_parent() -> None:
@@ -178,11 +183,11 @@ class Processes:
         self.children: list[tuple[NodeEntry, subprocess.Popen]] = []
 
     def start(self, entry: NodeEntry, params_file: str, group: list[str] | None = None,
-              **popen: Any) -> None:
+              remaps: dict[str, str] | None = None, **popen: Any) -> None:
         """Start ``entry`` (with the nodes ``group`` sharing its process) in its own session,
-        so a terminal Ctrl-C reaches only the parent."""
+        so a terminal Ctrl-C reaches only the parent; ``remaps`` as in `ros_args`."""
         kinds = group or [entry.kind]
-        proc = subprocess.Popen(child_command(kinds, params_file, entry.namespace),
+        proc = subprocess.Popen(child_command(kinds, params_file, entry.namespace, remaps),
                                 start_new_session=True, **popen)
         self.children.append((entry, proc))
 

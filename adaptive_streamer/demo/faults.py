@@ -10,8 +10,9 @@ Faults, how they are injected and the watchdog stop each is expected to cause
 fault              injection                                   expected stop
 =================  ==========================================  ====================
 feedback_dropout   edge_sensor ``dropout`` parameter true      feedback_stale
-reference_jump     the last reference window again, one joint  deviation
-                   moved by `JUMP_OFFSET`
+reference_jump     every reference window from then on with    deviation
+                   one joint moved by `JUMP_OFFSET` (the demo
+                   relays the server's windows for this fault)
 joint_state_stall  sim_driver ``stall`` parameter true         joint_states_stale
 nan_policy         adapter ``policy`` := a NaN-when-moving     policy_fault
                    card (`fault_policies`)

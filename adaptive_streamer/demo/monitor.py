@@ -30,6 +30,36 @@ from ..nodes.lifecycle_client import LifecycleClient
 from ..io.trajectory_conversions import fill_trajectory, msg_to_window
 
 
+WINDOW_TOPIC = "reference/window"
+SOURCE_WINDOW_TOPIC = "reference/window_source"
+# the reference server's remapping when the monitor relays its windows
+RELAY_REMAP = {f"reference_server:{WINDOW_TOPIC}": SOURCE_WINDOW_TOPIC}
+
+
+class WindowRelay:
+    """Passes reference windows on unchanged, or with one joint moved once a jump is set:
+    every window after the jump carries it, so no decision can see an unjumped window
+    (a jump republished beside the server's own windows lasts only until the server's
+    next window, and a decision may fall before it or after it)."""
+
+    def __init__(self, publisher: Any) -> None:
+        self._pub = publisher
+        self.jump: tuple[int, float] | None = None
+        self.relayed = 0
+
+    def relay(self, msg: JointTrajectory) -> None:
+        """Publish ``msg`` on, jumped if a jump is set."""
+        if self.jump is not None:
+            joint, offset = self.jump
+            w = msg_to_window(msg)
+            pos = w.positions.copy()
+            pos[:, joint] += offset
+            msg = JointTrajectory()
+            fill_trajectory(msg, w.stamp, w.names, w.times, pos, w.velocities, w.accelerations)
+        self._pub.publish(msg)
+        self.relayed += 1
+
+
 @dataclass
 class Recorded:
     """Everything the monitor received (lists of tuples, turned into arrays later)."""
@@ -46,7 +76,9 @@ class Recorded:
 class DemoMonitor(Node):
     """Subscribes to the stack's outputs; clients for the operator's actions."""
 
-    def __init__(self, joints: list[str]) -> None:
+    def __init__(self, joints: list[str], relay_windows: bool = False) -> None:
+        """``relay_windows``: the reference server publishes on `SOURCE_WINDOW_TOPIC` and
+        this node passes its windows on to `WINDOW_TOPIC` (the reference jump fault)."""
         super().__init__("demo_monitor")
         self.joints = joints
         self.data = Recorded()
@@ -57,9 +89,10 @@ class DemoMonitor(Node):
         self.create_subscription(Float64MultiArray, "adapter/decisions", self._on_decision, q)
         self.create_subscription(PointStamped, "edge_sensor/offset", self._on_reading, 50)
         self.create_subscription(DiagnosticArray, "/diagnostics", self._on_diag, 50)
-        self._last_window: JointTrajectory | None = None
-        self.create_subscription(JointTrajectory, "reference/window", self._on_window, 5)
-        self._window_pub = self.create_publisher(JointTrajectory, "reference/window", 5)
+        self._relay: WindowRelay | None = None
+        if relay_windows:
+            self._relay = WindowRelay(self.create_publisher(JointTrajectory, WINDOW_TOPIC, q))
+            self.create_subscription(JointTrajectory, SOURCE_WINDOW_TOPIC, self._relay.relay, q)
         self.adapter = LifecycleClient(self, "adapter", spun_elsewhere=True)
         self._triggers = {name: self.create_client(Trigger, name)
                           for name in ("reference_server/start", "adapter/stop", "adapter/reset")}
@@ -98,9 +131,6 @@ class DemoMonitor(Node):
             self.data.diagnostics[status.name] = {kv.key: kv.value for kv in status.values}
             self.data.diag_messages[status.name] = status.message
             self.data.diag_counts[status.name] = self.data.diag_counts.get(status.name, 0) + 1
-
-    def _on_window(self, msg: JointTrajectory) -> None:
-        self._last_window = msg
 
     # ------------------------------------------------------------------ acting
     def start(self) -> None:
@@ -157,19 +187,13 @@ class DemoMonitor(Node):
         self.wait_for("set_parameters", future.done, timeout)
         return bool(future.done() and future.result().results[0].successful)
 
-    def publish_jumped_window(self, joint: int, offset: float) -> bool:
-        """Publish the latest reference window again with one joint offset (a faulty source)."""
-        msg = self._last_window
-        if msg is None:
+    def start_jump(self, joint: int, offset: float) -> bool:
+        """From now on pass every reference window on with ``joint`` moved by ``offset``
+        (a faulty reference source); False when no window has been relayed yet."""
+        relay = self._relay
+        if relay is None or relay.relayed == 0:
             return False
-        w = msg_to_window(msg)
-        pos = w.positions.copy()
-        pos[:, joint] += offset
-        out = JointTrajectory()
-        fill_trajectory(out, w.stamp, w.names, w.times, pos, w.velocities, w.accelerations)
-        for _ in range(3):
-            self._window_pub.publish(out)
-            self.spin_for(0.01)
+        relay.jump = (joint, offset)
         return True
 
     def wait_fresh_status(self, node: str, timeout: float = 2.5) -> bool:

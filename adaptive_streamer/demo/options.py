@@ -6,7 +6,8 @@ from dataclasses import dataclass
 
 FAULTS = {
     "feedback_dropout": "the edge sensor stops publishing (feedback goes stale)",
-    "reference_jump": "a reference window jumps by 0.2 rad on one joint (faulty reference source)",
+    "reference_jump": "the reference windows are 0.2 rad off on one joint from then on "
+                      "(faulty reference source)",
     "joint_state_stall": "the driver stops publishing joint_states",
     "nan_policy": "the policy is swapped for one that outputs NaN during motion",
     "slow_policy": "the policy is swapped for one that takes longer than a decision period "

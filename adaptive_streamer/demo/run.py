@@ -77,14 +77,15 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
     import rclpy
 
     from ..nodes.lifecycle_client import LifecycleClientError
-    from .monitor import DemoMonitor
+    from .monitor import RELAY_REMAP, DemoMonitor
     params_file = str(params_path)
     procs = Processes()
     logs = workdir / "logs"
     logs.mkdir()
     rclpy.init(signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
     joints = list(cfg.params["sim_driver"]["joints"])
-    monitor = DemoMonitor(joints)
+    relay = any(f.fault == "reference_jump" for f in faults)
+    monitor = DemoMonitor(joints, relay_windows=relay)
     monitor.start()
     bar = None
     records = [InjectionRecord(f) for f in faults]
@@ -94,6 +95,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
             _start_recorder(procs, args.record, workdir, logs)
         for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
             procs.start(NodeEntry(group[0], "", {}), params_file, group=group,
+                        remaps=RELAY_REMAP if relay and name == "cell" else None,
                         stdout=(logs / f"{name}.log").open("w"), stderr=subprocess.STDOUT)
         _bring_up_adapter(monitor, procs)
         monitor.recording = True
@@ -230,7 +232,7 @@ def _inject(monitor, rec: InjectionRecord, mode: str, now: float) -> None:
     elif f.fault == "joint_state_stall":
         ok = monitor.set_param("sim_driver", "stall", True)
     elif f.fault == "reference_jump":
-        ok = monitor.publish_jumped_window(joint=JUMP_JOINT, offset=JUMP_OFFSET)
+        ok = monitor.start_jump(joint=JUMP_JOINT, offset=JUMP_OFFSET)
     else:
         ok = monitor.set_param("adapter", "policy", str(f.card))
     if not ok:
