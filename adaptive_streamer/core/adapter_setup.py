@@ -32,6 +32,7 @@ DEFAULTS: dict[str, Any] = {
     "joints": [""], "decision_period": 0.05, "stream_rate": 250.0, "horizon": 10,
     "limit_scale": 1.0, "features": [""], "outputs": ["position"],
     "approach_scale": 0.3, "approach_tolerance": 2e-3, "approach_bandwidth": 4.0,
+    "plan_lead": 0.01,
     **{f"watchdog.{k}": getattr(_WD, k) for k in WATCHDOG_PARAMS},
 }
 
@@ -81,6 +82,11 @@ def _limits(params: Mapping[str, Any], robot_description: str | None) -> JointLi
     return JointLimits.from_urdf_string(robot_description, dyn, joints=joints)
 
 
+def plan_outputs(params: Mapping[str, Any]) -> list[str]:
+    """Names of the configured outputs of type ``plan`` (``<name>.type`` in ``params``)."""
+    return [n for n in _get(params, "outputs") if n and params.get(f"{n}.type") == "plan"]
+
+
 def build_session(params: Mapping[str, Any], policy: str | None = None,
                   robot_description: str | None = None) -> SessionSetup:
     """The session the adapter builds at configure for ``params``.
@@ -121,6 +127,11 @@ def build_session(params: Mapping[str, Any], policy: str | None = None,
                          approach_bandwidth=float(_get(params, "approach_bandwidth")))
         session = StreamingSession(limits, period, main, approach, cc, wd,
                                    float(_get(params, "limit_scale")), shadow)
+        if plan_outputs(params):
+            try:
+                session.enable_plan_ahead(float(_get(params, "plan_lead")))
+            except ValueError as exc:
+                raise SetupError(f"parameter 'plan_lead': {exc}") from None
     except SetupError:
         raise
     except (ValueError, TypeError, RuntimeError) as exc:  # Limits/Policy/Card/Watchdog errors

@@ -298,12 +298,16 @@ class DecisionCycle:
             del self.stats.policy_times[:2048]
         return True
 
-    def commit_braking(self) -> Decision:
-        """Commit the braking decision now (the planned decision came too late)."""
+    def commit_braking(self, u: np.ndarray | None = None) -> Decision:
+        """Commit the braking decision now (the planned decision came too late); ``u``, when
+        given, is the braking decision already sent to the driver for this instant (the
+        plan-ahead continuation), committed as sent."""
         if self.state is None:
             raise CycleError("commit_braking() before begin()")
         self.stats.overruns += 1
         d = self._braking(self.t, self.state, self.mode, math.nan, math.nan, "ok", "overrun")
+        if u is not None:
+            d = replace(d, u=np.array(u, float))
         d = replace(d, next_mode=self.mode if self.mode != "stopping" or not self._rest_after(d)
                     else "stopped")
         self._advance(d)

@@ -13,6 +13,17 @@ The adapter node (and the offline replay) drive one `StreamingSession`:
 * `stop`, `reset` (`reset_on` with the inputs' checks and a policy probe) and the trip list
   drive the latched stop.
 
+Plan-ahead output (`enable_plan_ahead`, `adaptive_streamer.core.plan_ahead`): after every
+commit the session builds the plan message (`last_plan`: the committed segment, then the
+braking continuation to rest). What was last sent is the committed plan: given a clock,
+`decide` commits a decision only up to ``plan_lead`` before its instant; a later one is
+dropped, and every segment the driver is already on is committed from the sent
+continuation, exactly as sent (the same for a stream tick that finds the plan ended). After
+a stall the session therefore resumes from where the sent plan put the arm: the next
+decision starts from that state (on its braking tail, or at rest at its end), and when the
+late decisions reach the watchdog's ``max_overruns`` it latches an ``overruns`` stop that
+brakes along the same continuation and needs a reset. Nothing ever jumps.
+
 Thread-safety: `sample` (stream thread) and `decide` (decision thread) share a lock held
 only while committing or sampling, never while the policy runs.
 """
@@ -21,6 +32,7 @@ from __future__ import annotations
 import math
 import threading
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 
@@ -30,6 +42,7 @@ from .feedback import FeatureVector
 from .guard import SetpointGuard
 from .limit_stage import LimitStage
 from .limits import JointLimits
+from .plan_ahead import PlanGrid, PlanKnots, plan_knots
 from .playback import Window
 from .policies.base import Policy
 from .policy_inputs import PolicyInputs
@@ -108,6 +121,19 @@ class StreamingSession:
         self.shadow: DecisionCycle | None = None
         self.shadow_plan = CommandPlan(period)
         self.shadow_stats = ShadowStats()
+        self.plan_lead: float | None = None   # None: no plan-ahead output
+        self.last_plan: PlanKnots | None = None
+        self._grid: PlanGrid | None = None
+        self._tail: list[np.ndarray] = []     # sent braking continuation, not yet committed
+
+    def enable_plan_ahead(self, lead: float) -> None:
+        """Build a plan message after every commit (`last_plan`) and, with a clock given to
+        `decide`, commit decisions only up to ``lead`` seconds before their instant."""
+        lead = float(lead)
+        if not (math.isfinite(lead) and 0.0 <= lead < self.period):
+            raise ValueError(f"plan_lead must be within [0, decision_period = {self.period:g}) "
+                             f"s, got {lead:g}")
+        self.plan_lead = lead
 
     # ------------------------------------------------------------------ lifecycle
     @property
@@ -125,7 +151,9 @@ class StreamingSession:
             self.cycle.begin(t, measured)
             first = self.cycle.commit_braking()
             self.cycle.stats.overruns -= 1  # the holding segment is planned, not late
-            self.plan.commit(Segment(first.time, first.state, first.u))
+            self._tail = []
+            self._grid = PlanGrid.anchored(t, self.period)
+            self._commit(first)
 
     def stop(self, now: float, kind: str, message: str) -> Trip:
         """Latch a stop (external request, guard failure...); the cycle brakes to rest."""
@@ -194,14 +222,7 @@ class StreamingSession:
     def sample(self, t: float) -> tuple[MotionState, str | None]:
         """Setpoint at nominal time ``t`` and the guard's verdict (None = fine)."""
         with self._lock:
-            while self.plan.end <= t + 1e-9:  # the next decision is late: brake instead
-                d = self.cycle.commit_braking()
-                self.plan.commit(Segment(d.time, d.state, d.u))
-                self.late_decisions += 1
-                reason = self.watchdog.overrun(True)
-                if reason is not None and not self.watchdog.tripped:
-                    self.watchdog.fire("overruns", t, reason)
-                    self.cycle.request_stop()
+            self._fill_late(t, t)
             sp = self.plan.sample(t)
         reason = self.guard.check(t, sp)
         if reason is not None and not self.watchdog.tripped:
@@ -281,14 +302,23 @@ class StreamingSession:
             out[mask] = cmd.position[mask]
         return out
 
-    def decide(self, now: float, inputs: SessionInputs) -> Decision | None:
+    def decide(self, now: float, inputs: SessionInputs,
+               clock: Callable[[], float] | None = None) -> Decision | None:
         """Input checks and one decision cycle; returns the decision if it was committed.
 
         Only decides while the stream is inside the last committed segment (the segment to
         decide starts within one period of ``now``), so a repeated trigger never runs the
-        plan ahead of the stream.
+        plan ahead of the stream. With the plan-ahead output and a ``clock`` (the live
+        node's), a decision not committed ``plan_lead`` before its instant is dropped and
+        the segments the driver is on are committed from the sent continuation, before
+        deciding and again at the commit (replay passes no clock: the records say what was
+        committed).
         """
         cycle = self.cycle
+        deadline = clock is not None and self.plan_lead is not None
+        if deadline:
+            with self._lock:
+                self._fill_late(now + self.plan_lead, now)
         if cycle.state is None or cycle.t - now > self.period + 1e-6:
             return None  # already decided ahead (a duplicate trigger)
         following = cycle.mode in ("approaching", "following")
@@ -300,14 +330,42 @@ class StreamingSession:
                 self.stop(now, kind, reason)
         d = cycle.decide(inputs.window, inputs.feedback)
         with self._lock:
+            if deadline:
+                at = clock()
+                self._fill_late(at + self.plan_lead, at)
             committed = cycle.commit(d, now)
             if committed:
-                self.plan.commit(Segment(d.time, d.state, d.u))
+                self._tail = []
+                self._commit(d)
                 self.watchdog.overrun(False)
         if not committed:
             return None
         self._step_shadow(d, inputs)
         return d
+
+    def _commit(self, d: Decision) -> None:
+        """Append ``d``'s segment to the plan and, with the plan-ahead output, build the new
+        plan message from it (the lock is held)."""
+        self.plan.commit(Segment(d.time, d.state, d.u))
+        if self.plan_lead is not None:
+            c = self.cycle_config
+            self.last_plan = plan_knots(self._grid, d.time, d.state, d.u, self.cycle.stage,
+                                        c.rest_velocity, c.rest_acceleration)
+            self._tail = list(self.last_plan.tail)
+
+    def _fill_late(self, t: float, now: float) -> None:
+        """Commit braking segments while the plan ends by ``t`` (the decision for its end
+        came late): from the sent continuation when there is one, as sent; count them and
+        latch an ``overruns`` stop at ``now`` when too many were late (the lock is held)."""
+        while self.plan.end <= t + 1e-9:
+            u = self._tail.pop(0) if self._tail else None
+            d = self.cycle.commit_braking(u)
+            self.plan.commit(Segment(d.time, d.state, d.u))
+            self.late_decisions += 1
+            reason = self.watchdog.overrun(True)
+            if reason is not None and not self.watchdog.tripped:
+                self.watchdog.fire("overruns", now, reason)
+                self.cycle.request_stop()
 
     def _step_shadow(self, main: Decision, inputs: SessionInputs) -> None:
         if self.shadow_policy is None:

@@ -51,7 +51,7 @@ from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 from . import common
 from ..io.adapter_inputs import LatestInputs
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name
-from .driver_outputs import DriverOutput, fill_setpoint, setpoint_message
+from .driver_outputs import DriverOutput, fill_setpoint, output_type, setpoint_message
 from .stream_thread import StreamThread
 from .threads import make_executor, prepare_process, set_thread_priority
 
@@ -139,6 +139,9 @@ class AdapterNode(LifecycleNode):
           "distance [rad] at which the policy takes over")
         d(self, "approach_bandwidth", DEFAULTS["approach_bandwidth"],
           "approach tracking bandwidth [rad/s]")
+        d(self, "plan_lead", DEFAULTS["plan_lead"],
+          "with a plan output: send each decision's plan at least this long before its "
+          "instant, else drop it and follow the sent braking continuation [s]")
         for key in WATCHDOG_PARAMS:
             d(self, f"watchdog.{key}", DEFAULTS[f"watchdog.{key}"], f"watchdog threshold '{key}'")
 
@@ -233,6 +236,8 @@ class AdapterNode(LifecycleNode):
 
     def _configure(self) -> None:
         params = {n: self._param(n) for n in DEFAULTS}
+        params.update({f"{name}.type": output_type(self, name)
+                       for name in self._param("outputs") if name})
         setup = build_session(params, robot_description=self._robot_description)
         if setup.limits_note:
             self.get_logger().info(setup.limits_note)
@@ -308,7 +313,9 @@ class AdapterNode(LifecycleNode):
         self._stream_timer.start()
         self._status = "active"
         self._diag.set(OK, "active: approaching the reference")
-        return super().on_activate(state)
+        result = super().on_activate(state)
+        self._publish_plan(session)  # the managed publishers are active from here on
+        return result
 
     def _stop_and_wait(self) -> bool:
         session = self.session
@@ -482,8 +489,9 @@ class AdapterNode(LifecycleNode):
         try:
             t0 = time.perf_counter()
             now = now_sec(self)
-            d = session.decide(now, self._inputs(now))
+            d = session.decide(now, self._inputs(now), self._clock)
             if d is not None:
+                self._publish_plan(session)
                 self._decision_msg.data = decision_record.encode(d).tolist()
                 self._decision_pub.publish(self._decision_msg)
             self._timings.decision.append(time.perf_counter() - t0)
@@ -493,6 +501,16 @@ class AdapterNode(LifecycleNode):
             self.get_logger().error(f"decision failed: {exc}", throttle_duration_sec=1.0)
             if self.session is not None:
                 self.session.stop(now_sec(self), "policy_fault", f"decision failed: {exc}")
+
+    def _clock(self) -> float:
+        return now_sec(self)
+
+    def _publish_plan(self, session: StreamingSession) -> None:
+        """Send the plan of the last commit on every plan output."""
+        knots = session.last_plan
+        if knots is not None:
+            for out in self._outputs:
+                out.publish_plan(knots)
 
     def _react(self, session: StreamingSession) -> None:
         for trip in session.new_trips():

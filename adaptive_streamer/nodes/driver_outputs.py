@@ -3,7 +3,7 @@
 Configured as a list of names (parameter ``outputs``), each with its own parameters::
 
     outputs: [position]
-    position.type: position        # position | velocity | trajectory
+    position.type: position        # position | velocity | trajectory | plan
     position.topic: driver/position_command
     position.joints: []            # the driver's joint order (empty: the adapter's order)
     position.qos: reliable         # reliable | best_effort | sensor_data
@@ -19,6 +19,16 @@ Semantics (one message per stream tick, for the nominal tick time t):
   (execute on receipt), ``time_from_start`` = one stream period, and the point holds the
   plan at t + one stream period (positions, velocities, accelerations), so a driver that
   interpolates to it over one period is on the plan without an extra period of lag.
+* ``plan`` (plan-ahead output, one message per committed decision, not per tick):
+  ``trajectory_msgs/JointTrajectory``, ``header.stamp`` = the absolute time of
+  ``points[0]`` (the decision instant, on the same clock as ``setpoints``); the points are
+  knots one decision period apart with positions, velocities and accelerations: the
+  committed segment, then the braking continuation to rest (the last point at rest);
+  ``time_from_start`` strictly increasing from 0. A new message replaces the previous one
+  from its first point's time on; after the last point the arm holds there. Between knots
+  the motion is a constant-jerk segment, reproduced exactly by quintic Hermite
+  interpolation of the two knots (`adaptive_streamer.core.plan_ahead`). The adapter sends
+  each message at least ``plan_lead`` seconds before its first point's time.
 
 Outputs are reliable, keep-last 1 by default. Incompatible-QoS events and outputs without a
 subscriber are counted per output and reported on /diagnostics.
@@ -33,14 +43,16 @@ from rclpy.node import Node
 from std_msgs.msg import Float64MultiArray, MultiArrayDimension
 from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 
+from adaptive_streamer.core.plan_ahead import PlanKnots
 from adaptive_streamer.core.segment import MotionState
 
 from ..io.stamps import sec_to_stamp
 from .common import declare, qos_by_name
 
-OUTPUT_TYPES = ("position", "velocity", "trajectory")
+OUTPUT_TYPES = ("position", "velocity", "trajectory", "plan")
 DEFAULT_TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",
-                  "trajectory": "driver/trajectory_command"}
+                  "trajectory": "driver/trajectory_command", "plan": "driver/plan"}
+TYPE_HELP = "position | velocity | trajectory | plan"
 
 
 class OutputConfigError(ValueError):
@@ -52,7 +64,7 @@ class DriverOutput:
 
     def __init__(self, node: Node, name: str, joints: Sequence[str], rate: float,
                  callback_group: Any = None, managed: bool = True) -> None:
-        kind = _declared(node, f"{name}.type", "position", "position | velocity | trajectory")
+        kind = output_type(node, name)
         if kind not in OUTPUT_TYPES:
             raise OutputConfigError(f"output '{name}': type '{kind}' is not one of {list(OUTPUT_TYPES)}")
         topic = _declared(node, f"{name}.topic", DEFAULT_TOPICS[kind], "topic of this output")
@@ -74,11 +86,13 @@ class DriverOutput:
         self.incompatible_qos = 0
         self.dt = 1.0 / rate
         events = PublisherEventCallbacks(incompatible_qos=self._on_incompatible)
-        msg_type = JointTrajectory if kind == "trajectory" else Float64MultiArray
+        msg_type = JointTrajectory if kind in ("trajectory", "plan") else Float64MultiArray
         create = node.create_lifecycle_publisher if managed else node.create_publisher
         self.publisher = create(msg_type, topic, qos, callback_group=callback_group,
                                 event_callbacks=events)
-        if kind == "trajectory":
+        if kind == "plan":
+            self._msg = JointTrajectory(joint_names=order)
+        elif kind == "trajectory":
             self._msg = JointTrajectory(joint_names=order)
             self._msg.points = [JointTrajectoryPoint()]
             self._msg.points[0].time_from_start.nanosec = int(round(self.dt * 1e9))
@@ -91,8 +105,11 @@ class DriverOutput:
         self.incompatible_qos += 1
 
     def publish(self, now: MotionState, ahead: MotionState) -> None:
-        """Publish for a tick: ``now`` = plan at t, ``ahead`` = plan at t + one period."""
+        """Publish for a tick: ``now`` = plan at t, ``ahead`` = plan at t + one period (a
+        plan output publishes per decision instead, `publish_plan`)."""
         idx = self.index
+        if self.kind == "plan":
+            return
         if self.kind == "position":
             self._msg.data = now.position[idx].tolist()
         elif self.kind == "velocity":
@@ -104,11 +121,36 @@ class DriverOutput:
             pt.accelerations = ahead.acceleration[idx].tolist()
         self.publisher.publish(self._msg)
 
+    def publish_plan(self, knots: PlanKnots) -> None:
+        """Publish a plan message (plan outputs only; the others ignore it)."""
+        if self.kind != "plan":
+            return
+        fill_plan(self._msg, knots, self.index)
+        self.publisher.publish(self._msg)
+
     def status(self) -> dict[str, Any]:
         """Diagnostics values for this output."""
         return {f"output.{self.name}.topic": self.topic,
                 f"output.{self.name}.subscribers": self.publisher.get_subscription_count(),
                 f"output.{self.name}.incompatible_qos": self.incompatible_qos}
+
+
+def output_type(node: Node, name: str) -> str:
+    """The ``<name>.type`` parameter of output ``name`` (declared on first use)."""
+    return _declared(node, f"{name}.type", "position", TYPE_HELP)
+
+
+def fill_plan(msg: JointTrajectory, knots: PlanKnots, index: np.ndarray) -> None:
+    """Fill a plan message in place from ``knots`` (joints in the order ``index``)."""
+    msg.header.stamp.sec, msg.header.stamp.nanosec = divmod(knots.stamp_ns, 1_000_000_000)
+    p, v, a = (x[:, index] for x in (knots.positions, knots.velocities, knots.accelerations))
+    points = []
+    for i, off in enumerate(knots.offsets_ns):
+        pt = JointTrajectoryPoint(positions=p[i].tolist(), velocities=v[i].tolist(),
+                                  accelerations=a[i].tolist())
+        pt.time_from_start.sec, pt.time_from_start.nanosec = divmod(off, 1_000_000_000)
+        points.append(pt)
+    msg.points = points
 
 
 def _declared(node: Node, name: str, default: Any, description: str) -> Any:

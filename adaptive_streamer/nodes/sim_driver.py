@@ -16,6 +16,12 @@ Command topics (relative names, remap as usual):
   one point, executed on receipt (``header.stamp`` is not used): the target moves linearly
   from where it is to the point's positions (matched to ``joints`` by ``joint_names``) over
   the point's ``time_from_start`` (0: at once); velocities/accelerations are not used.
+- ``plan``: ``driver/plan``, trajectory_msgs/JointTrajectory, the adapter's plan-ahead
+  output: knots at ``header.stamp + time_from_start`` with positions, velocities and
+  accelerations; a plan applies from its first knot's time (or its arrival, if later) and
+  replaces the previous one from there; the target between knots is their quintic Hermite
+  interpolant (`adaptive_streamer.sim.plan_target`), and after the last knot it holds there
+  at rest. The plan is its own timeout: ``command_timeout`` does not apply.
 
 A malformed command (wrong length, unknown or missing joints, non-finite values, not one
 point) is dropped, counted and logged. Ticks lie on a grid ``t0 + k / rate`` anchored at
@@ -39,6 +45,11 @@ Parameters (read-only):
   joint_states_qos    reliable | best_effort | sensor_data (default reliable)
   stall               fault injection (settable at runtime): while true, joint_states is not
                       published (the plant keeps running), as when a driver's feedback stalls
+  publish_followed    also publish ``driver/followed`` every tick (default false): a
+                      one-point JointTrajectory stamped with the tick time holding the
+                      noise-free target the plant follows (positions; with ``plan`` also the
+                      interpolated velocities and accelerations), so a test or the demo can
+                      check the motion the driver really made of its commands
 
 Diagnostics (``/diagnostics``, about 1 Hz, name ``sim_driver``): state (following /
 holding), commands received and rejected, timeouts, ticks, catch-up ticks, clock re-anchors.
@@ -51,8 +62,9 @@ from typing import Any, Iterable
 from rclpy.node import Node
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Float64MultiArray
-from trajectory_msgs.msg import JointTrajectory
+from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 
+from adaptive_streamer.sim.plan_target import PlanTarget, PlanTargetError
 from adaptive_streamer.sim.plant import PlantConfig, PlantError, SimPlant
 
 from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
@@ -60,7 +72,7 @@ from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_n
 
 DEFAULT_JOINTS = ["j1", "j2", "j3", "j4", "j5", "j6"]
 TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",
-          "trajectory": "driver/trajectory_command"}
+          "trajectory": "driver/trajectory_command", "plan": "driver/plan"}
 MAX_LAG_S = 0.5          # behind the clock by more than this: re-anchor instead of catching up
 _LOG_THROTTLE_S = 5.0
 
@@ -119,7 +131,7 @@ class SimDriver(SetupNode):
         if rate <= 0:
             raise SimDriverError(f"parameter 'rate': must be > 0 Hz, got {rate:g}")
         interface = declare(self, "command_interface", "position",
-                            "position | velocity | trajectory", read_only=True,
+                            "position | velocity | trajectory | plan", read_only=True,
                             dynamic_typing=True)
         if interface not in TOPICS:
             raise SimDriverError(f"parameter 'command_interface': expected one of "
@@ -147,6 +159,14 @@ class SimDriver(SetupNode):
             except ValueError as exc:
                 raise SimDriverError(f"parameter '{name}': {exc}") from None
         self._interface = interface
+        self._plan = PlanTarget(n) if interface == "plan" else None
+        self._followed_pub = None
+        if declare(self, "publish_followed", False, "publish driver/followed every tick",
+                   read_only=True):
+            self._followed_pub = self.create_publisher(JointTrajectory, "driver/followed",
+                                                       qos["joint_states_qos"])
+            self._followed = JointTrajectory(joint_names=self._joints,
+                                             points=[JointTrajectoryPoint()])
         self._period_ns = int(round(1e9 / rate))
         self._t0_ns: int | None = None
         self._ticks = 0
@@ -155,7 +175,7 @@ class SimDriver(SetupNode):
         self.reanchors = 0
         self._pub = self.create_publisher(JointState, "joint_states", qos["joint_states_qos"])
         declare(self, "stall", False, "fault injection: stop publishing joint_states while true")
-        msg_type = JointTrajectory if interface == "trajectory" else Float64MultiArray
+        msg_type = JointTrajectory if interface in ("trajectory", "plan") else Float64MultiArray
         sub = self.create_subscription(msg_type, TOPICS[interface], self._on_command,
                                        qos["command_qos"])
         self._topic = sub.topic_name
@@ -169,16 +189,39 @@ class SimDriver(SetupNode):
     def _on_command(self, msg: Any) -> None:
         now = self.get_clock().now().nanoseconds * 1e-9
         try:
-            if self._interface == "trajectory":
+            if self._plan is not None:
+                self._accept_plan(msg, now)
+            elif self._interface == "trajectory":
                 values = self._trajectory_positions(msg)
                 tfs = msg.points[0].time_from_start
                 self.plant.command(values, now, reach_in=tfs.sec + tfs.nanosec * 1e-9)
             else:
                 self.plant.command(list(msg.data), now)
-        except (PlantError, SimDriverError) as exc:
+        except (PlantError, PlanTargetError, SimDriverError) as exc:
             self.rejected += 1
             self.get_logger().warning(f"{self._topic}: dropped a command: {exc}",
                                       throttle_duration_sec=_LOG_THROTTLE_S)
+
+    def _accept_plan(self, msg: JointTrajectory, now: float) -> None:
+        names = list(msg.joint_names)
+        if sorted(names) != sorted(self._joints) or len(set(names)) != len(names):
+            raise SimDriverError(f"joint_names {names} must be the driver's joints "
+                                 f"{self._joints} (any order)")
+        if not msg.points:
+            raise SimDriverError("a plan needs at least one point")
+        order = [names.index(j) for j in self._joints]
+        n = len(names)
+        rows = []
+        for k, pt in enumerate(msg.points):
+            if not (len(pt.positions) == len(pt.velocities) == len(pt.accelerations) == n):
+                raise SimDriverError(f"point {k}: expected {n} positions, velocities and "
+                                     "accelerations")
+            rows.append((list(pt.positions), list(pt.velocities), list(pt.accelerations)))
+        stamp_ns = msg.header.stamp.sec * 1_000_000_000 + msg.header.stamp.nanosec
+        times = [(stamp_ns + pt.time_from_start.sec * 1_000_000_000
+                  + pt.time_from_start.nanosec) * 1e-9 for pt in msg.points]
+        p, v, a = ([[r[i][j] for j in order] for r in rows] for i in range(3))
+        self._plan.accept(now, times, p, v, a)
 
     def _trajectory_positions(self, msg: JointTrajectory) -> list[float]:
         if len(msg.points) != 1:
@@ -222,7 +265,12 @@ class SimDriver(SetupNode):
 
     def _step(self, t_ns: int) -> None:
         was_following = self.plant.following
+        target = self._plan.at(t_ns * 1e-9) if self._plan is not None else None
+        if target is not None:
+            self.plant.command(target.position, t_ns * 1e-9)
         sample = self.plant.step(t_ns * 1e-9)
+        if self._followed_pub is not None:
+            self._publish_followed(t_ns, target)
         msg = JointState()
         msg.header.stamp.sec, msg.header.stamp.nanosec = divmod(t_ns, 1_000_000_000)
         msg.name = self._joints
@@ -232,6 +280,18 @@ class SimDriver(SetupNode):
             self._pub.publish(msg)
         if was_following != self.plant.following:
             self._update_status()
+
+    def _publish_followed(self, t_ns: int, target: Any) -> None:
+        msg = self._followed
+        msg.header.stamp.sec, msg.header.stamp.nanosec = divmod(t_ns, 1_000_000_000)
+        pt = msg.points[0]
+        if target is None:
+            pt.positions = self.plant.target.tolist()
+        else:
+            pt.positions = target.position.tolist()
+            pt.velocities = target.velocity.tolist()
+            pt.accelerations = target.acceleration.tolist()
+        self._followed_pub.publish(msg)
 
     # ------------------------------------------------------------------ diagnostics
     def _update_status(self) -> None:
@@ -250,7 +310,8 @@ class SimDriver(SetupNode):
                 ("command_interface", self._interface), ("command_topic", self._topic),
                 ("commands_received", p.commands_received), ("commands_rejected", self.rejected),
                 ("timeouts", p.timeouts), ("ticks", self._ticks),
-                ("catch_up_ticks", self.catch_up_ticks), ("clock_reanchors", self.reanchors)]
+                ("catch_up_ticks", self.catch_up_ticks), ("clock_reanchors", self.reanchors),
+                ("plans_received", self._plan.plans_received if self._plan else 0)]
 
 
 def main(args: list[str] | None = None) -> int:

@@ -159,6 +159,12 @@ class SimPlant:
         return self._following
 
     @property
+    def target(self) -> np.ndarray:
+        """The position target formed at the last tick (n,), before the transport delay: the
+        command the plant follows, or the held position while holding."""
+        return self._target.copy()
+
+    @property
     def true_position(self) -> np.ndarray:
         """The noise-free position (n,) after the last tick."""
         return self._y.copy()
