@@ -229,6 +229,14 @@ class StreamingSession:
             self.stop(t, "setpoint_guard", reason)
         return sp, reason
 
+    def commit_late(self, t: float) -> None:
+        """Commit the braking segments of every decision that was late by ``t`` (the plan
+        ends by then), exactly as `sample` does at a stream tick, without sampling (replay
+        fills the gaps of a recording where the live decisions came late: the live guard
+        judged the live stream, which the recording holds)."""
+        with self._lock:
+            self._fill_late(t, t)
+
     def sample_shadow(self, t: float) -> MotionState | None:
         """The shadow policy's setpoint at ``t`` (None when not running or not planned)."""
         with self._lock:

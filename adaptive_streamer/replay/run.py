@@ -7,8 +7,9 @@ the node does, without DDS:
 * with decision records (``<adapter>/decisions``), each recorded cycle is re-run at its
   recorded instant with the inputs it used (`InputRebuilder.exact`); the session starts
   from the first record's planned state, on the recorded decision clock. Gaps in the
-  records (decisions that came too late live) are filled as the stream did, by the
-  braking segment (`StreamingSession.sample` at the plan's end). Stops requested on the
+  records (decisions that came too late live) are filled as the live session did, by the
+  braking segment (`StreamingSession.commit_late` at the plan's end: with the plan output
+  the continuation it had sent, as sent). Stops requested on the
   ``stop`` topic are applied at their receive times; a reset seen in the records (stopped
   -> approaching) is applied before that cycle. The decision time ``now`` of a cycle is
   the record's receive time.
@@ -288,7 +289,7 @@ class _Runner:
         session, period = self.session, self.setup.period
         while session.cycle.t < t - 0.5 * period:
             end = session.plan.end
-            session.sample(end)
+            session.commit_late(end)
             self.segments.append(session.plan.segment_at(end + 0.5 * period))
 
     def decide(self, now: float, inputs: Any) -> Decision | None:
