@@ -31,6 +31,7 @@ from typing import Any
 
 import yaml
 
+from .core.text_files import yaml_problem
 from .share import expand
 
 NODE_KINDS = {
@@ -78,7 +79,7 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
-        raise BringupError(f"{path}: not valid YAML: {exc}") from None
+        raise BringupError(f"{path}: not valid YAML: {yaml_problem(exc)}") from None
     if not isinstance(data, dict) or not data:
         raise BringupError(f"{path}: expected a ROS 2 params file (node: ros__parameters: ...)")
     nodes = []

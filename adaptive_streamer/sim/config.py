@@ -43,6 +43,7 @@ from typing import Any, Mapping
 import numpy as np
 import yaml
 
+from ..core.text_files import yaml_problem
 from .line_sensor import SensorConfig, SensorError
 from .nominal_path import PassConfig, PathError
 from .panel import Panel, PanelError, draw_placement
@@ -155,7 +156,8 @@ def load_scenario(path: str | Path | None = None) -> Scenario:
     except OSError as exc:
         raise ScenarioError(f"scenario file '{path}': cannot read: {exc.strerror}") from None
     except yaml.YAMLError as exc:
-        raise ScenarioError(f"scenario file '{path}': not valid YAML: {exc}") from None
+        raise ScenarioError(f"scenario file '{path}': not valid YAML: {yaml_problem(exc)}"
+                            ) from None
     return parse_scenario(data, f"scenario file '{path}'")
 
 
