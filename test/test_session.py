@@ -252,3 +252,31 @@ def test_joints_measured_at_different_times_are_each_compared_at_their_own_time(
     assert emu.s.input_faults(now, apart, False) == []
     oldest = dataclasses.replace(apart, joint_stamp=float(stamps.min()))
     assert [k for k, _ in emu.s.input_faults(now, oldest, False)] == ["following_error"]
+
+
+def test_feedback_frozen_while_moving_counts_as_stale():
+    # a republished copy of a dead sensor's last values is not fresh feedback: bit-identical
+    # values for longer than feedback_frozen while the arm moves stop it as feedback_stale
+    class Values:     # the part of a FeatureVector the check reads
+        def __init__(self, v):
+            self.values = np.array(v)
+
+    def at(t, v):     # feedback received and valid at t (never old)
+        return t, SessionInputs(None, None, Values(v), t, None, None, None)
+
+    moving = MotionState(P0.copy(), np.full(N, 0.1), np.zeros(N))
+    s = session(feedback_frozen=0.3)
+    s.cycle.state = moving
+    assert "feedback_stale" not in dict(s.input_faults(*at(T0, [0.002, 0.01]), True))
+    faults = dict(s.input_faults(*at(T0 + 0.31, [0.002, 0.01]), True))
+    assert "feedback frozen" in faults["feedback_stale"], faults
+    # values that change (a live sensor) or an arm at rest never count as frozen
+    s = session(feedback_frozen=0.3)
+    s.cycle.state = moving
+    for k in range(40):
+        now, inputs = at(T0 + 0.01 * k, [0.002 + 1e-9 * (k % 2), 0.01])
+        assert "feedback_stale" not in dict(s.input_faults(now, inputs, True))
+    s.cycle.state = MotionState(P0.copy(), np.zeros(N), np.zeros(N))
+    for k in range(40):
+        assert "feedback_stale" not in dict(s.input_faults(*at(T0 + 1 + 0.1 * k, [0.0, 0.0]),
+                                                           True))

@@ -116,6 +116,8 @@ class StreamingSession:
         self.guard = SetpointGuard(limits)
         self._lock = threading.Lock()
         self._trips_seen = 0
+        self._feedback_last: np.ndarray | None = None   # values of the last feedback checked
+        self._feedback_changed = -math.inf               # when they last changed (or rested)
         self.late_decisions = 0
         self.shadow_policy = shadow
         self.shadow: DecisionCycle | None = None
@@ -275,8 +277,10 @@ class StreamingSession:
 
     def input_faults(self, now: float, inputs: SessionInputs, needs_feedback: bool
                      ) -> list[tuple[str, str]]:
-        """(kind, reason) of every input fault present now (staleness, following error)."""
+        """(kind, reason) of every input fault present now (staleness, frozen feedback,
+        following error)."""
         ages = InputAges(
+            feedback_unchanged=self._feedback_unchanged(now, inputs),
             joint_states=_age(now, inputs.joint_received),
             feedback=_age(now, inputs.feedback_valid_since),
             reference=_age(now, inputs.window_received),
@@ -292,6 +296,19 @@ class StreamingSession:
                 if reason is not None:
                     faults.append(("following_error", reason))
         return faults
+
+    def _feedback_unchanged(self, now: float, inputs: SessionInputs) -> float:
+        """How long the feedback values have stayed bit-identical while the arm moved (a
+        republished copy of a dead sensor's last values is not fresh feedback)."""
+        fb, state = inputs.feedback, self.cycle.state
+        moving = state is not None and bool(np.any(state.velocity != 0.0))
+        values = None if fb is None else np.asarray(fb.values, float)
+        last = self._feedback_last
+        if (values is None or not moving or last is None or values.shape != last.shape
+                or not np.array_equal(values, last, equal_nan=True)):
+            self._feedback_changed = now
+        self._feedback_last = None if values is None else values.copy()
+        return max(0.0, now - self._feedback_changed)
 
     def _commanded_before(self, stamps: float | np.ndarray) -> np.ndarray | None:
         """Commanded positions ``command_latency`` before the measurement time of each

@@ -58,6 +58,7 @@ class WatchdogConfig:
     reference_timeout: float = 0.25
     max_overruns: int = 3
     overrun_window: int = 20
+    feedback_frozen: float = 0.0   # feedback values unchanged this long while moving: stale (0: off)
 
     def __post_init__(self) -> None:
         for name in ("deviation_joint", "deviation_norm", "following_error",
@@ -68,6 +69,9 @@ class WatchdogConfig:
         if not (math.isfinite(self.command_latency) and self.command_latency >= 0):
             raise WatchdogError(f"watchdog parameter 'command_latency' must be >= 0, "
                                 f"got {self.command_latency!r}")
+        if not (math.isfinite(self.feedback_frozen) and self.feedback_frozen >= 0):
+            raise WatchdogError(f"watchdog parameter 'feedback_frozen' must be >= 0 (0 "
+                                f"disables the check), got {self.feedback_frozen!r}")
         if int(self.max_overruns) < 1 or int(self.overrun_window) < int(self.max_overruns):
             raise WatchdogError("watchdog parameters need 1 <= max_overruns <= overrun_window, got "
                                 f"{self.max_overruns} and {self.overrun_window}")
@@ -92,6 +96,8 @@ class InputAges:
     reference: float = math.inf
     reference_margin: float = math.inf  # window end minus the last time the horizon needs
     feedback_needed: bool = False
+    feedback_unchanged: float = 0.0     # how long the feedback values stayed identical while
+    #                                     the arm moved
 
 
 class Watchdog:
@@ -165,6 +171,11 @@ class Watchdog:
         if ages.feedback_needed and ages.feedback > c.feedback_timeout:
             out.append(("feedback_stale", _age_text("feedback", ages.feedback, "feedback_timeout",
                                                     c.feedback_timeout)))
+        elif (ages.feedback_needed and c.feedback_frozen > 0.0
+              and ages.feedback_unchanged > c.feedback_frozen):
+            out.append(("feedback_stale", f"feedback frozen: its values have not changed for "
+                        f"{ages.feedback_unchanged:.3f} s while the arm moves (over "
+                        f"feedback_frozen {c.feedback_frozen:g} s)"))
         if ages.reference > c.reference_timeout:
             out.append(("reference_stale", _age_text("reference/window", ages.reference,
                                                      "reference_timeout", c.reference_timeout)))
