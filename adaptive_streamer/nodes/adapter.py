@@ -489,7 +489,7 @@ class AdapterNode(LifecycleNode):
         try:
             t0 = time.perf_counter()
             now = now_sec(self)
-            d = session.decide(now, self._inputs(now), self._clock)
+            d = session.decide(now, self._inputs(now), self._now)
             if d is not None:
                 self._publish_plan(session)
                 self._decision_msg.data = decision_record.encode(d).tolist()
@@ -502,7 +502,9 @@ class AdapterNode(LifecycleNode):
             if self.session is not None:
                 self.session.stop(now_sec(self), "policy_fault", f"decision failed: {exc}")
 
-    def _clock(self) -> float:
+    def _now(self) -> float:
+        """The node's ROS time [s] (the session's clock for the plan deadline; not named
+        ``_clock``, which is rclpy's own attribute)."""
         return now_sec(self)
 
     def _publish_plan(self, session: StreamingSession) -> None:
