@@ -15,6 +15,15 @@ FAULTS = {
 }
 
 
+# --output: the adapter's driver output and the simulated driver's command interface
+OUTPUTS = {
+    "stream": "setpoints streamed at the driver's rate (position output, the driver holds on "
+              "its command timeout)",
+    "plan": "the committed plan per decision on driver/plan (the driver interpolates it and "
+            "brakes along its tail to rest when no new plan comes)",
+}
+
+
 class OptionError(ValueError):
     """A demo option is malformed."""
 
@@ -51,6 +60,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                              "tracker (reference only), hold")
     parser.add_argument("--limits", default=None, metavar="FILE",
                         help="joint limits YAML to run with (the reference is slowed to fit)")
+    parser.add_argument("--output", choices=sorted(OUTPUTS), default="stream",
+                        help="what the adapter sends the simulated driver: "
+                             + "; ".join(f"{k}: {v}" for k, v in OUTPUTS.items())
+                             + " (default: stream)")
     parser.add_argument("--record", default=None, metavar="DIR",
                         help="record every stack topic to a rosbag2 (MCAP) bag in DIR")
     parser.add_argument("--report", default="demo_report", metavar="DIR",
