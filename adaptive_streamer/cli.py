@@ -7,6 +7,7 @@
     adaptive-streamer check-policy CARD_OR_MODEL
     adaptive-streamer preflight --params FILE [--timeout S]
     adaptive-streamer dataset BAG... --card CARD --out FILE.npz
+    adaptive-streamer repair-bag CUT_BAG OUT_DIR [--compression none|zstd|lz4]
 """
 from __future__ import annotations
 
@@ -63,6 +64,19 @@ def _dataset(args: argparse.Namespace) -> int:
     return 0
 
 
+def _repair_bag(args: argparse.Namespace) -> int:
+    from .io.bag_io import BagError, repair_bag
+    try:
+        bag = repair_bag(args.bag, args.out, compression=args.compression)
+    except (BagError, OSError) as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    print(f"{args.bag} -> {args.out}: {bag.recovered or 'the bag was complete'}")
+    for name, data in sorted(bag.topics.items()):
+        print(f"  {len(data):8d}  {name}  ({data.msgtype})")
+    return 0
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser with every subcommand."""
     parser = argparse.ArgumentParser(
@@ -103,6 +117,14 @@ def build_parser() -> argparse.ArgumentParser:
                       help="policy card whose observation layout the table uses")
     data.add_argument("--out", required=True, metavar="FILE.npz", help="table to write")
     data.set_defaults(func=_dataset)
+
+    fix = sub.add_parser("repair-bag", help="rewrite a bag cut by a crash as a closed bag "
+                                            "that any rosbag2 reader opens")
+    fix.add_argument("bag", metavar="CUT_BAG", help="the cut bag folder or .mcap file")
+    fix.add_argument("out", metavar="OUT_DIR", help="folder for the repaired bag (must not exist)")
+    fix.add_argument("--compression", choices=["none", "zstd", "lz4"], default="none",
+                     help="chunk compression of the repaired bag (default: none)")
+    fix.set_defaults(func=_repair_bag)
     return parser
 
 

@@ -4,7 +4,10 @@ It implements the message semantics the plan output documents: a plan is knots (
 time in integer ns, position, velocity, acceleration per joint); a message applies from its
 first knot's time on and replaces the previous one from there; between knots the motion is
 the quintic Hermite interpolant of the two knots' p, v, a; after the last knot the arm
-holds at the last position at rest.
+holds at the last position at rest. Messages are taken in the order they were received;
+one received after its first knot's time would make a real driver jump, so `late` counts
+them apart (a receive time in a bag is when the recorder got it, later than the driver
+under load, so the follower itself does not use it beyond the order).
 
 The quintic Hermite coefficients are derived from the six end conditions (from memory);
 `test_plan_ahead.py` checks them against ``scipy.interpolate.BPoly.from_derivatives``.
@@ -62,13 +65,18 @@ def evaluate(msg: PlanMessage, t_ns: int) -> tuple[np.ndarray, np.ndarray, np.nd
 
 
 def active(messages: list[PlanMessage], t_ns: int) -> int | None:
-    """Index of the message in force at ``t_ns``: the last one received by then whose first
-    knot's time has come (None before the first)."""
+    """Index of the message in force at ``t_ns``: the last one (in receive order) whose
+    first knot's time has come (None before the first)."""
     best = None
     for k, m in enumerate(messages):
-        if m.received_ns <= t_ns and m.start_ns <= t_ns:
+        if m.start_ns <= t_ns:
             best = k
     return best
+
+
+def late(messages: list[PlanMessage]) -> int:
+    """How many messages were received after their first knot's time."""
+    return sum(m.received_ns > m.start_ns for m in messages)
 
 
 def follow(messages: list[PlanMessage], t0_ns: int, t1_ns: int, step_ns: int = 1_000_000
@@ -92,14 +100,14 @@ def follow(messages: list[PlanMessage], t0_ns: int, t1_ns: int, step_ns: int = 1
 
 def switch_jumps(messages: list[PlanMessage]) -> list[float]:
     """At every switch from one message in force to the next (at the later one's first knot
-    time, or its arrival if later): the largest |difference| of p, v and a between the
-    outgoing and the incoming plan there."""
+    time): the largest |difference| of p, v and a between the outgoing and the incoming
+    plan there."""
     jumps = []
     for k in range(1, len(messages)):
-        prev = active(messages[:k], max(messages[k].start_ns, messages[k].received_ns))
+        t = messages[k].start_ns
+        prev = active(messages[:k], t)
         if prev is None:
             continue
-        t = max(messages[k].start_ns, messages[k].received_ns)
         old = evaluate(messages[prev], t)[:3]
         new = evaluate(messages[k], t)[:3]
         jumps.append(max(float(np.max(np.abs(x - y))) for x, y in zip(old, new)))

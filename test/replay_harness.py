@@ -9,7 +9,8 @@ Processes (real nodes over DDS, wall-clock ROS time):
 * adapter (own process), configured and activated from here through its lifecycle
   services once the recorder records its outputs, deactivated at the end (a controlled
   stop), with a linear-feedback policy card written here (the demo limits; a small gain
-  from ``edge_offset`` onto j1, so feedback changes the decisions);
+  from ``edge_offset`` onto j1, so feedback changes the decisions), suspended for a moment
+  halfway (`STALL_S`) so that some decisions come late;
 * recorder (own process, `adaptive_streamer.replay.recorder.Recorder`).
 
 `live_recording` runs it once per test process and caches the bag.
@@ -31,6 +32,7 @@ from adaptive_streamer.share import demo_file
 
 JOINTS = ["j1", "j2", "j3", "j4", "j5", "j6"]
 FOLLOW_S = 4.0       # seconds of recording once the adapter follows (short: shared cores)
+STALL_S = 0.12       # the adapter process is suspended this long mid-run: late decisions
 START_WAIT_S = 60.0  # upper bound for process start and DDS discovery; not a speed check
 
 CELL = """
@@ -111,8 +113,11 @@ def _stop(proc: subprocess.Popen, timeout: float = 20.0) -> None:
 
 
 def record_live_run(folder: Path, follow_s: float = FOLLOW_S, compression: str = "zstd",
-                    chunk_size: int = 64 * 1024) -> Path:
-    """Run the stack, record it, stop it; returns the bag folder."""
+                    chunk_size: int = 64 * 1024, stall_s: float = STALL_S) -> Path:
+    """Run the stack, record it, stop it; returns the bag folder. Halfway through, the
+    adapter process is suspended for ``stall_s`` (SIGSTOP/SIGCONT), so the recording holds
+    decisions that came late, as real recordings do (two or three periods: fewer than the
+    watchdog's max_overruns, so the run goes on)."""
     folder.mkdir(parents=True, exist_ok=True)
     card = write_card(folder)
     params = write_params(folder, card)
@@ -143,7 +148,14 @@ def record_live_run(folder: Path, follow_s: float = FOLLOW_S, compression: str =
                 time.sleep(0.2)
             if not op.start_reference():  # the reference waits at its start until now
                 raise RuntimeError(f"the reference did not start; see {folder}")
-            time.sleep(follow_s)
+            time.sleep(follow_s / 2)
+            if stall_s > 0:
+                adapter.send_signal(signal.SIGSTOP)
+                try:
+                    time.sleep(stall_s)
+                finally:
+                    adapter.send_signal(signal.SIGCONT)
+            time.sleep(follow_s / 2)
             op.client.deactivate()  # a controlled stop, recorded
     finally:
         try:
@@ -208,16 +220,7 @@ def live_recording(tmp_root: Path) -> Path:
     recording is not retried, later modules see its error)."""
     if "bag" not in _CACHE:
         try:
-            # bit-identical replay is promised for recordings without late decisions: on a
-            # loaded machine, record again (up to 3 runs) until one has none
-            for attempt in range(3):
-                bag = record_live_run(tmp_root / f"live{attempt or ''}")
-                late = late_decisions(bag)
-                if not late:
-                    break
-                print(f"live recording {bag}: {late} late decision(s), recording again",
-                      file=sys.stderr)
-            _CACHE["bag"] = bag
+            _CACHE["bag"] = record_live_run(tmp_root / "live")
         except Exception as exc:
             _CACHE["bag"] = exc
     if isinstance(_CACHE["bag"], Exception):

@@ -53,7 +53,8 @@ def test_colcon_installs_executables_launch_and_config(colcon_install):
                 "watchdog", "recorder", "adaptive-streamer"):
         assert (lib / exe).is_file(), f"{exe} not installed in {lib}"
     for rel in ("package.xml", "launch/streamer.launch.py", "launch/demo.launch.py",
-                "config/demo/params.yaml", "config/demo/limits.yaml", "config/streamer.params.yaml"):
+                "config/demo/params.yaml", "config/demo/limits.yaml", "config/streamer.params.yaml",
+                "config/streamer_plan.params.yaml"):
         assert (share / rel).is_file(), f"{rel} not installed in {share}"
     marker = colcon_install / "share" / "ament_index" / "resource_index" / "packages" / PACKAGE
     assert marker.is_file(), "ament index marker missing"
@@ -88,7 +89,8 @@ def test_launch_files_name_only_installed_things(name):
         assert (ROOT.joinpath(*parts)).is_file(), parts
 
 
-@pytest.mark.parametrize("params", ["config/demo/params.yaml", "config/streamer.params.yaml"])
+@pytest.mark.parametrize("params", ["config/demo/params.yaml", "config/streamer.params.yaml",
+                                    "config/streamer_plan.params.yaml"])
 def test_params_files_name_existing_nodes_and_files(params):
     from adaptive_streamer.bringup import NODE_KINDS
     data = yaml.safe_load((ROOT / params).read_text())

@@ -20,7 +20,7 @@ from adaptive_streamer.core.plan_ahead import PlanGrid, PlanKnots, braking_tail
 from adaptive_streamer.core.limit_stage import LimitStage
 from adaptive_streamer.core.segment import MotionState, sample
 from adaptive_streamer.core.session import StreamingSession
-from plan_follower import PlanMessage, follow, hermite5, switch_jumps
+from plan_follower import PlanMessage, follow, hermite5, late, switch_jumps
 from test_cycle import LIMITS, N, T, TOL
 from test_session import Emulator, session
 
@@ -64,7 +64,9 @@ def test_braking_tail_reaches_rest_within_the_limits():
     for _ in range(50):
         v = rng.uniform(-0.8, 0.8, N) * LIMITS.velocity_max
         state = MotionState(mid.copy(), v, np.zeros(N))
-        us, states = braking_tail(stage, state, REST, 1e-5)
+        tail = braking_tail(stage, state, REST, 1e-5)
+        us, states = tail.decisions, tail.states
+        np.testing.assert_array_equal(tail.first.lo, stage.evaluate(*state).lo)
         assert us and np.all(np.abs(states[-1].velocity) <= REST)
         assert np.all(np.abs(states[-1].acceleration) <= 1e-5)
         s = state
@@ -73,12 +75,13 @@ def test_braking_tail_reaches_rest_within_the_limits():
                                        LIMITS.velocity_max, LIMITS.acceleration_max,
                                        LIMITS.jerk_max) <= TOL
             s = nxt
-    assert braking_tail(stage, MotionState(mid, np.zeros(N), np.zeros(N)), REST, 1e-5) == ([], [])
+    rest = braking_tail(stage, MotionState(mid, np.zeros(N), np.zeros(N)), REST, 1e-5)
+    assert rest.decisions == [] and rest.states == [] and rest.first is None
 
 
 def test_grid_keeps_consecutive_messages_on_the_same_nanoseconds():
     # at epoch-sized times a float instant resolves 2.4e-7 s; the grid is exact integers
-    grid = PlanGrid.anchored(1_796_000_000.0123, T)
+    grid = PlanGrid.anchored(1_796_000_000.012, T)
     t = grid.t0
     for k in range(1, 100_000):
         t += T
@@ -130,7 +133,7 @@ def _check_followed(emu: Emulator, sent: list[PlanMessage]) -> dict[str, np.ndar
     assert np.all(f["p"] <= LIMITS.position_max + 1e-9)
     jumps = switch_jumps(sent)
     assert jumps and max(jumps) <= 1e-9
-    assert all(m.received_ns < m.start_ns for m in sent[1:])  # every plan in time
+    assert late(sent[1:]) == 0  # every plan sent before its first point's time
     return f
 
 

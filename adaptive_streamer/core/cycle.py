@@ -33,7 +33,7 @@ import numpy as np
 from .alignment import AlignmentError, align, validate_window
 from .playback import Window
 from .feedback import FeatureVector
-from .limit_stage import LimitStage
+from .limit_stage import Admissible, LimitStage
 from .policies.base import Policy, PolicyInputs
 from .segment import MotionState, integrate
 from .watchdog import Watchdog
@@ -154,6 +154,7 @@ class DecisionCycle:
         self._pending = _Pending()
         self._offsets = np.arange(config.horizon) * self.period
         self._continuous = stage.limits.continuous
+        self._evaluated: tuple[LimitStage, MotionState, Admissible] | None = None
 
     # ------------------------------------------------------------------ control
     def begin(self, t: float, measured: MotionState) -> None:
@@ -247,7 +248,7 @@ class DecisionCycle:
         if fault is not None:
             d = self._braking(t, state, "stopping", wstamp, fstamp, "policy_fault", fault)
             return replace(d, action=action if action.shape == (n,) else nan, policy_time=elapsed)
-        r = stage.evaluate(*state)
+        r = self._evaluate(stage, state)
         meaning = policy.action_meaning
         if meaning in ("normalised", "acceleration"):
             u = map_action(meaning, action, r.lo, r.hi)
@@ -325,7 +326,7 @@ class DecisionCycle:
     def _braking(self, t: float, state: MotionState, mode: str, wstamp: float, fstamp: float,
                  verdict: str, message: str) -> Decision:
         stage = self.stage
-        r = stage.evaluate(*state)
+        r = self._evaluate(stage, state)
         u = stage.braking(state, r)
         n = state.position.shape[0]
         d = Decision(t, mode, state, wstamp, fstamp, np.full(n, np.nan), r.lo, r.hi, u,
@@ -335,6 +336,18 @@ class DecisionCycle:
         elif mode in ("approaching", "following") and verdict == "ok":
             d = replace(d, next_mode=mode)
         return d
+
+    def reuse_evaluation(self, stage: LimitStage, state: MotionState, r: Admissible) -> None:
+        """``r`` is ``stage.evaluate(*state)`` for the cycle's current ``state`` object,
+        computed elsewhere (the plan output's braking continuation): the next decision uses
+        it instead of evaluating again (only while stage and state are those objects)."""
+        self._evaluated = (stage, state, r)
+
+    def _evaluate(self, stage: LimitStage, state: MotionState) -> Admissible:
+        memo = self._evaluated
+        if memo is not None and memo[0] is stage and memo[1] is state:
+            return memo[2]
+        return stage.evaluate(*state)
 
     def _rest_after(self, d: Decision) -> bool:
         end = integrate(*d.state, d.u, self.period)

@@ -26,8 +26,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .limit_stage import LimitStage
-from .segment import MotionState, integrate
+from .limit_stage import Admissible, LimitStage
+from .segment import MotionState
 
 MAX_TAIL_SEGMENTS = 2000   # a braking continuation longer than this is refused (100 s at 50 ms)
 
@@ -76,46 +76,73 @@ class PlanGrid:
 
     @classmethod
     def anchored(cls, t0: float, period: float) -> "PlanGrid":
-        """The grid through ``t0`` with spacing ``period`` (both in seconds)."""
-        return cls(float(t0), int(round(t0 * 1e9)), float(period), int(round(period * 1e9)))
+        """The grid through ``t0`` (rounded to the microsecond, so that the same instant
+        reached by float sums that differ in the last bit anchors the same grid) with
+        spacing ``period`` (both in seconds)."""
+        return cls(float(t0), int(round(t0 * 1e6)) * 1000, float(period),
+                   int(round(period * 1e9)))
 
     def ns(self, t: float) -> int:
         """The grid time [ns] of the decision instant nearest ``t`` [s]."""
         return self.t0_ns + round((t - self.t0) / self.period) * self.period_ns
 
 
+@dataclass(frozen=True)
+class BrakingTail:
+    """The braking decisions from a state until at rest, the state after each, and the
+    limit stage's interval at the starting state (None when it was already at rest)."""
+
+    decisions: list[np.ndarray]
+    states: list[MotionState]
+    first: Admissible | None
+
+
 def braking_tail(stage: LimitStage, state: MotionState, rest_velocity: float,
-                 rest_acceleration: float) -> tuple[list[np.ndarray], list[MotionState]]:
-    """The braking decisions from ``state`` until at rest, and the state after each.
+                 rest_acceleration: float) -> BrakingTail:
+    """The braking decisions from ``state`` until at rest (`BrakingTail`).
 
     At rest means every joint within ``rest_velocity`` and ``rest_acceleration``; a state
     already at rest gives no decision. Raises `PlanAheadError` when rest is not reached
     within `MAX_TAIL_SEGMENTS` periods (only possible from a state outside the limits).
+    The states follow the constant-jerk closed forms of `adaptive_streamer.core.segment`
+    (`integrate`, written out here: this loop is the plan output's cost per decision).
     """
     decisions: list[np.ndarray] = []
     states: list[MotionState] = []
+    first = None
     T = stage.period
-    while not (np.all(np.abs(state.velocity) <= rest_velocity)
-               and np.all(np.abs(state.acceleration) <= rest_acceleration)):
+    p, v, a = state
+    while np.max(np.abs(v)) > rest_velocity or np.max(np.abs(a)) > rest_acceleration:
         if len(decisions) >= MAX_TAIL_SEGMENTS:
             raise PlanAheadError(f"the braking continuation did not reach rest within "
                                  f"{MAX_TAIL_SEGMENTS} periods ({MAX_TAIL_SEGMENTS * T:g} s)")
-        u = stage.braking(state)
-        state = integrate(*state, u, T)
+        r = stage.evaluate(p, v, a)
+        first = first or r
+        u = stage.braking((p, v, a), r)
+        p, v, a = p + T * v + T * T * (2.0 * a + u) / 6.0, v + 0.5 * T * (a + u), u
         decisions.append(u)
-        states.append(state)
-    return decisions, states
+        states.append(MotionState(p, v, a))
+    return BrakingTail(decisions, states, first)
 
 
-def plan_knots(grid: PlanGrid, start: float, state: MotionState, u: np.ndarray,
-               stage: LimitStage, rest_velocity: float, rest_acceleration: float) -> PlanKnots:
-    """The plan message for the segment committed at ``start`` from ``state`` with decision
-    ``u``: that segment's two knots, then the braking continuation to rest."""
-    end = integrate(*state, u, stage.period)
-    tail, tail_states = braking_tail(stage, end, rest_velocity, rest_acceleration)
-    knots = [state, end, *tail_states]
-    return PlanKnots(grid.ns(start), grid.period_ns,
-                     np.array([k.position for k in knots], float),
-                     np.array([k.velocity for k in knots], float),
-                     np.array([k.acceleration for k in knots], float),
-                     tuple(tail))
+@dataclass(frozen=True)
+class PlanBuild:
+    """A plan message and the limit stage's interval at its committed segment's end state
+    (the next decision's state; None when at rest), which the next decision can reuse."""
+
+    knots: PlanKnots
+    end_admissible: Admissible | None
+
+
+def plan_knots(grid: PlanGrid, start: float, state: MotionState, end: MotionState,
+               stage: LimitStage, rest_velocity: float, rest_acceleration: float) -> PlanBuild:
+    """The plan message for the segment committed at ``start`` from ``state`` to ``end``
+    (its end state): that segment's two knots, then the braking continuation to rest."""
+    tail = braking_tail(stage, end, rest_velocity, rest_acceleration)
+    knots = [state, end, *tail.states]
+    return PlanBuild(PlanKnots(grid.ns(start), grid.period_ns,
+                               np.array([k.position for k in knots], float),
+                               np.array([k.velocity for k in knots], float),
+                               np.array([k.acceleration for k in knots], float),
+                               tuple(tail.decisions)),
+                     tail.first)

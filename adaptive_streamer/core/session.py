@@ -229,6 +229,14 @@ class StreamingSession:
             self.stop(t, "setpoint_guard", reason)
         return sp, reason
 
+    def commit_late(self, t: float) -> None:
+        """Commit the braking segments of every decision that was late by ``t`` (the plan
+        ends by then), exactly as `sample` does at a stream tick, without sampling (replay
+        fills the gaps of a recording where the live decisions came late: the live guard
+        judged the live stream, which the recording holds)."""
+        with self._lock:
+            self._fill_late(t, t)
+
     def sample_shadow(self, t: float) -> MotionState | None:
         """The shadow policy's setpoint at ``t`` (None when not running or not planned)."""
         with self._lock:
@@ -344,14 +352,19 @@ class StreamingSession:
         return d
 
     def _commit(self, d: Decision) -> None:
-        """Append ``d``'s segment to the plan and, with the plan-ahead output, build the new
-        plan message from it (the lock is held)."""
+        """Append ``d``'s segment to the plan (``d`` is already committed to the cycle) and,
+        with the plan-ahead output, build the new plan message from it (the lock is
+        held)."""
         self.plan.commit(Segment(d.time, d.state, d.u))
         if self.plan_lead is not None:
             c = self.cycle_config
-            self.last_plan = plan_knots(self._grid, d.time, d.state, d.u, self.cycle.stage,
-                                        c.rest_velocity, c.rest_acceleration)
-            self._tail = list(self.last_plan.tail)
+            stage, end = self.cycle.stage, self.cycle.state
+            build = plan_knots(self._grid, d.time, d.state, end, stage, c.rest_velocity,
+                               c.rest_acceleration)
+            self.last_plan = build.knots
+            self._tail = list(build.knots.tail)
+            if build.end_admissible is not None:
+                self.cycle.reuse_evaluation(stage, end, build.end_admissible)
 
     def _fill_late(self, t: float, now: float) -> None:
         """Commit braking segments while the plan ends by ``t`` (the decision for its end

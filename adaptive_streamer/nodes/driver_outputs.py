@@ -46,6 +46,7 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from adaptive_streamer.core.plan_ahead import PlanKnots
 from adaptive_streamer.core.segment import MotionState
 
+from ..io.plan_messages import PlanEncoder
 from ..io.stamps import sec_to_stamp
 from .common import declare, qos_by_name
 
@@ -91,7 +92,7 @@ class DriverOutput:
         self.publisher = create(msg_type, topic, qos, callback_group=callback_group,
                                 event_callbacks=events)
         if kind == "plan":
-            self._msg = JointTrajectory(joint_names=order)
+            self._plan_encoder = PlanEncoder(order)
         elif kind == "trajectory":
             self._msg = JointTrajectory(joint_names=order)
             self._msg.points = [JointTrajectoryPoint()]
@@ -125,8 +126,7 @@ class DriverOutput:
         """Publish a plan message (plan outputs only; the others ignore it)."""
         if self.kind != "plan":
             return
-        fill_plan(self._msg, knots, self.index)
-        self.publisher.publish(self._msg)
+        self.publisher.publish(self._plan_encoder.encode(knots, self.index))
 
     def status(self) -> dict[str, Any]:
         """Diagnostics values for this output."""
@@ -138,19 +138,6 @@ class DriverOutput:
 def output_type(node: Node, name: str) -> str:
     """The ``<name>.type`` parameter of output ``name`` (declared on first use)."""
     return _declared(node, f"{name}.type", "position", TYPE_HELP)
-
-
-def fill_plan(msg: JointTrajectory, knots: PlanKnots, index: np.ndarray) -> None:
-    """Fill a plan message in place from ``knots`` (joints in the order ``index``)."""
-    msg.header.stamp.sec, msg.header.stamp.nanosec = divmod(knots.stamp_ns, 1_000_000_000)
-    p, v, a = (x[:, index] for x in (knots.positions, knots.velocities, knots.accelerations))
-    points = []
-    for i, off in enumerate(knots.offsets_ns):
-        pt = JointTrajectoryPoint(positions=p[i].tolist(), velocities=v[i].tolist(),
-                                  accelerations=a[i].tolist())
-        pt.time_from_start.sec, pt.time_from_start.nanosec = divmod(off, 1_000_000_000)
-        points.append(pt)
-    msg.points = points
 
 
 def _declared(node: Node, name: str, default: Any, description: str) -> Any:

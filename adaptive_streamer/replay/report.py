@@ -2,7 +2,9 @@
 
     OUT/bag/            rosbag2 (MCAP): the replayed ``setpoints`` (one point per stream tick,
                         receive time = tick time) and ``<adapter>/decisions`` (records, receive
-                        time = the decision time used), in the recorded namespace
+                        time = the decision time used), in the recorded namespace; with a
+                        plan-ahead output also ``driver/plan`` (one message per plan the
+                        replayed session sent, receive time = the decision time used)
     OUT/summary.json    the comparison (`compare.Comparison`) and the replay's facts
     OUT/report.md       the same for people
     OUT/*.png           committed accelerations, setpoint positions, limit usage, compute time
@@ -74,6 +76,20 @@ def write_bag(result: ReplayResult, stream: Stream, path: Path) -> Path:
                                                                   stream.a[k])
                 _STAMP.pack_into(buf, 4, sec, nsec)
                 events.append((sec * 1_000_000_000 + nsec, 0, sp, bytes(buf)))
+        if result.plans:
+            pl = writer.add_topic(result.topics["plan"], JOINT_TRAJECTORY)
+            for sent in result.plans:
+                k = sent.knots
+                sec, nsec = divmod(k.stamp_ns, 1_000_000_000)
+                pts = [Point(positions=k.positions[i], velocities=k.velocities[i],
+                             accelerations=k.accelerations[i], effort=empty,
+                             time_from_start=Duration(sec=off // 1_000_000_000,
+                                                      nanosec=off % 1_000_000_000))
+                       for i, off in enumerate(k.offsets_ns)]
+                msg = Traj(header=Header(stamp=Time(sec=sec, nanosec=nsec), frame_id=""),
+                           joint_names=joints, points=pts)
+                events.append((int(round(sent.time * 1e9)), 2, pl,
+                               encode(msg, JOINT_TRAJECTORY)))
         layout = Layout(dim=[Dim(label=decision_record.LABEL, size=0, stride=0)], data_offset=0)
         for d, now in zip(result.decisions, result.now.tolist()):
             msg = F64(layout=layout, data=decision_record.encode(d))

@@ -7,8 +7,9 @@ the node does, without DDS:
 * with decision records (``<adapter>/decisions``), each recorded cycle is re-run at its
   recorded instant with the inputs it used (`InputRebuilder.exact`); the session starts
   from the first record's planned state, on the recorded decision clock. Gaps in the
-  records (decisions that came too late live) are filled as the stream did, by the
-  braking segment (`StreamingSession.sample` at the plan's end). Stops requested on the
+  records (decisions that came too late live) are filled as the live session did, by the
+  braking segment (`StreamingSession.commit_late` at the plan's end: with the plan output
+  the continuation it had sent, as sent). Stops requested on the
   ``stop`` topic are applied at their receive times; a reset seen in the records (stopped
   -> approaching) is applied before that cycle. The decision time ``now`` of a cycle is
   the record's receive time.
@@ -33,12 +34,13 @@ from typing import Any
 import numpy as np
 
 from adaptive_streamer.core.cycle import Decision
+from adaptive_streamer.core.plan_ahead import PlanKnots
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.stream import Segment
 from adaptive_streamer.core.watchdog import Trip
 
 from ..io import run_info as run_info_mod
-from ..io.bag_io import Bag, TopicData, read_bag
+from ..io.bag_io import Bag, TopicData, decode, read_bag
 from .inputs import InputRebuilder
 from ..io.messages import (BOOL, FLOAT64_ARRAY, JOINT_STATE, JOINT_TRAJECTORY, MessageError,
                            STRING, JointStateReader, decision_records, read_bool, read_string)
@@ -53,11 +55,20 @@ INPUT_TOPICS = {
     "stop": ("stop", BOOL),
     "setpoints": ("setpoints", JOINT_TRAJECTORY),
     "robot_description": ("robot_description", STRING),
+    "plan": ("driver/plan", JOINT_TRAJECTORY),
 }
 
 
 class ReplayError(ValueError):
     """The bag cannot be replayed (names the bag, topic, joint or parameter at fault)."""
+
+
+@dataclass(frozen=True)
+class SentPlan:
+    """A plan message the replayed session sent (plan-ahead output): when and what."""
+
+    time: float
+    knots: PlanKnots
 
 
 @dataclass
@@ -79,6 +90,7 @@ class ReplayResult:
     notes: list[str] = field(default_factory=list)
     partial: str | None = None
     approximate_cycles: int = 0
+    plans: list[SentPlan] = field(default_factory=list)  # plan-ahead output, as sent
     elapsed: float = 0.0                        # wall time of the cycle loop [s]
     bag_data: Bag | None = None
 
@@ -227,6 +239,13 @@ class _Runner:
         self.decisions: list[Decision] = []
         self.compute: list[float] = []
         self.now: list[float] = []
+        self.plans: list[SentPlan] = []
+
+    def _sent(self, now: float) -> None:
+        """Keep the session's new plan message, if the last commit made one."""
+        knots = self.session.last_plan
+        if knots is not None and (not self.plans or self.plans[-1].knots is not knots):
+            self.plans.append(SentPlan(now, knots))
 
     def begin(self, t0: float, position: np.ndarray, first_decision: float | None) -> None:
         """Start at rest at ``position`` as the node's activation does."""
@@ -235,6 +254,7 @@ class _Runner:
         if first_decision is not None and self.session.cycle.t != first_decision:
             self.session.cycle.t = first_decision  # the recorded decision clock, bit for bit
         self.segments.append(self.session.plan.segment_at(t0))
+        self._sent(t0)
 
     def seed(self, r0: Decision) -> None:
         """Start from a recorded decision (the recording began after the adapter started):
@@ -269,7 +289,7 @@ class _Runner:
         session, period = self.session, self.setup.period
         while session.cycle.t < t - 0.5 * period:
             end = session.plan.end
-            session.sample(end)
+            session.commit_late(end)
             self.segments.append(session.plan.segment_at(end + 0.5 * period))
 
     def decide(self, now: float, inputs: Any) -> Decision | None:
@@ -281,6 +301,7 @@ class _Runner:
             self.compute.append(dt)
             self.now.append(now)
             self.segments.append(Segment(d.time, d.state, d.u))
+            self._sent(now)
         return d
 
 
@@ -349,11 +370,35 @@ def _replay(bag: Bag, setup: SessionSetup, ns: str, decisions_topic: str, notes:
         bar.close()
     result.compute = np.asarray(runner.compute)
     result.now = np.asarray(runner.now)
+    result.plans = runner.plans
+    if result.plans and found["plan"] is not None:
+        notes.append(plan_agreement(result.plans, found["plan"], topics["plan"]))
     result.trips = list(setup.session.watchdog.events)
     if rebuilder.bad_windows:
         notes.append(f"{rebuilder.bad_windows} reference/window message(s) could not be used "
                      f"(as live): {'; '.join(rebuilder.window_errors)}")
     return result
+
+
+def plan_agreement(plans: list[SentPlan], recorded: TopicData, topic: str) -> str:
+    """One line: how the regenerated plan messages agree with the recorded ones (matched by
+    the time of their first point)."""
+    by_stamp = {p.knots.stamp_ns: p.knots for p in plans}
+    matched, worst = 0, 0.0
+    for raw in recorded.raw:
+        msg = decode(raw, JOINT_TRAJECTORY)
+        knots = by_stamp.get(msg.header.stamp.sec * 1_000_000_000 + msg.header.stamp.nanosec)
+        if knots is None or len(msg.points) != len(knots.positions):
+            continue
+        matched += 1
+        for k, pt in enumerate(msg.points):
+            for got, want in ((pt.positions, knots.positions[k]),
+                              (pt.velocities, knots.velocities[k]),
+                              (pt.accelerations, knots.accelerations[k])):
+                worst = max(worst, float(np.max(np.abs(np.asarray(got) - want))))
+    return (f"{topic}: {len(plans)} plan message(s) regenerated; {matched} of "
+            f"{len(recorded.raw)} recorded ones have a regenerated one with the same first "
+            f"point time and knot count, largest |difference| of p, v, a {worst:.3g}")
 
 
 def _progress(enabled: bool, total: int | None) -> Any:
