@@ -9,6 +9,11 @@ The adapter is configured and activated through its lifecycle services (unless i
 ``autostart`` parameter does it), retried until ``joint_states`` is fresh. On Ctrl-C (or
 SIGTERM) the adapter is deactivated first, which brings the arm to rest while the stream and
 the driver keep running; then every child is stopped, cleanly, without a traceback.
+
+With ``--record`` the adapter is activated (motion starts) only once the recorder records
+every configured topic that has a publisher (`adaptive_streamer.nodes.recording_ready`).
+An adapter that activates itself (``autostart``), or ``--one-process``, cannot wait for
+the recorder: bringup says so when it starts.
 """
 from __future__ import annotations
 
@@ -250,9 +255,14 @@ def bringup(params: str | Path, one_process: bool = False, record: str | None = 
             tmp_text = text + "\n" + yaml.safe_dump({_key(entries[-1]): {
                 "ros__parameters": entries[-1].params}})
             Path(tmp.name).write_text(tmp_text)
+        if record and (one_process or any(e.kind == "adapter" and e.params.get("autostart")
+                                          for e in entries)):
+            print("bringup: warning: the adapter starts motion without waiting for the "
+                  "recorder (autostart or --one-process); the first decisions may lack their "
+                  "recorded inputs (replay skips them)", file=sys.stderr)
         if one_process:
             return run_one_process(entries, tmp.name)
-        return _run_processes(entries, tmp.name, activate_timeout, ready)
+        return _run_processes(entries, tmp.name, activate_timeout, ready, bool(record))
     finally:
         os.unlink(tmp.name)
 
@@ -270,11 +280,12 @@ def _key(entry: NodeEntry) -> str:
 
 
 def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout: float,
-                   ready: Any) -> int:
+                   ready: Any, record: bool = False) -> int:
     import rclpy
     from rclpy.node import Node
 
     from .nodes.lifecycle_client import LifecycleClient, LifecycleClientError
+    from .nodes.recording_ready import RecordingNotReady, RecordingWatch
 
     stop = {"flag": False}
 
@@ -289,10 +300,16 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
     adapters = [e for e in entries if e.kind == "adapter"]
     clients = [LifecycleClient(node, e.fqn) for e in adapters
                if not e.params.get("autostart", False)]
+    watch = RecordingWatch(node, entries[-1].fqn) if record else None
     try:
         for entry in entries:
             procs.start(entry, params_file)
             print(f"bringup: started {entry.fqn} (pid {procs.children[-1][1].pid})", flush=True)
+        for client in clients:
+            _configure(client, activate_timeout)
+        if watch is not None:
+            watch.wait(activate_timeout, lambda s: rclpy.spin_once(node, timeout_sec=s),
+                       alive=lambda: not procs.dead() and not stop["flag"])
         for client in clients:
             _activate(client, activate_timeout, stop)
         if ready is not None:
@@ -313,7 +330,7 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
                     client.deactivate()
             except LifecycleClientError as exc:
                 print(f"bringup: {exc}", file=sys.stderr)
-    except LifecycleClientError as exc:
+    except (LifecycleClientError, RecordingNotReady) as exc:
         print(f"bringup: {exc}", file=sys.stderr)
         code = 1
     finally:
@@ -328,8 +345,8 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
     return code or (1 if notes else 0)
 
 
-def _activate(client: Any, timeout: float, stop: dict) -> None:
-    """configure, then activate with retries (activation waits for fresh joint_states)."""
+def _configure(client: Any, timeout: float) -> None:
+    """Wait for the adapter's lifecycle services and configure it (if unconfigured)."""
     from .nodes.lifecycle_client import LifecycleClientError
 
     if not client.wait(timeout):
@@ -337,6 +354,12 @@ def _activate(client: Any, timeout: float, stop: dict) -> None:
     state = client.state()
     if state == "unconfigured" and not client.configure():
         raise LifecycleClientError(f"{client.target}: configure refused (see its log)")
+
+
+def _activate(client: Any, timeout: float, stop: dict) -> None:
+    """Activate with retries (activation waits for fresh joint_states)."""
+    from .nodes.lifecycle_client import LifecycleClientError
+
     deadline = time.monotonic() + timeout
     while not stop["flag"]:
         if client.state() == "active" or client.activate():

@@ -16,6 +16,7 @@ from trajectory_msgs.msg import JointTrajectory
 
 from adaptive_streamer.bringup import BringupError, read_params
 from adaptive_streamer.share import demo_file
+from test_demo import assert_inputs_recorded_before_motion
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -89,12 +90,14 @@ class Listener:
 
 
 @pytest.mark.ros
-@pytest.mark.parametrize("one_process", [False, True])
-def test_bringup_streams_and_stops_cleanly_on_ctrl_c(tmp_path, one_process):
+@pytest.mark.parametrize("one_process, record", [(False, True), (True, False)])
+def test_bringup_streams_and_stops_cleanly_on_ctrl_c(tmp_path, one_process, record):
     params = cell_params(tmp_path)
     cmd = [sys.executable, "-m", "adaptive_streamer.cli", "bringup", "--params", str(params)]
     if one_process:
         cmd.append("--one-process")
+    if record:
+        cmd += ["--record", str(tmp_path / "bags")]
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
                             env=dict(os.environ, PYTHONUNBUFFERED="1"))
     listener = Listener()
@@ -113,3 +116,6 @@ def test_bringup_streams_and_stops_cleanly_on_ctrl_c(tmp_path, one_process):
     # the stream was brought to rest before the processes stopped
     last = np.abs(np.array(listener.samples[-1][1]))
     assert last.max() < 1e-6, last
+    if record:   # motion started only once the recorder recorded the inputs
+        (bag,) = [d for d in (tmp_path / "bags").iterdir() if d.is_dir()]
+        assert_inputs_recorded_before_motion(bag, ("/joint_states", "/reference/window"))

@@ -95,6 +95,22 @@ def test_demo_adapts_within_limits_and_writes_its_report(tmp_path):
     t, p, v, a = read_setpoints(bag)
     assert t.size > 1000
     assert_within_limits(t, p, v, a, demo_file("limits.yaml"))
+    assert_inputs_recorded_before_motion(bag)
+
+
+def assert_inputs_recorded_before_motion(
+        bag: Path, inputs: tuple[str, ...] = ("/joint_states", "/feedback", "/reference/window")
+) -> None:
+    """Motion started only once the recorder recorded the adapter's inputs: every input
+    topic has a message in the bag before the first decision record and before the first
+    setpoint (read with rosbags, not the package)."""
+    first: dict[str, int] = {}
+    with AnyReader([bag], default_typestore=get_typestore(Stores.ROS2_JAZZY)) as reader:
+        for conn, t, _ in reader.messages():
+            first.setdefault(conn.topic, t)
+    start = min(first["/adapter/decisions"], first["/setpoints"])
+    for topic in inputs:
+        assert topic in first and first[topic] < start, (topic, first)
 
 
 def test_feedback_dropout_ends_in_a_controlled_stop(tmp_path):

@@ -126,3 +126,25 @@ def test_recording_that_starts_late_replays_from_its_first_record(live_bag, tmp_
     assert any("starts after the adapter did" in n for n in result.notes)
     c, _, _ = compare(result)
     assert c.deterministic and result.cycles < full.cycles - 5
+
+
+def test_recording_whose_inputs_start_late_replays_from_the_first_complete_cycle(live_bag,
+                                                                                 tmp_path):
+    # the recorder picked up the inputs 1.5 s after the adapter's own topics: the first
+    # decision records name inputs the bag does not hold
+    full = replay(live_bag)
+    t_cut = full.decisions[0].time + 1.5
+
+    def late(t, raw):
+        return raw if t * 1e-9 > t_cut else None
+    change = {topic: (msgtype, None, None, late) for topic, msgtype in (
+        ("/joint_states", "sensor_msgs/msg/JointState"),
+        ("/reference/window", "trajectory_msgs/msg/JointTrajectory"),
+        ("/feedback", "sensor_msgs/msg/JointState"))}
+    bag = replay_harness.copy_bag(live_bag, tmp_path / "inputs_late", change=change)
+    result = replay(bag)
+    assert result.partial is None, result.partial
+    assert any("skipped" in n for n in result.notes), result.notes
+    c, _, _ = compare(result)
+    assert c.deterministic and result.cycles >= full.cycles - 40, (result.cycles, full.cycles)
+    assert c.identical == c.compared and c.compared > 0, c.first_difference

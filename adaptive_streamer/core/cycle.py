@@ -33,7 +33,7 @@ import numpy as np
 from .alignment import AlignmentError, align, validate_window
 from .playback import Window
 from .feedback import FeatureVector
-from .limit_stage import Admissible, LimitStage
+from .limit_stage import Admissible, LimitStage, normalised_onto
 from .policies.base import Policy, PolicyInputs
 from .segment import MotionState, integrate
 from .watchdog import Watchdog
@@ -79,7 +79,7 @@ def map_action(meaning: str, action: np.ndarray, lo: np.ndarray, hi: np.ndarray)
     """The next acceleration for a raw ``action`` of meaning ``normalised`` ([-1, 1] onto
     [lo, hi], clipped) or ``acceleration`` (clipped into [lo, hi]); elementwise, any shape."""
     if meaning == "normalised":
-        return lo + 0.5 * (np.clip(action, -1.0, 1.0) + 1.0) * (hi - lo)
+        return normalised_onto(action, lo, hi)
     return np.minimum(np.maximum(action, lo), hi)
 
 

@@ -51,6 +51,15 @@ from .segment import MotionState
 _MAX_ITER = 40
 
 
+
+def normalised_onto(action: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Map ``action`` (clipped into [-1, 1]) linearly onto [lo, hi], elementwise: -1 gives
+    ``lo`` and +1 gives ``hi`` exactly (the weighted form ``lo (1 - s) + hi s`` is exact at
+    both ends, where ``lo + s (hi - lo)`` can miss ``hi`` by one rounding), and no result
+    leaves [lo, hi]. NaN stays NaN."""
+    s = 0.5 * (np.clip(action, -1.0, 1.0) + 1.0)
+    return np.minimum(np.maximum(lo * (1.0 - s) + hi * s, lo), hi)
+
 class LimitStageError(ValueError):
     """The limits and period cannot be handled safely, or inputs are malformed."""
 
@@ -211,8 +220,7 @@ class LimitStage:
     def map_normalised(self, state: MotionState | tuple, action: np.ndarray) -> np.ndarray:
         """Map an action in [-1, 1] (clipped; non-finite -> braking) onto [lo, hi]."""
         r = self.evaluate(*state)
-        x = np.clip(np.asarray(action, float), -1.0, 1.0)
-        out = np.minimum(np.maximum(r.lo + 0.5 * (x + 1.0) * (r.hi - r.lo), r.lo), r.hi)
+        out = normalised_onto(np.asarray(action, float), r.lo, r.hi)
         bad = ~np.isfinite(out)
         if np.count_nonzero(bad):
             out = np.where(bad, self._braking_from(state, r), out)

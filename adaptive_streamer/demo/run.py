@@ -30,6 +30,7 @@ from ..sim.config import load_scenario
 from ..safety import CAUTIONS
 from .config import DemoConfig, DemoError, build_config
 from .faults import JUMP_JOINT, JUMP_OFFSET, InjectionRecord, PlannedFault, plan_faults
+from ..nodes.recording_ready import RecordingNotReady, RecordingWatch
 from .followed import REST_VELOCITY as FOLLOWED_REST
 from .options import FAULTS, OptionError, parse_injection
 from .process_faults import AdapterProcessFaults, ProcessFaultError
@@ -98,14 +99,16 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
     bar = None
     records = [InjectionRecord(f) for f in faults]
     status: dict[str, str] = {}
+    watch: RecordingWatch | None = None
     try:
         if args.record:
+            watch = RecordingWatch(monitor, "/recorder")
             _start_recorder(procs, args.record, workdir, logs)
         for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
             procs.start(NodeEntry(group[0], "", {}), params_file, group=group,
                         remaps=RELAY_REMAP if relay and name == "cell" else None,
                         stdout=(logs / f"{name}.log").open("w"), stderr=subprocess.STDOUT)
-        _bring_up_adapter(monitor, procs)
+        _bring_up_adapter(monitor, procs, watch)
         monitor.recording = True
         if not monitor.wait_for("following", lambda: monitor.last_mode() == "following",
                                 STARTUP_TIMEOUT):
@@ -172,13 +175,20 @@ def _start_recorder(procs: Processes, out: str, workdir: Path, logs: Path) -> Pa
     return bag
 
 
-def _bring_up_adapter(monitor, procs: Processes) -> None:
+def _bring_up_adapter(monitor, procs: Processes, watch: RecordingWatch | None) -> None:
+    """Configure the adapter, wait (with ``--record``: ``watch``) until the recorder records
+    every published topic, then activate it: motion starts there."""
     adapter = monitor.adapter
     if not monitor.wait_for("joint_states", lambda: adapter.wait(0.2) and _alive(procs),
                             STARTUP_TIMEOUT):
         raise DemoError("the adapter's lifecycle services did not appear")
     if not adapter.configure():
         raise DemoError("the adapter refused to configure (see its log)")
+    if watch is not None:
+        try:
+            watch.wait(STARTUP_TIMEOUT, alive=lambda: _alive(procs))
+        except RecordingNotReady as exc:
+            raise DemoError(str(exc)) from None
     deadline = time.monotonic() + STARTUP_TIMEOUT
     while not adapter.activate():
         if time.monotonic() > deadline or not _alive(procs):

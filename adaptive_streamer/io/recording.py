@@ -8,7 +8,8 @@ from typing import Any
 STACK_TOPICS = (
     "joint_states", "feedback", "edge_sensor/offset", "reference/window", "reference/path",
     "setpoints", "driver/position_command", "driver/velocity_command",
-    "driver/trajectory_command", "driver/plan", "driver/followed", "shadow/setpoints", "/diagnostics", "adapter/decisions",
+    "driver/trajectory_command", "driver/plan", "driver/followed", "shadow/setpoints",
+    "/diagnostics", "adapter/decisions",
     "stop", "robot_description", "/parameter_events",
 )
 

@@ -28,6 +28,9 @@ Parameters (read-only):
   adapter_node      the adapter whose parameters are stored ('' = none; default 'adapter')
   depth             subscription history depth (default 100)
 
+Diagnostics (``/diagnostics``, name: the node's full name, every 0.5 s and at once when a
+topic's first message arrives): the messages recorded per topic.
+
 Prints ``recorder: ready <bag>`` and ``recorder: recording <topic> <type>`` lines on stdout
 (read by `adaptive_streamer.replay.recorder.Recorder`).
 """
@@ -48,7 +51,7 @@ from adaptive_streamer.io import run_info
 from adaptive_streamer.io.bag_io import BagError, BagWriter, encode, typestore
 from adaptive_streamer.io.recording import STACK_TOPICS, installed_message_class, qos_to_rosbags
 
-from .common import declare, run_nodes
+from .common import OK, DiagnosticsReporter, declare, run_nodes
 
 STRING = "std_msgs/msg/String"
 
@@ -99,6 +102,10 @@ class RecorderNode(Node):
             self._param_client = AsyncParameterClient(self, self._adapter_fqn)
             self._events = self.create_subscription(ParameterEvent, "/parameter_events",
                                                     self._on_parameter_event, 10)
+        self._diag = DiagnosticsReporter(self, self.get_fully_qualified_name(), 0.5,
+                                         values=lambda: sorted(self.counts.items()))
+        self._diag.set(OK, "recording")
+        self._received = 0   # topics with a message, when the diagnostics were last sent
         self.create_timer(float(period), self._discover)
         self.create_timer(0.1, self._tick)
         self._discover()
@@ -145,6 +152,10 @@ class RecorderNode(Node):
     def _tick(self) -> None:
         if not self.writer.closed:
             self.writer.maybe_close_chunk(self.get_clock().now().nanoseconds)
+        received = sum(1 for c in self.counts.values() if c)
+        if received != self._received:   # a topic's first message: say so at once
+            self._received = received
+            self._diag.publish()
         if self._param_client is not None and self._info_text is None and not self._fetching:
             self._fetch_parameters()
 

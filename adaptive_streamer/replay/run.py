@@ -410,24 +410,33 @@ def _progress(enabled: bool, total: int | None) -> Any:
 
 def _run_exact(result: ReplayResult, runner: _Runner, records: list[Decision],
                rec_times: np.ndarray, bar: Any) -> None:
-    r0 = records[0]
+    inputs = runner.inputs
+    first = _first_complete(records, rec_times, inputs)
+    r0 = records[first - 1] if first > 0 else records[0]
     period = runner.setup.period
-    from_rest = (r0.mode == "approaching" and not np.any(r0.state.velocity)
+    from_rest = (first == 0 and r0.mode == "approaching" and not np.any(r0.state.velocity)
                  and not np.any(r0.state.acceleration))
     if from_rest:
         runner.begin(r0.time - period, r0.state.position, r0.time)
     else:
         runner.seed(r0)
-        result.notes.append(f"the recording starts after the adapter did (first record at "
-                            f"t = {r0.time:.3f} s, mode {r0.mode}): replay starts from that "
-                            "recorded decision")
-    inputs = runner.inputs
+        if first > 0:
+            result.notes.append(
+                f"skipped the first {first} recorded cycle(s) (up to t = {r0.time:.3f} s): "
+                "the bag does not hold the inputs they used (the recorder picked up joint_states, "
+                "reference/window or feedback later than the adapter's own topics); replay "
+                "starts from the recorded decision before the first complete cycle")
+        else:
+            result.notes.append(f"the recording starts after the adapter did (first record "
+                                f"at t = {r0.time:.3f} s, mode {r0.mode}): replay starts from "
+                                "that recorded decision")
     session = runner.session
     last_update = 0
     requested: list[float] = []
+    start = first if first > 0 else (0 if from_rest else 1)
     for i, r in enumerate(records):
-        if i == 0 and not from_rest:
-            continue  # the seed
+        if i < start:
+            continue  # before the seed, or the seed itself
         if r.time < session.cycle.t - 0.5 * period:
             continue  # a repeated record of an instant already decided
         runner.fill_to(r.time)
@@ -466,6 +475,19 @@ def _run_exact(result: ReplayResult, runner: _Runner, records: list[Decision],
     if result.approximate_cycles:
         result.notes.append(f"{result.approximate_cycles} cycle(s) used the nearest message "
                             "because the one recorded as used is not in the bag")
+
+
+def _first_complete(records: list[Decision], rec_times: np.ndarray,
+                    inputs: InputRebuilder) -> int:
+    """Index of the first record whose inputs the bag holds: the window and feedback it
+    names, and a joint state of every joint received before it. 0 when the first record
+    is complete, or when no record is (replay then goes on with the nearest messages)."""
+    for i, r in enumerate(records):
+        now_ns = int(rec_times[i])
+        _, missing = inputs.exact(now_ns, r.window_stamp, r.feedback_stamp)
+        if not missing and inputs.measured_at(now_ns) is not None:
+            return i
+    return 0
 
 
 def _faults(session: Any, now: float, inputs: Any) -> bool:
