@@ -24,6 +24,9 @@ from ..core.limits import JointLimits
 SOURCES = ("messages", "differences")   # where v and a come from (see the module docstring)
 REL_TOL = 1e-6
 REST_VELOCITY = 1e-4    # rad/s on every joint: at rest
+REST_MIN = 0.02         # s: a rest lasts at least this long (a repeated stream command is a
+                        # one-tick zero difference, not a rest)
+SPEED_WINDOW = 0.02     # s: speed by differences over this window (the differences source)
 
 
 class FollowedError(ValueError):
@@ -144,22 +147,46 @@ def check_followed(m: FollowedMotion, limits: JointLimits, t0: float = -math.inf
 @dataclass(frozen=True)
 class FollowedAfter:
     """What the followed motion did after an injection at ``at`` [s, ROS time]; the times
-    are seconds after it (NaN: did not happen in the run)."""
+    are seconds after it (NaN: did not happen in the run). A rest is every joint's |v| at
+    most `REST_VELOCITY` for at least `REST_MIN`; a speed is the largest |v| / velocity limit
+    over the joints (with the differences source, over `SPEED_WINDOW`: one tick's difference
+    swings with the stream's timing)."""
 
-    first_rest_after: float     # first tick at rest
+    first_rest_after: float     # start of the first rest
     rest_after: float           # start of the rest the run ended in
     peak_jerk: float            # largest |jerk| / jerk limit over the joints
     peak_jerk_joint: str
+    peak_speed: float           # largest |v| / velocity limit, one tick's (a step shows)
     ticks_over: int             # ticks over a limit
-    speed_at_injection: float   # largest |v| / velocity limit over the joints
+    speed_at_injection: float
     speed_at_resume: float      # the same at the stall's end
 
 
 def _speed(m: FollowedMotion, limits: JointLimits, t: float) -> float:
-    i = int(np.searchsorted(m.t, t))
-    if not math.isfinite(t) or i >= m.ticks or not np.isfinite(m.v[i]).all():
+    i = int(np.searchsorted(m.t, t)) if math.isfinite(t) else m.ticks
+    if i >= m.ticks:
         return math.nan
-    return float((np.abs(m.v[i]) / limits.velocity_max).max())
+    if m.source == SOURCES[0]:
+        v = m.v[i]
+    else:
+        k = int(np.searchsorted(m.t, m.t[i] - SPEED_WINDOW * (1 + 1e-9)))
+        if k >= i:
+            return math.nan
+        v = (m.p[i] - m.p[k]) / (m.t[i] - m.t[k])
+    return float((np.abs(v) / limits.velocity_max).max()) if np.isfinite(v).all() else math.nan
+
+
+def _rests(t: np.ndarray, still: np.ndarray) -> list[tuple[float, bool]]:
+    """The starts of the runs of ``still`` ticks at the stamps ``t`` that last at least
+    `REST_MIN` (to the first moving tick, or to the last tick), each with whether it lasts
+    to the end."""
+    out = []
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], still.astype(np.int8), [0]))))
+    for start, stop in zip(edges[::2], edges[1::2]):
+        to_end = bool(stop == t.size)
+        if (t[-1] if to_end else t[stop]) - t[start] >= REST_MIN:
+            out.append((float(t[start]), to_end))
+    return out
 
 
 def after_injection(m: FollowedMotion, limits: JointLimits, at: float,
@@ -168,15 +195,15 @@ def after_injection(m: FollowedMotion, limits: JointLimits, at: float,
     after = m.t >= at
     t = m.t[after]
     with np.errstate(invalid="ignore"):
-        rest = (np.abs(m.v[after]) <= REST_VELOCITY).all(axis=1)
-    first = float(t[np.argmax(rest)] - at) if rest.any() else math.nan
-    final = math.nan
-    if rest.size and rest[-1]:
-        moving = np.flatnonzero(~rest)
-        final = float(t[moving[-1] + 1] - at) if moving.size else float(t[0] - at)
+        still = (np.abs(m.v[after]) <= REST_VELOCITY).all(axis=1)
+    rests = _rests(t, still)
+    first = rests[0][0] - at if rests else math.nan
+    final = rests[-1][0] - at if rests and rests[-1][1] else math.nan
     jerk = np.where(np.isfinite(m.j[after]), np.abs(m.j[after]), 0.0) / limits.jerk_max
+    speed = np.where(np.isfinite(m.v[after]), np.abs(m.v[after]), 0.0) / limits.velocity_max
     k = int(np.unravel_index(np.argmax(jerk), jerk.shape)[1]) if jerk.size else 0
     over = np.logical_or.reduce([x[after] for x in _over(m, limits).values()])
     return FollowedAfter(first, final, float(jerk.max()) if jerk.size else math.nan,
-                         limits.names[k] if jerk.size else "", int(over.sum()),
+                         limits.names[k] if jerk.size else "",
+                         float(speed.max()) if speed.size else math.nan, int(over.sum()),
                          _speed(m, limits, at), _speed(m, limits, resumed))

@@ -14,7 +14,7 @@ FAULTS = {
     "slow_policy": "the policy is swapped for one that takes longer than a decision period "
                    "while the reference moves",
     "adapter_stall": "the adapter's process is suspended (SIGSTOP) for SECONDS, then resumed "
-                     "(SIGCONT); written adapter_stall:SECONDS@T",
+                     "(SIGCONT)",
     "adapter_crash": "the adapter's process is killed (SIGKILL)",
 }
 # faults written FAULT:SECONDS@T, with what SECONDS means
@@ -41,6 +41,12 @@ class Injection:
     fault: str
     at: float
     length: float = math.nan
+
+
+def describe(fault: str, length: float = math.nan) -> str:
+    """What ``fault`` does (`FAULTS`), with its length in place of SECONDS when given."""
+    text = FAULTS[fault]
+    return text.replace("SECONDS", f"{length:g} s") if math.isfinite(length) else text
 
 
 def _spec_help() -> str:
@@ -99,7 +105,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--report", default="demo_report", metavar="DIR",
                         help="folder for the plots and summary (default: demo_report)")
     parser.add_argument("--inject", action="append", default=[], metavar="FAULT@SECONDS",
-                        help="inject a fault: " + "; ".join(f"{k}: {v}" for k, v in FAULTS.items()))
+                        help="inject a fault: " + "; ".join(
+                            f"{k}: {v}" + (f" (written {k}:SECONDS@T)" if k in LENGTH_FAULTS
+                                           else "") for k, v in FAULTS.items()))
     parser.add_argument("--seed", type=int, default=None,
                         help="scenario seed (panel placement, sensor noise; default: the "
                              "scenario file's)")

@@ -32,7 +32,7 @@ from .config import DemoConfig, DemoError, build_config
 from .faults import JUMP_JOINT, JUMP_OFFSET, InjectionRecord, PlannedFault, plan_faults
 from ..nodes.recording_ready import RecordingNotReady, RecordingWatch
 from .followed import REST_VELOCITY as FOLLOWED_REST
-from .options import FAULTS, OptionError, parse_injection
+from .options import OptionError, describe, parse_injection
 from .process_faults import AdapterProcessFaults, ProcessFaultError
 
 CELL_NODES = ["reference_server", "sim_driver", "edge_sensor", "sensor_bridge"]
@@ -57,8 +57,8 @@ def run_demo(args: argparse.Namespace) -> int:
         faults = _plan(cfg, args, injections, params_file, workdir)
         for f in faults:
             name = f.fault + (f":{f.length:g}" if math.isfinite(f.length) else "")
-            print(f"fault to inject at +{f.at:g} s: {name} ({FAULTS[f.fault]}); expected "
-                  f"stop: {f.expected}{'; ' + f.note if f.note else ''}", flush=True)
+            print(f"fault to inject at +{f.at:g} s: {name} ({describe(f.fault, f.length)}); "
+                  f"expected stop: {f.expected}{'; ' + f.note if f.note else ''}", flush=True)
         return _run(cfg, args, faults, params_file, workdir)
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
@@ -269,7 +269,7 @@ def _inject(monitor, rec: InjectionRecord, mode: str, now: float,
         rec.note = f"the adapter was already {mode} (see the watchdog events)"
         print(f"\nnot injecting {f.fault}: {rec.note}", file=sys.stderr, flush=True)
         return
-    print(f"\ninjecting {f.fault} at +{f.at:g} s: {FAULTS[f.fault]}", flush=True)
+    print(f"\ninjecting {f.fault} at +{f.at:g} s: {describe(f.fault, f.length)}", flush=True)
     rec.time = now
     if f.fault in ("adapter_stall", "adapter_crash"):
         try:
