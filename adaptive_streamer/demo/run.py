@@ -1,8 +1,10 @@
 """``adaptive-streamer demo``: one dispensing pass of the simulated cell over real DDS.
 
-Processes: the cell (reference_server, sim_driver, edge_sensor, sensor_bridge) in one, the
-adapter in its own (so its stream timing is not shared with the simulator's), a recorder
-with ``--record``; this process observes and operates (`DemoMonitor`). Sequence: wait for
+Processes: the cell (reference_server, edge_sensor, sensor_bridge) in one, the simulated
+driver in its own (its 4 ms ticks are what ``driver/followed`` shows: sharing an executor
+with the cell, it ran a third to a half of them late, as catch-up ticks), the adapter in its
+own (so its stream timing is not shared with the simulator's), a recorder with
+``--record``; this process observes and operates (`DemoMonitor`). Sequence: wait for
 ``joint_states``, configure and activate the adapter (it approaches the start point), start
 the reference once the adapter follows, inject the requested faults, end when the pass is
 done and the arm at rest (or on ``--duration``, or after a watchdog stop, or once the
@@ -35,7 +37,7 @@ from .followed import REST_VELOCITY as FOLLOWED_REST
 from .options import OptionError, describe, parse_injection
 from .process_faults import AdapterProcessFaults, ProcessFaultError
 
-CELL_NODES = ["reference_server", "sim_driver", "edge_sensor", "sensor_bridge"]
+CELL_NODES = ["reference_server", "edge_sensor", "sensor_bridge"]
 STARTUP_TIMEOUT = 30.0
 SETTLE = 0.5       # seconds at rest after the pass before ending
 REST_VELOCITY = 1e-4
@@ -104,7 +106,8 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
         if args.record:
             watch = RecordingWatch(monitor, "/recorder")
             _start_recorder(procs, args.record, workdir, logs)
-        for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
+        for name, group in (("cell", CELL_NODES), ("driver", ["sim_driver"]),
+                            ("adapter", ["adapter"])):
             procs.start(NodeEntry(group[0], "", {}), params_file, group=group,
                         remaps=RELAY_REMAP if relay and name == "cell" else None,
                         stdout=(logs / f"{name}.log").open("w"), stderr=subprocess.STDOUT)
