@@ -9,10 +9,13 @@ limits file (read here with yaml); position, velocity and acceleration are conti
 every switch from one message to the next (within 1e-9 at the switch time); the last plan
 ends at rest, so the arm comes to rest after the crash and after the stall's latched stop.
 Then a replay of the bag regenerates the plan messages, and they agree with the recorded
-ones.
+ones. The demo runs the tracker policy: these checks do not depend on the policy, and one
+that reads no feedback cannot be stopped by a late sensor reading on a loaded machine
+before the fault is injected (the summary must say it was).
 """
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
@@ -71,10 +74,12 @@ def _bag(folder: Path) -> Path:
 @pytest.mark.parametrize("fault", ["adapter_crash", "adapter_stall:0.3"])
 def test_recorded_plans_are_smooth_within_limits_and_end_at_rest(tmp_path, fault):
     rec = tmp_path / "rec"
-    rc, out, _ = run_demo(tmp_path, "--output", "plan", "--record", str(rec), "--inject",
-                          f"{fault}@{INJECT_AT:g}", "--duration", f"{DURATION:g}",
-                          "--no-plots", timeout=180)
+    rc, out, report = run_demo(tmp_path, "--output", "plan", "--policy", "tracker",
+                               "--record", str(rec), "--inject", f"{fault}@{INJECT_AT:g}",
+                               "--duration", f"{DURATION:g}", "--no-plots", timeout=180)
     assert rc == 0, out[-4000:]
+    (injected,) = json.loads((report / "summary.json").read_text())["faults"]
+    assert injected["injected"], (injected, out[-3000:])
     lim = demo_limits()
     bag = _bag(rec)
     plans = read_plans(bag, lim["names"])
