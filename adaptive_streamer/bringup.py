@@ -31,6 +31,7 @@ from typing import Any
 
 import yaml
 
+from .core.text_files import yaml_problem
 from .share import expand
 
 NODE_KINDS = {
@@ -44,6 +45,7 @@ NODE_KINDS = {
 }
 STOP_TIMEOUT = 10.0
 PR_SET_PDEATHSIG = 1   # linux/prctl.h
+SIMULATED_HARDWARE = {"sim_driver", "edge_sensor"}   # nodes that stand in for real-time devices
 
 
 class BringupError(ValueError):
@@ -77,7 +79,7 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
-        raise BringupError(f"{path}: not valid YAML: {exc}") from None
+        raise BringupError(f"{path}: not valid YAML: {yaml_problem(exc)}") from None
     if not isinstance(data, dict) or not data:
         raise BringupError(f"{path}: expected a ROS 2 params file (node: ros__parameters: ...)")
     nodes = []
@@ -137,8 +139,15 @@ def end_with_parent() -> None:
 
 def run_child(kinds: list[str], args: list[str]) -> int:
     """Entry of a child process: run one node (or several in one executor) until SIGINT
-    (also sent when the parent ends, see `end_with_parent`)."""
+    (also sent when the parent ends, see `end_with_parent`). A process that holds simulated
+    hardware (`SIMULATED_HARDWARE`) asks for SCHED_FIFO priority first, as a real driver
+    runs real-time (common practice): unrelated load on the PC must not make the simulated
+    arm's joint_states late."""
     end_with_parent()
+    if SIMULATED_HARDWARE & set(kinds):
+        from .nodes.threads import MIDDLEWARE_PRIORITY, set_thread_priority
+        print("bringup child: " + set_thread_priority(
+            MIDDLEWARE_PRIORITY, "simulated hardware process"), flush=True)
     if len(kinds) == 1:
         module, _ = NODE_KINDS[kinds[0]]
         return int(importlib.import_module(module).main(args) or 0)

@@ -36,8 +36,6 @@ pytestmark = pytest.mark.ros
 EXPECTED = {"feedback_dropout": "feedback_stale", "reference_jump": "deviation",
             "joint_state_stall": "joint_states_stale", "nan_policy": "policy_fault",
             "slow_policy": "overruns"}
-STALE = ("joint_states_stale", "feedback_stale", "reference_stale")
-ATTEMPTS = 3
 INJECT_AT = 1.0   # the demo reference starts moving at about 0.9 s
 DURATION = 3.5
 
@@ -54,28 +52,14 @@ def tight_limits(tmp_path_factory):
     return path
 
 
-def _spoiled(fault: dict) -> bool:
-    """The run says nothing about the fault: the adapter had stopped before it, or an input
-    went stale on the loaded machine (a stop nobody injected)."""
-    return (not fault["injected"] or fault["stop_after"] < 0
-            or (fault["stop"] in STALE and fault["stop"] != fault["expected"]))
-
-
 @pytest.mark.parametrize("limits", ["demo", "tight"])
 @pytest.mark.parametrize("kind", sorted(EXPECTED))
 def test_each_fault_ends_in_its_expected_stop(tmp_path, tight_limits, kind, limits):
     extra = ["--limits", str(tight_limits)] if limits == "tight" else []
-    for attempt in range(ATTEMPTS):
-        rc, out, report = run_demo(tmp_path / f"run{attempt}", "--inject", f"{kind}@{INJECT_AT:g}",
-                                   "--duration", f"{DURATION:g}", "--no-plots", *extra,
-                                   timeout=120)
-        if rc == 2 and "did not reach the start of the reference" in out:
-            continue        # an input went stale before the pass began (loaded machine)
-        assert rc == 0, out[-4000:]
-        (fault,) = json.loads((report / "summary.json").read_text())["faults"]
-        if not _spoiled(fault):
-            break
+    rc, out, report = run_demo(tmp_path, "--inject", f"{kind}@{INJECT_AT:g}",
+                               "--duration", f"{DURATION:g}", "--no-plots", *extra, timeout=120)
     assert rc == 0, out[-4000:]
+    (fault,) = json.loads((report / "summary.json").read_text())["faults"]
     assert fault["fault"] == kind and fault["expected"] == EXPECTED[kind], fault
     assert fault["injected"], (fault, out[-3000:])
     assert fault["stop"] == EXPECTED[kind] and fault["as_expected"], (fault, out[-3000:])

@@ -169,6 +169,11 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     params["edge_sensor"]["seed"] = seed
     params["sim_driver"]["seed"] = seed
     _select_output(params, args.output)
+    lock = scenario.lock_on
+    if lock is not None and lock.feature in load_card(card).feedback_features:
+        ref.update({"start_condition": "lock_on", "lock_on.feature": lock.feature,
+                    "lock_on.tolerance": lock.tolerance, "lock_on.hold": lock.hold,
+                    "lock_on.timeout": lock.timeout, "lock_on.max_age": lock.max_age})
     return DemoConfig(params, card, label, limits_file, limits, seed,
                       played.duration, played, rate, period, args.output, notes)
 

@@ -120,6 +120,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
         ok, msg = monitor.trigger("reference_server/start")
         if not ok:
             raise DemoError(f"reference_server/start refused: {msg}")
+        _wait_lock_on(monitor, cfg, msg)
         t_start = monitor.get_clock().now().nanoseconds * 1e-9
         limit = cfg.reference_duration + 5.0 if args.duration is None else float(args.duration)
         print(f"dispensing pass: {cfg.reference_duration:.1f} s with policy {cfg.policy_label}",
@@ -197,6 +198,23 @@ def _bring_up_adapter(monitor, procs: Processes, watch: RecordingWatch | None) -
         if time.monotonic() > deadline or not _alive(procs):
             raise DemoError("the adapter refused to activate (no fresh joint_states?)")
         monitor.spin_for(0.5)
+
+
+def _wait_lock_on(monitor, cfg: DemoConfig, answer: str) -> None:
+    """With the scenario's lock-on, wait until the reference server has started the pass
+    (the correction settled) or says it could not (`DemoError` with its reason)."""
+    ref = cfg.params["reference_server"]
+    if ref.get("start_condition") != "lock_on":
+        return
+    print(f"lock-on: {answer}", flush=True)
+    state = lambda: monitor.reference_status().get("state", "")  # noqa: E731
+    timeout = float(ref["lock_on.timeout"]) + STARTUP_TIMEOUT
+    monitor.wait_for("lock-on", lambda: state() not in ("", "waiting", "locking"), timeout)
+    if state() != "running":
+        status = monitor.reference_status()
+        raise DemoError(f"the pass did not start: reference_server state '{state()}' "
+                        f"({status.get('lock_on', '')})")
+    print(f"locked on: {monitor.reference_status().get('lock_on', '')}", flush=True)
 
 
 def _alive(procs: Processes) -> bool:
