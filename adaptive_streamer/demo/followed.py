@@ -163,6 +163,7 @@ class FollowedAfter:
 
 
 def _speed(m: FollowedMotion, limits: JointLimits, t: float) -> float:
+    """The speed (see `FollowedAfter`) at the first tick at or after ``t`` (NaN: none)."""
     i = int(np.searchsorted(m.t, t)) if math.isfinite(t) else m.ticks
     if i >= m.ticks:
         return math.nan
