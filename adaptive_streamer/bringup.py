@@ -195,6 +195,7 @@ class Processes:
 
     def __init__(self) -> None:
         self.children: list[tuple[NodeEntry, subprocess.Popen]] = []
+        self._killed: set[int] = set()   # pids this object killed with SIGKILL
 
     def start(self, entry: NodeEntry, params_file: str, group: list[str] | None = None,
               remaps: dict[str, str] | None = None, **popen: Any) -> None:
@@ -205,18 +206,38 @@ class Processes:
                                 start_new_session=True, **popen)
         self.children.append((entry, proc))
 
+    def send_signal(self, kind: str, sig: int) -> int:
+        """Send ``sig`` to the running child whose entry is the node ``kind`` (SIGSTOP and
+        SIGCONT suspend and resume it, SIGKILL kills it) and return its pid. A child killed
+        with SIGKILL here is left out of `dead` and `stop`'s notes: it did not end on its
+        own. `BringupError` when no child of that node runs."""
+        for entry, proc in self.children:
+            if entry.kind == kind and proc.poll() is None:
+                proc.send_signal(sig)
+                if sig == signal.SIGKILL:
+                    self._killed.add(proc.pid)
+                return proc.pid
+        raise BringupError(f"no running process of node '{kind}'")
+
     def dead(self) -> list[tuple[NodeEntry, int]]:
-        """Children that exited, with their exit codes."""
-        return [(e, p.returncode) for e, p in self.children if p.poll() is not None]
+        """Children that exited on their own (not killed by `send_signal`), with their exit
+        codes."""
+        return [(e, p.returncode) for e, p in self.children
+                if p.pid not in self._killed and p.poll() is not None]
 
     def stop(self, timeout: float = STOP_TIMEOUT) -> list[str]:
-        """SIGINT every child (reverse start order), then SIGKILL after ``timeout``."""
+        """SIGINT every child (reverse start order; a suspended child is resumed so that it
+        can take it), then SIGKILL after ``timeout``."""
         for _, proc in reversed(self.children):
             if proc.poll() is None:
                 proc.send_signal(signal.SIGINT)
+                proc.send_signal(signal.SIGCONT)
         deadline = time.monotonic() + timeout
         notes = []
         for entry, proc in reversed(self.children):
+            if proc.pid in self._killed:
+                proc.wait()
+                continue
             try:
                 proc.wait(max(0.1, deadline - time.monotonic()))
             except subprocess.TimeoutExpired:

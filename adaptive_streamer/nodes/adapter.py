@@ -294,7 +294,8 @@ class AdapterNode(LifecycleNode):
             now, self._joints, session.limits, js[0] if js else None, js[2] if js else None,
             js[3] if js else None, wd.joint_states_timeout,
             self._latest_inputs.window_received, wd.reference_timeout,
-            float(self._param("activation_velocity")))
+            float(self._param("activation_velocity")), session.cycle.policy.needs_feedback,
+            self._latest_inputs.feedback_received, wd.feedback_timeout)
         if not check.ok:
             self.get_logger().error(f"activate refused: {check.refusal}")
             return TransitionCallbackReturn.FAILURE
