@@ -5,7 +5,7 @@ Checked: the first holding segment, late decisions replaced by braking and count
 overruns trip, input faults (following error with the command latency, stale inputs, a
 window ending early), reset rules, the setpoint guard trigger (a corrupt segment injected
 into the plan: the only way to reach it, the plan is within the limits by construction),
-the shadow plan, limit_scale changes. Committed segments are checked with test/oracle_lp.py
+the shadow plan, limit_scale changes, re-timing after a setpoint that left late. Committed segments are checked with test/oracle_lp.py
 (exact constant-jerk extrema).
 """
 from __future__ import annotations
@@ -252,3 +252,33 @@ def test_joints_measured_at_different_times_are_each_compared_at_their_own_time(
     assert emu.s.input_faults(now, apart, False) == []
     oldest = dataclasses.replace(apart, joint_stamp=float(stamps.min()))
     assert [k for k, _ in emu.s.input_faults(now, oldest, False)] == ["following_error"]
+
+
+def test_a_setpoint_that_left_late_re_times_the_plan_instead_of_jumping():
+    s = session()
+    s.set_stream_timing(RATE, 0.01)
+    emu = Emulator(s)
+    emu.run(2.0)
+    assert s.mode == "following"
+    tick = 1.0 / RATE
+    # the previous setpoint left on time: after 0.3 s idle the stream skips ahead
+    t = emu.clock.time_of(emu.i)
+    s.sample(t, 100.0)
+    s.sent(100.0002)
+    sp, reason = s.sample(t + 0.3, 100.3)
+    assert reason is None and s.stream_lag == 0.0 and s.retimes == 0
+    assert s.late_decisions > 0   # the decisions it missed were braked in their place
+    # the next setpoint left 0.3 s late (a stall between sampling and sending it): 1 ms
+    # later the stream time is 0.304 s on, but the plan advances two ticks (1 ms + 10 ms
+    # jitter, in whole ticks), stamped with the stream time
+    t = t + 0.3 + tick
+    s.sample(t, 100.304)
+    s.sent(100.604)
+    nxt = s.commanded_at(t + 2 * tick)
+    sp, reason = s.sample(t + 0.3, 100.605)
+    assert reason is None and s.retimes == 1
+    assert s.stream_lag == pytest.approx(0.3 - 2 * tick, abs=1e-9)
+    np.testing.assert_allclose(sp.position, nxt.position, atol=1e-12)
+    np.testing.assert_allclose(sp.velocity, nxt.velocity, atol=1e-12)
+    # commanded_at answers in stream time from now on
+    np.testing.assert_allclose(s.commanded_at(t + 0.3).position, sp.position, atol=1e-12)

@@ -45,7 +45,7 @@ from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, se
 from adaptive_streamer.core.policies import load_policy
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
-from adaptive_streamer.core.stream import StreamClock
+from adaptive_streamer.core.stream import StreamClock, StreamTimeline
 from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 
 from . import common
@@ -64,6 +64,8 @@ class AdapterNode(LifecycleNode):
 
     def __init__(self, name: str = "adapter", **kwargs: Any) -> None:
         super().__init__(name, **kwargs)
+        self._timeline: StreamTimeline | None = None
+        self._anchor_timeline()
         self._declare_parameters()
         self._priority_note = set_thread_priority(
             int(self.get_parameter("decision_priority").value))
@@ -139,6 +141,10 @@ class AdapterNode(LifecycleNode):
           "distance [rad] at which the policy takes over")
         d(self, "approach_bandwidth", DEFAULTS["approach_bandwidth"],
           "approach tracking bandwidth [rad/s]")
+        d(self, "stream_jitter", DEFAULTS["stream_jitter"],
+          "timing jitter of a sent setpoint [s]: a setpoint advances along the plan at most "
+          "the real time since the previous one left plus this, else the plan is re-timed "
+          "(read at configure)")
         d(self, "plan_lead", DEFAULTS["plan_lead"],
           "with a plan output: send each decision's plan at least this long before its "
           "instant, else drop it and follow the sent braking continuation [s]")
@@ -287,7 +293,8 @@ class AdapterNode(LifecycleNode):
 
     def on_activate(self, state: LifecycleState) -> TransitionCallbackReturn:
         session = self.session
-        now = now_sec(self)
+        self._anchor_timeline()
+        now = self._now()
         js = self._joint_state()
         wd = session.watchdog.config
         check = check_activation(
@@ -306,7 +313,7 @@ class AdapterNode(LifecycleNode):
         self._decide_gc = self.create_guard_condition(self._on_decide,
                                                       callback_group=self._decide_group)
         ticks = self._ticks
-        self._stream_timer = StreamThread(lambda: now_sec(self),
+        self._stream_timer = StreamThread(self._now,
                                           lambda: ticks.time_of(ticks.last_index + 1),
                                           self._on_stream,
                                           priority=int(self._param("stream_priority")))
@@ -400,7 +407,7 @@ class AdapterNode(LifecycleNode):
         """Store the raw message (merged with the others when a decision needs it)."""
         merger = self._js_merger
         if merger is not None:
-            merger.add(data, now_sec(self))
+            merger.add(data, self._now())
 
     def _joint_state(self) -> tuple[float, np.ndarray, np.ndarray, np.ndarray | None] | None:
         """Merged joint state: (oldest received, stamp per joint, positions, velocities) in
@@ -415,12 +422,12 @@ class AdapterNode(LifecycleNode):
     def _on_window(self, msg: JointTrajectory) -> None:
         latest = self._latest_inputs
         if latest is not None:
-            latest.set_window(now_sec(self), msg)
+            latest.set_window(self._now(), msg)
 
     def _on_feedback(self, msg: JointState) -> None:
         latest = self._latest_inputs
         if latest is not None:
-            latest.set_feedback(now_sec(self), msg)
+            latest.set_feedback(self._now(), msg)
 
     def _on_stop_topic(self, msg: Bool) -> None:
         session = self.session
@@ -429,7 +436,7 @@ class AdapterNode(LifecycleNode):
         if msg.data:
             if session.watchdog.stop_requested is None:
                 session.watchdog.stop_requested = "stop topic is true"
-                session.stop(now_sec(self), "external_stop", "stop requested on the stop topic")
+                session.stop(self._now(), "external_stop", "stop requested on the stop topic")
         else:
             session.watchdog.stop_requested = None
 
@@ -453,7 +460,7 @@ class AdapterNode(LifecycleNode):
             i = clock.due(now)
             if i is None:
                 last = clock.time_of(clock.last_index)
-                if now < last - 1.0 / clock.rate:  # ROS time went back (sim time reset)
+                if now < last - 1.0 / clock.rate:  # sim time went back (a bag restarted)
                     self.get_logger().error(
                         f"ROS time went back to {now:.3f} s, before the last setpoint "
                         f"({last:.3f} s): no setpoint until the clock passes it again (the "
@@ -461,7 +468,8 @@ class AdapterNode(LifecycleNode):
                 return
             t = clock.time_of(i)
             self._timings.lateness.append(now - t)
-            sp, reason = session.sample(t)
+            sim = self._timeline is None  # the arm lives on sim time then
+            sp, reason = session.sample(t, None if sim else time.monotonic())
             if reason is None:
                 fill_setpoint(self._setpoint_msg, t, sp)
                 self._setpoint_pub.publish(self._setpoint_msg)
@@ -470,6 +478,8 @@ class AdapterNode(LifecycleNode):
                     if out.kind == "trajectory" and ahead is None:
                         ahead = session.commanded_at(t + out.dt) or sp
                     out.publish(sp, ahead or sp)
+                if not sim:
+                    session.sent(time.monotonic())
             else:
                 self._counters["guard_failures"] += 1
             shadow = session.sample_shadow(t)
@@ -488,7 +498,7 @@ class AdapterNode(LifecycleNode):
             return
         try:
             t0 = time.perf_counter()
-            now = now_sec(self)
+            now = self._now()
             d = session.decide(now, self._inputs(now), self._now)
             if d is not None:
                 self._publish_plan(session)
@@ -500,12 +510,24 @@ class AdapterNode(LifecycleNode):
             self._counters["decision_errors"] += 1
             self.get_logger().error(f"decision failed: {exc}", throttle_duration_sec=1.0)
             if self.session is not None:
-                self.session.stop(now_sec(self), "policy_fault", f"decision failed: {exc}")
+                self.session.stop(self._now(), "policy_fault", f"decision failed: {exc}")
 
     def _now(self) -> float:
-        """The node's ROS time [s] (the session's clock for the plan deadline; not named
-        ``_clock``, which is rclpy's own attribute)."""
-        return now_sec(self)
+        """The adapter's time [s]: ROS time as of the last anchor (node start, activation)
+        carried forward on the monotonic clock, or the ROS clock itself under sim time.
+        Input receive times, decisions and setpoint stamps are all on it, so a step of the
+        system clock neither stops nor bunches the stream (not named ``_clock``, which is
+        rclpy's own attribute)."""
+        if self._timeline is None:
+            return now_sec(self)
+        return self._timeline.at(time.monotonic_ns())
+
+    def _anchor_timeline(self) -> None:
+        """Re-read ROS time as the anchor of the adapter's time (see `_now`); no anchor
+        under sim time."""
+        clock = self.get_clock()
+        self._timeline = (None if clock.ros_time_is_active else
+                          StreamTimeline(clock.now().nanoseconds, time.monotonic_ns()))
 
     def _publish_plan(self, session: StreamingSession) -> None:
         """Send the plan of the last commit on every plan output."""
@@ -550,7 +572,7 @@ class AdapterNode(LifecycleNode):
         if session is None or session.cycle.state is None:
             response.success, response.message = False, "not streaming (activate first)"
             return response
-        session.stop(now_sec(self), "external_stop", "stop requested via ~/stop")
+        session.stop(self._now(), "external_stop", "stop requested via ~/stop")
         response.success, response.message = True, "controlled stop started"
         return response
 
@@ -559,7 +581,7 @@ class AdapterNode(LifecycleNode):
         if session is None or session.cycle.state is None:
             response.success, response.message = False, "not streaming (activate first)"
             return response
-        now = now_sec(self)
+        now = self._now()
         ok, msg = session.reset_on(now, self._inputs(now))
         if ok:
             self._diag.set(OK, "reset: approaching the reference")

@@ -6,8 +6,11 @@ skipped), while one thread that sleeps to absolute tick times keeps the stream o
 independent of the executor, which runs subscriptions, services and the decision. The tick
 callback only samples the committed plan and publishes.
 
-Time: ticks are due at ROS time ``t0 + i / rate`` (sim time under ``use_sim_time``, then
-the thread polls the clock in short sleeps, so a paused clock pauses the stream).
+Time: ticks are due at ``t0 + i / rate`` on the adapter's time, ROS time carried forward
+on the monotonic clock (`adaptive_streamer.core.stream.StreamTimeline`), so the thread
+sleeps and wakes on the monotonic clock and a step of the system clock changes nothing.
+Under ``use_sim_time`` it is the sim clock, polled in short sleeps, so a paused clock
+pauses the stream.
 """
 from __future__ import annotations
 
@@ -22,7 +25,7 @@ class StreamThread:
     """Calls ``tick(now)`` whenever a tick may be due; stops on `stop`.
 
     Args:
-        now: returns the node's clock in seconds (ROS time).
+        now: returns the adapter's time in seconds (see the module docstring).
         next_due: returns the nominal time of the next tick to publish.
         tick: the tick callback (publishes at most one setpoint).
         max_sleep: longest single sleep [s] (bounds the reaction to a stop or sim clock).
