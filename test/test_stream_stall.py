@@ -1,11 +1,13 @@
-"""Stalls of the adapter's stream thread mid-motion, over real rclpy/DDS, checked from
-outside.
+"""Stalls of and errors in the adapter's stream thread mid-motion, over real rclpy/DDS,
+checked from outside.
 
 The adapter runs in this process so that only its stream thread is blocked (the executor,
 the middleware and the probe run on): once in its loop between two ticks (the thread idle,
 as when the machine does not schedule it) and once inside the setpoint publish (the stall
 falls between sampling a setpoint and sending it, so that command leaves late). Each for
-50 ms and 300 ms while the arm follows the moving reference.
+50 ms and 300 ms while the arm follows the moving reference. Then an exception is raised
+once at each of the two places: the stream must brake to rest (a ``stream_fault`` stop),
+never fall silent.
 
 An independent subscriber receives every setpoint with the middleware's source timestamp
 (when the adapter handed it to DDS) and checks each command against the previous one sent:
@@ -72,12 +74,12 @@ class SourceStamps(Node):
 
 
 class Injector:
-    """Blocks the adapter's stream thread once at a `Place` (test
+    """Blocks the adapter's stream thread once, or raises once, at a `Place` (test
     instrumentation: wraps the thread's clock and the setpoint publisher's publish of the
     adapter under test)."""
 
     def __init__(self, adapter: Any) -> None:
-        self._pending: tuple[Place, float] | None = None
+        self._pending: tuple[Place, float | None] | None = None
         self.done = threading.Event()
         thread = adapter._stream_timer
         next_due, pub = thread._next_due, adapter._setpoint_pub
@@ -97,7 +99,11 @@ class Injector:
         """Block the thread at ``where`` once for ``seconds``; returns when it is over."""
         self._inject(where, seconds)
 
-    def _inject(self, where: Place, seconds: float) -> None:
+    def fail(self, where: Place) -> None:
+        """Raise a RuntimeError once at ``where``; returns once it was raised."""
+        self._inject(where, None)
+
+    def _inject(self, where: Place, seconds: float | None) -> None:
         self.done.clear()
         self._pending = (where, seconds)
         assert self.done.wait(5.0), "the injection did not happen"
@@ -108,6 +114,8 @@ class Injector:
             return
         self._pending = None
         self.done.set()
+        if pending[1] is None:
+            raise RuntimeError(f"injected failure {where.value}")
         time.sleep(pending[1])
 
 
@@ -115,7 +123,11 @@ class Injector:
 def cell(tmp_path_factory):
     rclpy.init()
     folder = tmp_path_factory.mktemp("stream_stall")
-    c = h.Cell(folder, h.write_card(folder, "tracker", "tracker"), adapter_in_process=True)
+    # late decisions are what a stall makes, and the 300 ms ones latch the overruns stop
+    # either way: 6 in 20 (not 3) so that a machine loaded by other work does not stop the
+    # arm before the stall
+    c = h.Cell(folder, h.write_card(folder, "tracker", "tracker"), adapter_in_process=True,
+               watchdog__max_overruns=6, watchdog__overrun_window=20)
     listener = SourceStamps()
     ex = SingleThreadedExecutor()
     ex.add_node(listener)
@@ -202,3 +214,19 @@ def test_a_stalled_stream_never_jumps_and_resumes_or_stops(cell, where, seconds)
           f"{diag['late_decisions']}, largest send gap {gaps.max() * 1e3:.1f} ms, "
           f"{time.monotonic() - resumed:.1f} s observed")
 
+
+@pytest.mark.parametrize("where", [Place.LOOP, Place.PUBLISH])
+def test_an_error_in_the_stream_thread_brakes_to_rest(cell, where):
+    moving(cell)
+    t0 = cell.now()
+    cell.injector.fail(where)
+    vals = cell.wait_diag(lambda v: v.get("trip") == "stream_fault", "a stream_fault stop")[3]
+    assert "injected failure" in vals["trip_message"], vals["trip_message"]
+    cell.wait_rest(hold=0.2)
+    stop = cell.samples_since(t0 - 0.2)
+    check = h.check_stream(stop)
+    assert check.ok, check.describe()
+    assert max(np.abs(s.velocity).max() for s in stop[:10]) > 0.01, "was not moving"
+    assert h.at_rest(stop[-5:])
+    print(f"error {where.value}: braked to rest in {(stop[-1].stamp - t0):.2f} s, "
+          f"{check.describe()}")

@@ -191,8 +191,15 @@ class StreamingSession:
     def stop(self, now: float, kind: str, message: str) -> Trip:
         """Latch a stop (external request, guard failure...); the cycle brakes to rest."""
         trip = self.watchdog.fire(kind, now, message)
-        self.cycle.request_stop()
+        self.request_stop()
         return trip
+
+    def request_stop(self) -> None:
+        """Brake to rest from the next decision on (no trip latched: deactivation, process
+        shutdown). Takes the lock the stream's braking commits take, so it never lands
+        between a late segment's commit and its mode change."""
+        with self._lock:
+            self.cycle.request_stop()
 
     def new_trips(self) -> list[Trip]:
         """Watchdog events since the previous call (for logging and reactions)."""
@@ -443,7 +450,7 @@ class StreamingSession:
             reason = self.watchdog.overrun(True)
             if reason is not None and not self.watchdog.tripped:
                 self.watchdog.fire("overruns", now, reason)
-                self.cycle.request_stop()
+                self.cycle.request_stop()   # the lock is held
 
     def _step_shadow(self, main: Decision, inputs: SessionInputs) -> None:
         if self.shadow_policy is None:

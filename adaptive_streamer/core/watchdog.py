@@ -24,6 +24,8 @@ overruns            too many late decisions in a window       ``max_overruns`` i
                                                               ``overrun_window`` decisions
 external_stop       ``~/stop`` service or the stop topic      (always on)
 setpoint_guard      an outgoing setpoint failed the guard     (always on)
+stream_fault        an error in the stream thread's loop or   (always on)
+                    tick, or in the process's executor
 ==================  ========================================  ===========================
 """
 from __future__ import annotations
@@ -36,7 +38,8 @@ from typing import Any
 import numpy as np
 
 KINDS = ("deviation", "following_error", "joint_states_stale", "feedback_stale",
-         "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard")
+         "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard",
+         "stream_fault")
 PERSISTENT = ("following_error", "joint_states_stale", "feedback_stale", "reference_stale",
               "external_stop")
 

@@ -22,15 +22,18 @@ segment). Callbacks only store the latest message; conversions are in
 from __future__ import annotations
 
 import os
+import sys
 import threading
 import time
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 from lifecycle_msgs.msg import State as StateMsg
 from rcl_interfaces.msg import SetParametersResult
 from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
+from rclpy.executors import Executor
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
+from rclpy.node import Node
 from rclpy.parameter import Parameter
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension, String
@@ -315,7 +318,7 @@ class AdapterNode(LifecycleNode):
         ticks = self._ticks
         self._stream_timer = StreamThread(self._now,
                                           lambda: ticks.time_of(ticks.last_index + 1),
-                                          self._on_stream,
+                                          self._on_stream, self._on_stream_error,
                                           priority=int(self._param("stream_priority")))
         self._stream_timer.start()
         self._status = "active"
@@ -324,11 +327,15 @@ class AdapterNode(LifecycleNode):
         self._publish_plan(session)  # the managed publishers are active from here on
         return result
 
-    def _stop_and_wait(self) -> bool:
+    def _stop_and_wait(self, spin: Callable[[], None] | None = None) -> bool:
+        """Start the controlled stop and wait until the stream has sent the plan's rest
+        (at most ``stop_timeout``). Decides here meanwhile (this may run in the executor
+        thread); ``spin`` runs the process's executor too, so that nodes sharing it (a
+        driver in the same process) go on while the arm brakes."""
         session = self.session
         if session is None or self._stream_timer is None:
             return True
-        session.cycle.request_stop()
+        session.request_stop()
         deadline = time.monotonic() + float(self._param("stop_timeout"))
         rest_from: float | None = None  # the plan is at rest from this time on
         while time.monotonic() < deadline:
@@ -338,14 +345,18 @@ class AdapterNode(LifecycleNode):
                 ticks = self._ticks  # the plan runs ahead: wait until the stream got there
                 if ticks is None or ticks.time_of(ticks.last_index) >= rest_from - 1e-9:
                     return True
-            self._on_decide()  # this may run in the executor thread: decide here meanwhile
-            time.sleep(0.005)
+            self._on_decide()
+            if spin is None:
+                time.sleep(0.005)
+            else:
+                spin()
         self.get_logger().error("stop_timeout: deactivating before the plan reached rest")
         return False
 
-    def stop_at_rest(self) -> None:
-        """Bring the arm to rest, then stop the stream (process shutdown)."""
-        self._stop_and_wait()
+    def stop_at_rest(self, spin: Callable[[], None] | None = None) -> None:
+        """Bring the arm to rest, then stop the stream (process shutdown; ``spin`` as in
+        `_stop_and_wait`)."""
+        self._stop_and_wait(spin)
         self._teardown_timers()
 
     def destroy_node(self) -> None:
@@ -489,8 +500,20 @@ class AdapterNode(LifecycleNode):
             if self._decide_gc is not None and session.decision_due(t):
                 self._decide_gc.trigger()
         except Exception as exc:  # never let an exception escape the stream callback
-            self._counters["stream_errors"] += 1
-            self.get_logger().error(f"stream tick failed: {exc}", throttle_duration_sec=1.0)
+            self._on_stream_error(exc)
+
+    def _on_stream_error(self, exc: Exception) -> None:
+        """An error in the stream tick or the stream thread's loop: count and log it, and
+        start the controlled stop (the thread goes on ticking, so the braking reaches the
+        driver)."""
+        self._counters["stream_errors"] += 1
+        self.get_logger().error(f"stream tick failed: {type(exc).__name__}: {exc}",
+                                throttle_duration_sec=1.0)
+        session = self.session
+        if session is not None and session.cycle.state is not None \
+                and not session.watchdog.tripped:
+            session.stop(self._now(), "stream_fault",
+                         f"stream tick failed: {type(exc).__name__}: {exc}")
 
     def _on_decide(self) -> None:
         session = self.session
@@ -610,14 +633,25 @@ class AdapterNode(LifecycleNode):
         return vals
 
 
-def main(args: list[str] | None = None) -> int:
-    """Run the adapter node until Ctrl-C (the arm is brought to rest first)."""
-    prepare_process()
+def bring_to_rest(nodes: list[Node], executor: Executor) -> None:
+    """Bring every adapter among ``nodes`` to rest with the controlled stop while
+    ``executor`` keeps running the other nodes (`common.run_nodes`' ``before_shutdown``).
+    An error of another node's callback while spinning is logged and the stop goes on."""
+    def spin() -> None:
+        try:
+            executor.spin_once(timeout_sec=0.005)
+        except Exception as exc:
+            print(f"error while bringing the arm to rest: {exc}", file=sys.stderr)
+            time.sleep(0.005)
+    for node in nodes:
+        if isinstance(node, AdapterNode):
+            node.stop_at_rest(spin)
 
-    def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
-        for node in nodes:
-            if isinstance(node, AdapterNode):
-                node.stop_at_rest()
+
+def main(args: list[str] | None = None) -> int:
+    """Run the adapter node until Ctrl-C or SIGTERM, or until an error ends the process;
+    every way out brings the arm to rest first."""
+    prepare_process()
     return common.run_nodes([AdapterNode], args, executor=make_executor,
                             before_shutdown=bring_to_rest)
 
