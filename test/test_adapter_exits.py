@@ -1,4 +1,5 @@
-"""Ways out of a moving adapter's process, checked from the driver's side over real DDS.
+"""Ways out of a moving adapter's process, checked from the driver's side over real DDS
+(and, first, ``~/stop`` on an adapter that is configured but not active: nothing moved).
 
 The adapter runs in its own process, as in a cell (`adapter_harness.Cell`); the probe, a
 subscriber on ``setpoints``, records what the driver gets. SIGINT (Ctrl-C), SIGTERM, and an
@@ -18,6 +19,7 @@ import numpy as np
 import pytest
 import rclpy
 import yaml
+from lifecycle_msgs.msg import Transition
 from std_msgs.msg import Empty
 
 import adapter_harness as h
@@ -75,6 +77,14 @@ def check_braked_to_rest(cell: h.Cell, since: float) -> str:
     moving = [s for s in stop if np.abs(s.velocity).max() > 1e-5]
     return (f"braked to rest in {(moving[-1].stamp - stop[0].stamp):.2f} s of stamps; "
             f"{check.describe()}")
+
+
+def test_stop_on_an_inactive_adapter_says_nothing_was_moving(cell):
+    cell.wait_cell()
+    assert cell.transition(Transition.TRANSITION_CONFIGURE)
+    res = cell.trigger("/adapter/stop")
+    assert res.success and res.message.startswith("nothing was moving"), res.message
+    assert "not active" in res.message
 
 
 @pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM])

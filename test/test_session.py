@@ -282,3 +282,15 @@ def test_a_setpoint_that_left_late_re_times_the_plan_instead_of_jumping():
     np.testing.assert_allclose(sp.velocity, nxt.velocity, atol=1e-12)
     # commanded_at answers in stream time from now on
     np.testing.assert_allclose(s.commanded_at(t + 0.3).position, sp.position, atol=1e-12)
+
+
+def test_new_trips_after_more_events_than_are_kept():
+    s = session()
+    kept = s.watchdog.events.maxlen
+    s.watchdog.fire("external_stop", 1.0, "first")
+    assert [t.message for t in s.new_trips()] == ["first"] and s.new_trips() == []
+    for i in range(kept + 3):
+        s.watchdog.fire("external_stop", 2.0, f"n{i}")
+    fresh = s.new_trips()
+    assert len(fresh) == kept and fresh[-1].message == f"n{kept + 2}"
+    assert s.new_trips() == []

@@ -202,10 +202,12 @@ class StreamingSession:
             self.cycle.request_stop()
 
     def new_trips(self) -> list[Trip]:
-        """Watchdog events since the previous call (for logging and reactions)."""
-        events = self.watchdog.events[self._trips_seen:]
-        self._trips_seen = len(self.watchdog.events)
-        return events
+        """Watchdog events since the previous call (for logging and reactions; the latest
+        `watchdog.EVENTS_KEPT` of them when more came)."""
+        kept = self.watchdog.events
+        fresh = min(self.watchdog.total_events - self._trips_seen, len(kept))
+        self._trips_seen = self.watchdog.total_events
+        return list(kept)[len(kept) - fresh:] if fresh > 0 else []
 
     def reset(self, persisting: list[tuple[str, str]]) -> tuple[bool, str]:
         """Reset the latched stop unless a cause persists or the arm is still braking."""

@@ -40,6 +40,7 @@ import numpy as np
 KINDS = ("deviation", "following_error", "joint_states_stale", "feedback_stale",
          "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard",
          "stream_fault")
+EVENTS_KEPT = 1000   # watchdog events kept (the latest); `Watchdog.total_events` counts all
 PERSISTENT = ("following_error", "joint_states_stale", "feedback_stale", "reference_stale",
               "external_stop")
 
@@ -104,7 +105,8 @@ class Watchdog:
         self.config = config
         self.joint_names = joint_names
         self.trip: Trip | None = None
-        self.events: list[Trip] = []
+        self.events: deque[Trip] = deque(maxlen=EVENTS_KEPT)   # the latest, oldest first
+        self.total_events = 0
         self.counts = {k: 0 for k in KINDS}
         self.stop_requested: str | None = None
         self._overruns: deque[bool] = deque(maxlen=int(config.overrun_window))
@@ -123,6 +125,7 @@ class Watchdog:
         event = Trip(kind, time, message, values)
         self.counts[kind] += 1
         self.events.append(event)
+        self.total_events += 1
         if self.trip is None:
             self.trip = event
         return event

@@ -591,12 +591,16 @@ class AdapterNode(LifecycleNode):
 
     # ------------------------------------------------------------------ services
     def _on_stop(self, request: Trigger.Request, response: Trigger.Response) -> Trigger.Response:
+        """Latch the external stop; the answer says whether anything was moving."""
         session = self.session
-        if session is None or session.cycle.state is None:
-            response.success, response.message = False, "not streaming (activate first)"
+        response.success = True
+        if session is None or self._stream_timer is None:
+            response.message = f"nothing was moving: the adapter is not active ({self._status})"
             return response
+        moving = not (session.mode == "stopped" and session.cycle.at_rest)
         session.stop(self._now(), "external_stop", "stop requested via ~/stop")
-        response.success, response.message = True, "controlled stop started"
+        response.message = ("controlled stop started" if moving else
+                            "nothing was moving: the plan is at rest (stop latched)")
         return response
 
     def _on_reset(self, request: Trigger.Request, response: Trigger.Response) -> Trigger.Response:
