@@ -282,6 +282,23 @@ def test_a_setpoint_that_left_late_re_times_the_plan_instead_of_jumping():
     np.testing.assert_allclose(sp.velocity, nxt.velocity, atol=1e-12)
     # commanded_at answers in stream time from now on
     np.testing.assert_allclose(s.commanded_at(t + 0.3).position, sp.position, atol=1e-12)
+    # stopped at rest, a reset drops the lag: the held position is the same at stream time
+    s.stop(t + 0.3, "external_stop", "test")
+    clock, u = 100.605, t + 0.3
+    while not (s.mode == "stopped" and s.cycle.at_rest):
+        u, clock = u + tick, clock + tick
+        s.sample(u, clock)
+        s.sent(clock)
+        if s.decision_due(u):
+            s.decide(u, emu.inputs(u))
+    held = s.commanded_at(u)
+    ok, msg = s.reset([])
+    assert ok, msg
+    assert s.stream_lag == 0.0
+    np.testing.assert_array_equal(s.commanded_at(u).position, held.position)
+    sp, reason = s.sample(u + tick, clock + tick)
+    assert reason is None and s.retimes == 1
+    np.testing.assert_array_equal(sp.position, held.position)
 
 
 def test_new_trips_after_more_events_than_are_kept():

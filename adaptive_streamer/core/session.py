@@ -33,7 +33,7 @@ late instead (the stream stalled between sampling and sending it), the plan is r
 the stream's time runs ahead of the plan time by the stall (`stream_lag`), the next setpoint
 is the plan's next tick after the one sent, and it is stamped with the stream time. The
 plan then follows the reference that much later; more lag than the reference window holds
-ends in the reference-stale controlled stop. With the plan-ahead output the driver follows
+ends in the reference-stale controlled stop, and a reset at rest drops the lag. With the plan-ahead output the driver follows
 the sent plan on its own, so the plan is never re-timed.
 
 Thread-safety: `sample` (stream thread) and `decide` (decision thread) share a lock held
@@ -215,8 +215,21 @@ class StreamingSession:
             return False, "reset refused: still braking to rest"
         ok, msg = self.watchdog.reset(persisting)
         if ok:
+            with self._lock:
+                self._drop_lag()
             self.cycle.reset()
         return ok, msg
+
+    def _drop_lag(self) -> None:
+        """At rest, move the plan up to the stream's time: the re-timing lag goes (the arm
+        holds one position, the same at either time), so the approach after a reset aligns
+        the reference at the stream's time again (the lock is held)."""
+        if self._lag == 0.0 or not self.cycle.at_rest:
+            return
+        self.plan.shift(self._lag)
+        self.shadow_plan.shift(self._lag)
+        self.cycle.t += self._lag
+        self._lag = 0.0
 
     def reset_on(self, now: float, inputs: SessionInputs) -> tuple[bool, str]:
         """Reset (the adapter's ``~/reset``) unless an input fault persists on the current

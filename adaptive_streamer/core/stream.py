@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import math
 from collections import deque
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -51,6 +51,11 @@ class CommandPlan:
     def clear(self) -> None:
         """Forget every segment."""
         self._segments.clear()
+
+    def shift(self, dt: float) -> None:
+        """Move every kept segment ``dt`` seconds later."""
+        self._segments = deque((replace(s, start=s.start + dt) for s in self._segments),
+                               maxlen=self._segments.maxlen)
 
     def commit(self, segment: Segment) -> None:
         """Append a segment; it must start where the previous one ends."""
