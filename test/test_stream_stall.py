@@ -124,10 +124,11 @@ def cell(tmp_path_factory):
     rclpy.init()
     folder = tmp_path_factory.mktemp("stream_stall")
     # late decisions are what a stall makes, and the 300 ms ones latch the overruns stop
-    # either way: 6 in 20 (not 3) so that a machine loaded by other work does not stop the
-    # arm before the stall
+    # either way: 6 in 20 (not 3), and windows may be 0.5 s old (not 0.25), so that a machine
+    # loaded by other work does not stop the arm before a stall or in a re-approach
     c = h.Cell(folder, h.write_card(folder, "tracker", "tracker"), adapter_in_process=True,
-               watchdog__max_overruns=6, watchdog__overrun_window=20)
+               watchdog__max_overruns=6, watchdog__overrun_window=20,
+               watchdog__reference_timeout=0.5)
     listener = SourceStamps()
     ex = SingleThreadedExecutor()
     ex.add_node(listener)
