@@ -23,7 +23,7 @@ from adaptive_streamer.core.policies import policy_for_kind
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import Segment, StreamClock
-from adaptive_streamer.core.watchdog import WatchdogConfig
+from adaptive_streamer.core.watchdog import EVENTS_KEPT, WatchdogConfig
 from test_cycle import (LIMITS, N, P0, T, T0, TOL, approach_policy, reference, running)
 
 RATE = 250.0
@@ -303,7 +303,7 @@ def test_a_setpoint_that_left_late_re_times_the_plan_instead_of_jumping():
 
 def test_new_trips_after_more_events_than_are_kept():
     s = session()
-    kept = s.watchdog.events.maxlen
+    kept = EVENTS_KEPT
     s.watchdog.fire("external_stop", 1.0, "first")
     assert [t.message for t in s.new_trips()] == ["first"] and s.new_trips() == []
     for i in range(kept + 3):

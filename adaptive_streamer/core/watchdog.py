@@ -105,7 +105,7 @@ class Watchdog:
         self.config = config
         self.joint_names = joint_names
         self.trip: Trip | None = None
-        self.events: deque[Trip] = deque(maxlen=EVENTS_KEPT)   # the latest, oldest first
+        self.events: list[Trip] = []   # the latest EVENTS_KEPT, oldest first
         self.total_events = 0
         self.counts = {k: 0 for k in KINDS}
         self.stop_requested: str | None = None
@@ -125,6 +125,8 @@ class Watchdog:
         event = Trip(kind, time, message, values)
         self.counts[kind] += 1
         self.events.append(event)
+        if len(self.events) > EVENTS_KEPT:
+            del self.events[0]
         self.total_events += 1
         if self.trip is None:
             self.trip = event
