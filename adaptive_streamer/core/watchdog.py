@@ -24,6 +24,8 @@ overruns            too many late decisions in a window       ``max_overruns`` i
                                                               ``overrun_window`` decisions
 external_stop       ``~/stop`` service or the stop topic      (always on)
 setpoint_guard      an outgoing setpoint failed the guard     (always on)
+stream_fault        an error in the stream thread's loop or   (always on)
+                    tick, or in the process's executor
 ==================  ========================================  ===========================
 """
 from __future__ import annotations
@@ -36,7 +38,9 @@ from typing import Any
 import numpy as np
 
 KINDS = ("deviation", "following_error", "joint_states_stale", "feedback_stale",
-         "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard")
+         "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard",
+         "stream_fault")
+EVENTS_KEPT = 1000   # watchdog events kept (the latest); `Watchdog.total_events` counts all
 PERSISTENT = ("following_error", "joint_states_stale", "feedback_stale", "reference_stale",
               "external_stop")
 
@@ -107,7 +111,8 @@ class Watchdog:
         self.config = config
         self.joint_names = joint_names
         self.trip: Trip | None = None
-        self.events: list[Trip] = []
+        self.events: list[Trip] = []   # the latest EVENTS_KEPT, oldest first
+        self.total_events = 0
         self.counts = {k: 0 for k in KINDS}
         self.stop_requested: str | None = None
         self._overruns: deque[bool] = deque(maxlen=int(config.overrun_window))
@@ -126,6 +131,9 @@ class Watchdog:
         event = Trip(kind, time, message, values)
         self.counts[kind] += 1
         self.events.append(event)
+        if len(self.events) > EVENTS_KEPT:
+            del self.events[0]
+        self.total_events += 1
         if self.trip is None:
             self.trip = event
         return event
