@@ -12,6 +12,7 @@ Everything here reads bytes; there is no DDS. ``rosbags`` is the fallback decode
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any, Sequence
 
@@ -154,8 +155,20 @@ class JointStateReader:
 
 def header_stamps(raw: Sequence[bytes]) -> np.ndarray:
     """``header.stamp`` in seconds of every message (NaN where unreadable)."""
-    out = np.full(len(raw), np.nan)
-    for i, r in enumerate(raw):
+    heads = b"".join(r[:12] for r in raw)
+    if len(heads) == 12 * len(raw):  # every message has the 12 bytes: gather at once
+        rows = np.frombuffer(heads, np.uint8).reshape(len(raw), 12)
+        sec = rows[:, 4:8].copy().view("<i4")[:, 0].astype(np.int64)
+        nsec = rows[:, 8:12].copy().view("<u4")[:, 0].astype(np.int64)
+        out = sec.astype(float) + nsec.astype(float) * 1e-9  # as stamp_seconds
+        little = (rows[:, 0] == 0) & (rows[:, 1] == 1)
+        todo = np.flatnonzero(~little).tolist()
+    else:
+        out = np.full(len(raw), np.nan)
+        todo = range(len(raw))
+    for i in todo:
+        out[i] = math.nan
+        r = raw[i]
         try:
             out[i] = stamp_seconds(*fast_cdr.header_stamp(r))
         except CdrError:
