@@ -306,13 +306,17 @@ _MESSAGE_OP, _CHUNK_OP = 0x05, 0x06
 
 
 def _mcap_files(target: Path) -> list[Path]:
-    """The MCAP files of a bag folder (its metadata's file list) or the file itself."""
+    """The MCAP files of a bag folder (its metadata's file list; none when one is outside the
+    folder) or the file itself."""
     if not target.is_dir():
         return [target]
     import yaml
     meta = yaml.safe_load((target / "metadata.yaml").read_text())
     info = meta.get("rosbag2_bagfile_information", {}) if isinstance(meta, dict) else {}
-    return [target / rel for rel in info.get("relative_file_paths", [])]
+    files = [target / str(rel) for rel in info.get("relative_file_paths", [])]
+    inside = target.resolve()
+    # only files inside the bag folder (else rosbags' reader decides)
+    return files if all(inside in f.resolve().parents for f in files) else []
 
 
 def _decompressor(name: str) -> Callable[[bytes], bytes] | None:
@@ -338,6 +342,8 @@ def _chunk_messages(files: list[Path], topics: set[str]
     a file is not of that kind (no summary or chunk index, a compression other than none,
     zstd or lz4, messages outside the chunks): the caller reads it record by record."""
     from mcap.reader import make_reader
+    if not files:
+        return None
     out: dict[str, tuple[list[int], list[bytes]]] = {t: ([], []) for t in topics}
     for path in files:
         try:
