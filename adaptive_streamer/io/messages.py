@@ -79,7 +79,7 @@ class WindowReader:
     def first_points(self, raw: Sequence[bytes]) -> FirstPoints | None:
         """Stamps and first points of all of ``raw`` at once, bit for bit as `read` gives
         them, when every message has the first one's layout and that layout is read
-        fast; else None (read them one by one). Raises as `read` for the first."""
+        fast; else None (read them one by one). Raises as `read` does for the first one."""
         if not raw:
             return None
         self.read(raw[0])  # the first of a layout is checked against the node's conversion

@@ -29,9 +29,9 @@ import csv
 import importlib
 import math
 import os
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from contextlib import contextmanager
 from typing import Any, Iterator, Sequence
 
 from .compare import compare

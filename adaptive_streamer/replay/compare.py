@@ -128,7 +128,10 @@ def recorded_stream(result: ReplayResult) -> Stream | None:
     if data is None:
         return None
     reader = WindowReader(result.setup.joints)
-    batch = reader.first_points(data.raw)
+    try:
+        batch = reader.first_points(data.raw)
+    except ValueError:  # the first message cannot be read: read them one by one
+        batch = None
     if batch is not None:
         return Stream(tick_times(batch.sec, batch.nanosec), batch.positions,
                       batch.velocities, batch.accelerations)
