@@ -53,6 +53,7 @@ setup(
         "mcap>=1.1",
         "matplotlib>=3.7",
         "tqdm>=4.60",
+        "dask[distributed]>=2024.1",
         "gymnasium>=1.0",
     ],
     extras_require={

@@ -13,6 +13,7 @@ from pathlib import Path
 
 HERE = Path(__file__).parent
 ORDER = ["limit_stage_speed", "policy_speed", "cycle_speed", "plan_speed", "replay_speed",
+         "batch_speed",
          "stream_timing",
          "limit_stage_acceptance", "env_speed"]
 

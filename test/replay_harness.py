@@ -236,10 +236,12 @@ def late_decisions(bag: Path, period: float = 0.05) -> int:
 
 
 def copy_bag(src: Path, dst: Path, drop: tuple[str, ...] = (),
-             change: dict | None = None, custom_data: bool = True) -> Path:
+             change: dict | None = None, custom_data: bool = True,
+             end_ns: int | None = None) -> Path:
     """A copy of the bag ``src`` at ``dst`` without the topics ``drop``; ``change`` maps a
     topic to ``(msgtype, msgdef, digest, function of (receive time, raw bytes))`` giving
-    the new bytes (None drops the message); ``custom_data`` keeps the metadata entries."""
+    the new bytes (None drops the message); ``custom_data`` keeps the metadata entries;
+    ``end_ns`` drops the messages received after it (a closed bag of a shorter run)."""
     from adaptive_streamer.io.bag_io import BagWriter, read_bag
 
     bag = read_bag(src)
@@ -252,7 +254,7 @@ def copy_bag(src: Path, dst: Path, drop: tuple[str, ...] = (),
             name, (data.msgtype, None, None, lambda t, raw: raw))
         conn = writer.add_topic(name, msgtype, data.qos, msgdef, digest)
         events += [(int(t), name, conn, fn(int(t), raw)) for t, raw in zip(data.times, data.raw)]
-    events = [e for e in events if e[3] is not None]
+    events = [e for e in events if e[3] is not None and (end_ns is None or e[0] <= end_ns)]
     events.sort(key=lambda e: (e[0], e[1]))
     for t, _, conn, raw in events:
         writer.write(conn, t, raw)

@@ -219,3 +219,43 @@ def test_timeline_carries_ros_time_on_the_monotonic_clock():
     assert tl.ns(5_000_000_000) == 1_796_000_000_123_456_789
     assert tl.ns(5_004_000_000) == 1_796_000_000_127_456_789   # 4 ms later
     assert tl.at(5_004_000_000) == pytest.approx(1_796_000_000.127456789, abs=3e-7)
+
+
+def test_check_all_equals_checking_one_by_one():
+    """`SetpointGuard.check_all` (vectorised) reports the failures `check` reports when
+    called setpoint by setpoint: the same rows and reasons, for random streams with
+    non-finite values, jumps, limit violations, repeated times and moving starts."""
+    rng = np.random.default_rng(17)
+    lim = JointLimits(["a", "b", "c"], [-1] * 3, [1] * 3, [1] * 3, [5] * 3, [50] * 3)
+    seen = 0
+    for trial in range(120):
+        m = 150
+        t = 1000 + np.arange(m) * 0.004
+        p = np.cumsum(rng.normal(0, 0.001, (m, 3)), axis=0)
+        v, a = rng.normal(0, 0.002, (m, 3)), rng.normal(0, 0.01, (m, 3))
+        if trial % 3 == 0:
+            v[0] = a[0] = 0
+        for _ in range(int(rng.integers(0, 6))):
+            i, kind = int(rng.integers(1, m)), int(rng.integers(0, 6))
+            if kind == 0:
+                p[i, rng.integers(3)] = np.nan
+            elif kind == 1:
+                p[i:, 0] += 0.05
+            elif kind == 2:
+                v[i, 1] = 2
+            elif kind == 3:
+                t[i] = t[i - 1]
+            elif kind == 4:
+                a[i] += 1
+            else:
+                p[i, 2] = 1.5
+        one, all_ = SetpointGuard(lim), SetpointGuard(lim)
+        if trial % 2:
+            rest = MotionState(np.zeros(3), np.zeros(3), np.zeros(3))
+            one.check(999.996, rest)
+            all_.check(999.996, rest)
+        expected = [(i, r) for i in range(m)
+                    if (r := one.check(float(t[i]), MotionState(p[i], v[i], a[i])))][:20]
+        assert all_.check_all(t, p, v, a, 20) == expected
+        seen += len(expected)
+    assert seen > 300

@@ -63,6 +63,56 @@ class SetpointGuard:
             self.failures += 1
         return reason
 
+    def check_all(self, t: np.ndarray, p: np.ndarray, v: np.ndarray, a: np.ndarray,
+                  limit: int) -> list[tuple[int, str]]:
+        """`check` of the setpoints ``(t[i], p[i], v[i], a[i])`` in order, vectorised over
+        the rows that pass: (row, reason) of the failures, up to ``limit`` of them (the rows
+        after the last one reported are then left unchecked)."""
+        failures: list[tuple[int, str]] = []
+        start = 0
+        while start < len(t) and len(failures) < limit:
+            bad = self._first_bad(t[start:], p[start:], v[start:], a[start:])
+            if bad is None:
+                self._prev = (float(t[-1]), MotionState(p[-1], v[-1], a[-1]))
+                break
+            i = start + bad
+            if bad > 0:
+                self._prev = (float(t[i - 1]), MotionState(p[i - 1], v[i - 1], a[i - 1]))
+            reason = self.check(float(t[i]), MotionState(p[i], v[i], a[i]))
+            if reason is not None:
+                failures.append((i, reason))
+            start = i + 1
+        return failures
+
+    def _first_bad(self, t: np.ndarray, p: np.ndarray, v: np.ndarray,
+                   a: np.ndarray) -> int | None:
+        """Row of the first setpoint `_reason` refuses (stamps alone measure the elapsed time)
+        when every row before it passed."""
+        bad = ~(np.isfinite(p).all(axis=1) & np.isfinite(v).all(axis=1)
+                & np.isfinite(a).all(axis=1))
+        bad |= ((p < self._pmin) | (p > self._pmax) | (np.abs(v) > self._v)
+                | (np.abs(a) > self._a)).any(axis=1)
+        if self._prev is None:
+            bad[0] |= bool(np.any((np.abs(v[0]) > self._v * 1e-9)
+                                  | (np.abs(a[0]) > self._a * 1e-9)))
+            first, t0, p0, v0, a0 = 1, t[:-1], p[:-1], v[:-1], a[:-1]
+        else:
+            tp, (pp, vp, ap) = self._prev
+            first = 0
+            t0 = np.concatenate(([tp], t[:-1]))
+            p0, v0, a0 = (np.vstack((x[None], y[:-1])) for x, y in ((pp, p), (vp, v), (ap, a)))
+        if len(t) > first:
+            tn = t[first:]
+            dt = tn - t0
+            span = (dt + 2.0 * np.spacing(np.abs(tn)))[:, None]
+            slack = 1e-9
+            bad[first:] |= (dt <= 0.0) | (
+                (np.abs(p[first:] - p0) > self._v * span + slack)
+                | (np.abs(v[first:] - v0) > self._a * span + slack)
+                | (np.abs(a[first:] - a0) > self._j * span + slack)).any(axis=1)
+        hits = np.flatnonzero(bad)
+        return int(hits[0]) if len(hits) else None
+
     def _reason(self, t: float, sp: MotionState, since_sent: float | None) -> str | None:
         p, v, a = sp
         names = self.limits.names

@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import functools
 import math
+import struct
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable, Sequence
@@ -276,9 +277,16 @@ def read_bag(path: str | Path,
                     out[c.topic] = TopicData(c.topic, c.msgtype, qos, np.empty(0, np.int64), [],
                                              c.msgdef.data, c.digest)
             times: dict[str, list[int]] = {t: [] for t in out}
-            for conn, t, raw in reader.messages(connections=conns):
-                times[conn.topic].append(t)
-                out[conn.topic].raw.append(bytes(raw))
+            fast = (_chunk_messages(_mcap_files(target), set(out))
+                    if str(reader.compression_mode).lower() in ("", "none")
+                    else None)
+            if fast is not None:
+                for name, (t_list, raw_list) in fast.items():
+                    times[name], out[name].raw = t_list, raw_list
+            else:
+                for conn, t, raw in reader.messages(connections=conns):
+                    times[conn.topic].append(t)
+                    out[conn.topic].raw.append(bytes(raw))
             custom = dict(_custom_data(reader) or {})
     except BagError:
         raise
@@ -287,6 +295,104 @@ def read_bag(path: str | Path,
     for name, data in out.items():
         data.times = _sorted(data, times[name])
     return Bag(p, out, all_topics, custom)
+
+
+_RECORD = struct.Struct("<BQ")             # MCAP record: opcode, content length
+_MESSAGE = struct.Struct("<HIQQ")          # Message: channel id, sequence, log and publish time
+_CHUNK = struct.Struct("<QQQI")            # Chunk: start and end time, size, CRC
+_U32 = struct.Struct("<I")
+_U64 = struct.Struct("<Q")
+_MESSAGE_OP, _CHUNK_OP = 0x05, 0x06
+
+
+def _mcap_files(target: Path) -> list[Path]:
+    """The MCAP files of a bag folder (its metadata's file list; none when one is outside the
+    folder) or the file itself."""
+    if not target.is_dir():
+        return [target]
+    import yaml
+    meta = yaml.safe_load((target / "metadata.yaml").read_text())
+    info = meta.get("rosbag2_bagfile_information", {}) if isinstance(meta, dict) else {}
+    files = [target / str(rel) for rel in info.get("relative_file_paths", [])]
+    inside = target.resolve()
+    # only files inside the bag folder (else rosbags' reader decides)
+    return files if all(inside in f.resolve().parents for f in files) else []
+
+
+def _decompressor(name: str) -> Callable[[bytes], bytes] | None:
+    if name == "":
+        return bytes
+    if name == "zstd":
+        try:
+            from compression import zstd  # type: ignore[import-not-found]
+        except ImportError:
+            from backports import zstd  # type: ignore[no-redef]
+        return zstd.decompress
+    if name == "lz4":
+        import lz4.frame
+        return lz4.frame.decompress
+    return None
+
+
+def _chunk_messages(files: list[Path], topics: set[str]
+                    ) -> dict[str, tuple[list[int], list[bytes]]] | None:
+    """Receive times and bytes of the messages of ``topics``, read chunk by chunk from
+    MCAP files with a summary (MCAP format: chunk index from the summary, then the Message
+    records of each chunk in file order; the ``mcap`` package reads the summary). None when
+    a file is not of that kind (no summary or chunk index, a compression other than none,
+    zstd or lz4, messages outside the chunks): the caller reads it record by record."""
+    from mcap.reader import make_reader
+    if not files:
+        return None
+    out: dict[str, tuple[list[int], list[bytes]]] = {t: ([], []) for t in topics}
+    for path in files:
+        try:
+            with path.open("rb") as f:
+                summary = make_reader(f).get_summary()
+                if summary is None or not summary.chunk_indexes or summary.statistics is None:
+                    return None
+                channels = {cid: out[ch.topic] for cid, ch in summary.channels.items()
+                            if ch.topic in out}
+                seen = 0
+                for index in sorted(summary.chunk_indexes, key=lambda c: c.chunk_start_offset):
+                    f.seek(index.chunk_start_offset)
+                    record = f.read(index.chunk_length)
+                    op, _ = _RECORD.unpack_from(record, 0)
+                    if op != _CHUNK_OP:
+                        return None
+                    pos = 9 + _CHUNK.size
+                    (n,) = _U32.unpack_from(record, pos)
+                    decompress = _decompressor(record[pos + 4:pos + 4 + n].decode())
+                    pos += 4 + n
+                    (size,) = _U64.unpack_from(record, pos)
+                    if decompress is None:
+                        return None
+                    data = decompress(record[pos + 8:pos + 8 + size])
+                    seen += _messages_of(data, channels)
+                if seen != summary.statistics.message_count:
+                    return None
+        except (OSError, struct.error, ValueError, KeyError):
+            return None
+    return out
+
+
+def _messages_of(data: bytes, channels: dict[int, tuple[list[int], list[bytes]]]) -> int:
+    """Append the Message records of chunk ``data`` to their channel's lists; the count of
+    Message records (all channels)."""
+    pos, end, count = 0, len(data), 0
+    unpack_record, unpack_message = _RECORD.unpack_from, _MESSAGE.unpack_from
+    head = 9 + _MESSAGE.size
+    while pos < end:
+        op, length = unpack_record(data, pos)
+        if op == _MESSAGE_OP:
+            count += 1
+            cid, _, log_time, _ = unpack_message(data, pos + 9)
+            target = channels.get(cid)
+            if target is not None:
+                target[0].append(log_time)
+                target[1].append(data[pos + head:pos + 9 + length])
+        pos += 9 + length
+    return count
 
 
 def _custom_data(reader: Any) -> dict[str, str] | None:

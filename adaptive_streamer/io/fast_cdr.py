@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import struct
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
 import numpy as np
 
@@ -208,6 +208,27 @@ class Layouts:
         lay = Layout(raw, parse(raw, self.msgtype))
         self._by_size[len(raw)] = lay
         return lay
+
+
+def stacked(raw: Sequence[bytes], lay: Layout) -> np.ndarray | None:
+    """The messages ``raw`` as the rows of one uint8 array when every one has the layout
+    ``lay`` (`Layout.matches` for all of them at once), else None."""
+    if not raw or any(len(r) != lay.size for r in raw):
+        return None
+    rows = np.frombuffer(b"".join(raw), np.uint8).reshape(len(raw), lay.size)
+    return rows if bool((rows[:, lay.structure] == lay.signature).all()) else None
+
+
+def float_rows(rows: np.ndarray) -> np.ndarray:
+    """`float_view` of every row of a `stacked` array."""
+    count = (rows.shape[1] - 4) // 8
+    return np.ascontiguousarray(rows[:, 4:4 + 8 * count]).view("<f8")
+
+
+def int_rows(rows: np.ndarray, signed: bool) -> np.ndarray:
+    """`int_view` of every row of a `stacked` array."""
+    count = rows.shape[1] // 4
+    return np.ascontiguousarray(rows[:, :4 * count]).view("<i4" if signed else "<u4")
 
 
 def float_view(raw: bytes) -> np.ndarray:

@@ -12,6 +12,8 @@ Everything here reads bytes; there is no DDS. ``rosbags`` is the fallback decode
 """
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
@@ -40,6 +42,17 @@ class MessageError(ValueError):
 _GENERIC = "generic"  # plan marker: this layout is always read with rosbags
 
 
+@dataclass(frozen=True)
+class FirstPoints:
+    """The header stamps and first points of a run of trajectory messages (rows)."""
+
+    sec: np.ndarray
+    nanosec: np.ndarray
+    positions: np.ndarray      # (messages, joints)
+    velocities: np.ndarray
+    accelerations: np.ndarray
+
+
 class WindowReader:
     """Reads window messages into `Window` for ``joints`` (columns in that order)."""
 
@@ -62,6 +75,25 @@ class WindowReader:
         if lay.plan is _GENERIC:
             return self._generic(raw)
         return self._fast(lay, raw)
+
+    def first_points(self, raw: Sequence[bytes]) -> FirstPoints | None:
+        """Stamps and first points of all of ``raw`` at once, bit for bit as `read` gives
+        them, when every message has the first one's layout and that layout is read
+        fast; else None (read them one by one). Raises as `read` does for the first one."""
+        if not raw:
+            return None
+        self.read(raw[0])  # the first of a layout is checked against the node's conversion
+        try:
+            lay = self._layouts.layout(raw[0])
+        except CdrError:
+            return None
+        rows = fast_cdr.stacked(raw, lay) if lay.plan not in (None, _GENERIC) else None
+        if rows is None:
+            return None
+        f = fast_cdr.float_rows(rows)
+        P, V, A = (f[:, i[0]] for i in lay.plan)
+        return FirstPoints(fast_cdr.int_rows(rows, True)[:, 1].astype(np.int64),
+                           fast_cdr.int_rows(rows, False)[:, 2].astype(np.int64), P, V, A)
 
     def _generic(self, raw: bytes) -> Window:
         try:
@@ -123,8 +155,20 @@ class JointStateReader:
 
 def header_stamps(raw: Sequence[bytes]) -> np.ndarray:
     """``header.stamp`` in seconds of every message (NaN where unreadable)."""
-    out = np.full(len(raw), np.nan)
-    for i, r in enumerate(raw):
+    heads = b"".join(r[:12] for r in raw)
+    if len(heads) == 12 * len(raw):  # every message has the 12 bytes: gather at once
+        rows = np.frombuffer(heads, np.uint8).reshape(len(raw), 12)
+        sec = rows[:, 4:8].copy().view("<i4")[:, 0].astype(np.int64)
+        nsec = rows[:, 8:12].copy().view("<u4")[:, 0].astype(np.int64)
+        out = sec.astype(float) + nsec.astype(float) * 1e-9  # as stamp_seconds
+        little = (rows[:, 0] == 0) & (rows[:, 1] == 1)
+        todo = np.flatnonzero(~little).tolist()
+    else:
+        out = np.full(len(raw), np.nan)
+        todo = range(len(raw))
+    for i in todo:
+        out[i] = math.nan
+        r = raw[i]
         try:
             out[i] = stamp_seconds(*fast_cdr.header_stamp(r))
         except CdrError:

@@ -1,12 +1,14 @@
 """``adaptive-streamer replay``: offline replay, batch tables and live republishing.
 
     adaptive-streamer replay BAG [--params FILE] [--policy CARD|KIND] [--out DIR]
-    adaptive-streamer replay BAG... --policy A --policy B [--jobs N] [--out DIR]   # batch
+    adaptive-streamer replay BAG... --policy A --policy B [--jobs N | --scheduler ADDRESS]
+                             [--out DIR]                                        # batch
     adaptive-streamer replay BAG --live [--rate 1.0] [--clock-rate HZ] [--topics T ...]
 
 One bag and at most one policy: replay, compare with the recording and write the output
 bag, ``summary.json``, ``report.md`` and plots into ``--out``. Several bags or policies:
-a batch on all cores, ranked in ``batch.csv`` / ``batch.md``. ``--scenario FILE`` adds the
+a batch on Dask (a local cluster of one worker process per core, or the cluster of
+``--scheduler``), ranked in ``batch.csv`` / ``batch.md``. ``--scenario FILE`` adds the
 demo's lateral error (the real panel drawn from ``--seed`` or given with
 ``--panel-offset-mm``/``--panel-angle-deg``) and ranks by it. ``--live`` republishes the
 bag's inputs with ``/clock`` instead of replaying offline.
@@ -40,8 +42,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="namespace of the adapter's topics (default: from the bag)")
     parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     parser.add_argument("--quiet", action="store_true", help="no progress bar")
-    parser.add_argument("--jobs", type=int, metavar="N", help="batch worker processes "
-                        "(default: all cores)")
+    parser.add_argument("--jobs", type=int, metavar="N", help="batch: worker processes of "
+                        "the local Dask cluster (default: all cores; 1: in this process)")
+    parser.add_argument("--scheduler", metavar="ADDRESS",
+                        help="batch: address of a running Dask scheduler (tcp://host:8786) "
+                             "instead of a local cluster; bags and cards must be at the same "
+                             "paths on its workers")
     parser.add_argument("--scenario", metavar="FILE",
                         help="demo scenario YAML: add the lateral error as the task metric")
     parser.add_argument("--seed", type=int, help="scenario run seed (placement)")
@@ -64,6 +70,7 @@ def _hook_options(args: argparse.Namespace) -> dict[str, object]:
 
 def run(args: argparse.Namespace) -> int:
     """Run the replay command; returns the exit code."""
+    from .batch import BatchError
     from .live import LiveReplayError
     from .run import ReplayError
     from ..io.run_info import RunInfoError
@@ -72,10 +79,10 @@ def run(args: argparse.Namespace) -> int:
         if args.live:
             return _live(args)
         policies = args.policy or [None]
-        if len(args.bags) > 1 or len(policies) > 1:
+        if len(args.bags) > 1 or len(policies) > 1 or args.scheduler:
             return _batch(args, policies)
         return _single(args, policies[0])
-    except (BagError, ReplayError, SetupError, RunInfoError, LiveReplayError,
+    except (BagError, ReplayError, SetupError, RunInfoError, LiveReplayError, BatchError,
             FileExistsError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2
@@ -119,12 +126,16 @@ def _batch(args: argparse.Namespace, policies: list[str | None]) -> int:
     from .batch import run_batch
     hook = SCENARIO_HOOK if args.scenario else None
     rows = run_batch(args.bags, policies, args.out, args.params, args.namespace, hook,
-                     _hook_options(args) if hook else None, args.jobs)
+                     _hook_options(args) if hook else None, args.jobs, args.scheduler,
+                     progress=not args.quiet)
     metric = "lateral_rms_mm" if hook else "rms_deviation"
     for r in rows:
-        err = f"  error: {r['error']}" if r.get("error") else ""
+        if r.get("error"):
+            print(f"{r['rank']:3d}  failed: bag {r['bag']} with policy {r['policy']}: "
+                  f"{r['error']}")
+            continue
         print(f"{r['rank']:3d}  {Path(r['bag']).name}  {r['policy']}  "
-              f"{metric} {r.get(metric, float('nan')):.4g}  trips {r.get('trips', '-')}{err}")
+              f"{metric} {r.get(metric, float('nan')):.4g}  trips {r.get('trips', '-')}")
     print(f"written: {Path(args.out) / 'batch.csv'}, {Path(args.out) / 'batch.md'}")
     return 0
 

@@ -6,7 +6,8 @@
   largest absolute difference of any field.
 * Committed accelerations ``u`` and planned positions: per-joint maximum and RMS difference.
 * Setpoints: the replayed stream is sampled from the committed segments at the recorded
-  setpoint times (else every stream period) with the core `CommandPlan`, and checked with
+  setpoint times (else every stream period) with the core `CommandPlan`'s formula
+  (vectorised over the ticks), and checked with
   the core `SetpointGuard` (a failure is a ``setpoint_guard`` trip the live stream would
   have had); per-joint max/RMS position difference to the recorded ``setpoints``.
 * Limit usage: per joint, peak |velocity|, |acceleration| and |jerk| as fractions of the
@@ -30,7 +31,7 @@ from adaptive_streamer.core import decision_record
 from adaptive_streamer.core.cycle import Decision
 from adaptive_streamer.core.guard import SetpointGuard
 from adaptive_streamer.core.limits import JointLimits
-from adaptive_streamer.core.stream import CommandPlan, Segment
+from adaptive_streamer.core.stream import Segment, StreamError
 
 from ..io.bag_io import decode
 from ..io.fast_cdr import header_stamp
@@ -85,33 +86,39 @@ def field_names(n: int) -> list[str]:
 
 def stream_of(segments: list[Segment], period: float, ticks: np.ndarray,
               limits: JointLimits) -> tuple[Stream, list[dict[str, Any]]]:
-    """Setpoints of ``segments`` at ``ticks`` (core plan) and the guard's failures."""
-    plan = CommandPlan(period)
-    guard = SetpointGuard(limits)
+    """Setpoints of ``segments`` at ``ticks`` and the guard's failures (at most 20).
+
+    Each tick is sampled from the segment the live stream had committed and covering it:
+    the last one starting at or before the tick (the last one up to its end), with the core
+    `CommandPlan`'s constant-jerk formula, vectorised over the ticks (the same operations
+    in the same order, so the same bits); the core `SetpointGuard` checks them in order.
+    """
+    starts = np.array([s.start for s in segments], float)
+    period = float(period)
+    gaps = np.abs(starts[1:] - (starts[:-1] + period)) > 1e-6 * max(1.0, period)
+    if gaps.any():
+        k = int(np.argmax(gaps)) + 1
+        raise StreamError(f"segment starts at {starts[k]:.6f} s, expected "
+                          f"{starts[k - 1] + period:.6f} s")
     n = len(limits)
-    out = [np.empty((len(ticks), n)) for _ in range(3)]
-    failures: list[dict[str, Any]] = []
-    k = 0
-    keep = np.ones(len(ticks), bool)
-    previous = -math.inf
-    for i, t in enumerate(ticks.tolist()):
-        # live, the segment starting at S is committed by the decision triggered at the
-        # first tick of the segment before it (S - T), after that tick was sampled
-        while k < len(segments) and (plan.empty or segments[k].start - period <= previous + 1e-9
-                                     or plan.end <= t + 1e-9):
-            plan.commit(segments[k])
-            k += 1
-        previous = t
-        if plan.empty or t < plan.start - 1e-9 or t > plan.end + 1e-9:
-            keep[i] = False
-            continue
-        sp = plan.sample(t)
-        for arr, x in zip(out, sp):
-            arr[i] = x
-        reason = guard.check(t, sp)
-        if reason is not None and len(failures) < 20:
-            failures.append({"kind": "setpoint_guard", "time": t, "message": reason})
-    return Stream(ticks[keep], out[0][keep], out[1][keep], out[2][keep]), failures
+    if not len(segments):
+        empty = np.empty((0, n))
+        return Stream(ticks[:0], empty, empty.copy(), empty.copy()), []
+    keep = (ticks >= starts[0] - 1e-9) & (ticks <= starts[-1] + period + 1e-9)
+    t = ticks[keep]
+    k = np.maximum(np.searchsorted(starts, t, side="right") - 1, 0)
+    p0, v0, a0 = (np.array([s.state[f] for s in segments], float).reshape(-1, n)[k]
+                  for f in range(3))
+    u = np.array([s.u for s in segments], float).reshape(-1, n)[k]
+    j = (u - a0) / period
+    tau = (t - starts[k])[:, None]
+    p = p0 + tau * (v0 + tau * (0.5 * a0 + tau * j / 6.0))
+    v = v0 + tau * (a0 + 0.5 * j * tau)
+    a = a0 + j * tau
+    guard = SetpointGuard(limits)
+    failures = [{"kind": "setpoint_guard", "time": float(t[i]), "message": reason}
+                for i, reason in guard.check_all(t, p, v, a, limit=20)]
+    return Stream(t, p, v, a), failures
 
 
 def recorded_stream(result: ReplayResult) -> Stream | None:
@@ -121,6 +128,13 @@ def recorded_stream(result: ReplayResult) -> Stream | None:
     if data is None:
         return None
     reader = WindowReader(result.setup.joints)
+    try:
+        batch = reader.first_points(data.raw)
+    except ValueError:  # the first message cannot be read: read them one by one
+        batch = None
+    if batch is not None:
+        return Stream(tick_times(batch.sec, batch.nanosec), batch.positions,
+                      batch.velocities, batch.accelerations)
     rows = []
     for raw in data.raw:
         try:
@@ -133,6 +147,19 @@ def recorded_stream(result: ReplayResult) -> Stream | None:
         return None
     return Stream(np.array([r[0] for r in rows]), *(np.array([r[k] for r in rows])
                                                     for k in (1, 2, 3)))
+
+
+def tick_times(sec: np.ndarray, nanosec: np.ndarray) -> np.ndarray:
+    """`tick_time` of every stamp, vectorised where ``sec + nanosec * 1e-9`` itself
+    rounds back to the stamp (the scalar search for the others)."""
+    base = sec.astype(float) + nanosec.astype(float) * 1e-9
+    s = np.floor(base)
+    ns = np.rint((base - s) * 1e9)
+    carry = ns >= 1e9
+    ok = (np.where(carry, s + 1, s) == sec) & (np.where(carry, ns - 1e9, ns) == nanosec)
+    for i in np.flatnonzero(~ok).tolist():
+        base[i] = tick_time(int(sec[i]), int(nanosec[i]))
+    return base
 
 
 def tick_time(sec: int, nanosec: int) -> float:

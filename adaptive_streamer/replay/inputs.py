@@ -31,8 +31,11 @@ from adaptive_streamer.core.session import SessionInputs, feedback_valid_since
 from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 from adaptive_streamer.io.trajectory_conversions import TrajectoryMessageError
 
+from ..io import fast_cdr
 from ..io.bag_io import TopicData
-from ..io.messages import JointStateReader, MessageError, WindowReader, header_stamps
+from ..io.fast_cdr import CdrError, Layouts
+from ..io.messages import (JOINT_STATE, JointStateReader, MessageError, WindowReader,
+                           header_stamps)
 
 NS = 1e-9
 
@@ -69,6 +72,18 @@ class _Stream:
         return int(self.times[-1]) if len(self.times) else -1
 
 
+def _one_structure(raw: list[bytes]) -> bool:
+    """True when every joint_states message has the first one's CDR layout (size, counts,
+    frame_id and names bytes), so all have the same names (one merger structure key)."""
+    if not raw:
+        return False
+    try:
+        lay = Layouts(JOINT_STATE).layout(raw[0])
+    except CdrError:
+        return False
+    return fast_cdr.stacked(raw, lay) is not None
+
+
 class InputRebuilder:
     """Builds `SessionInputs` for ``joints`` from the input topics of a bag."""
 
@@ -86,6 +101,7 @@ class InputRebuilder:
         self._joint_decode = cdr_decoder()
         self._merger = JointStateMerger(self.joints, decode=self._joint_decode)
         self._joint_last = -1
+        self._joint_uniform = _one_structure(self.joint_states.raw)
         self.valid_since: float | None = None
         self.bad_windows = 0
         self.bad_joint_states = 0
@@ -120,7 +136,10 @@ class InputRebuilder:
         if i < self._joint_last:  # asked for an earlier time: merge again from the start
             self._merger = JointStateMerger(self.joints, decode=self._joint_decode)
             self._joint_last = -1
-        for k in range(self._joint_last + 1, i + 1):
+        # of messages with the same names only the latest received counts (the merger
+        # keeps the newest per structure): with one structure, only that one is added
+        first = max(self._joint_last + 1, i if self._joint_uniform else 0)
+        for k in range(first, i + 1):
             self._merger.add(self.joint_states.raw[k], int(self.joint_states.times[k]) * NS)
         self._joint_last = i
         js = self._merger.state()

@@ -14,7 +14,6 @@ from __future__ import annotations
 import dataclasses
 import json
 import math
-import struct
 from pathlib import Path
 from typing import Any
 
@@ -29,20 +28,37 @@ from ..io.messages import FLOAT64_ARRAY, JOINT_TRAJECTORY
 from .run import ReplayResult
 
 
-_STAMP = struct.Struct("<iI")
+def stamps_of(t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Float seconds -> (sec, nanosec) arrays, rounded as ``io.stamps.sec_to_stamp`` does
+    (half to even, as Python's ``round``)."""
+    sec = np.floor(t)
+    nsec = np.rint((t - sec) * 1e9)
+    carry = nsec >= 1e9
+    return ((sec + carry).astype(np.int64),
+            np.where(carry, nsec - 1e9, nsec).astype(np.int64))
 
 
-def _stamp(t: float) -> tuple[int, int]:
-    """Float seconds -> (sec, nanosec), rounded as ``io.stamps.sec_to_stamp`` does."""
-    sec = math.floor(t)
-    nsec = int(round((t - sec) * 1e9))
-    if nsec >= 1_000_000_000:
-        sec, nsec = sec + 1, nsec - 1_000_000_000
-    return int(sec), nsec
+def filled(template: bytes, count: int, floats: dict[int, np.ndarray],
+           sec: np.ndarray | None = None, nanosec: np.ndarray | None = None) -> list[bytes]:
+    """``count`` copies of the message ``template`` with float64 runs replaced: byte
+    offset -> (count, k) values; with a header, its stamp set from ``sec``/``nanosec``."""
+    rows = np.tile(np.frombuffer(template, np.uint8), (count, 1))
+    for offset, values in floats.items():
+        block = np.ascontiguousarray(values, "<f8").reshape(count, -1)
+        rows[:, offset:offset + 8 * block.shape[1]] = block.view(np.uint8)
+    if sec is not None and nanosec is not None:
+        rows[:, 4:8] = sec.astype("<i4").reshape(-1, 1).view(np.uint8)
+        rows[:, 8:12] = nanosec.astype("<u4").reshape(-1, 1).view(np.uint8)
+    size = len(template)
+    buf = rows.tobytes()
+    return [buf[k:k + size] for k in range(0, count * size, size)]
 
 
 def write_bag(result: ReplayResult, stream: Stream, path: Path) -> Path:
-    """The replayed setpoints and decisions as a new bag at ``path``."""
+    """The replayed setpoints and decisions as a new bag at ``path``.
+
+    Setpoint and decision messages are one message serialised by ``rosbags`` per topic,
+    then the same layout filled with every message's numbers at once."""
     types = typestore().types
     Time, Duration = types["builtin_interfaces/msg/Time"], types["builtin_interfaces/msg/Duration"]
     Header = types["std_msgs/msg/Header"]
@@ -57,9 +73,18 @@ def write_bag(result: ReplayResult, stream: Stream, path: Path) -> Path:
         dc = writer.add_topic(result.topics["decisions"], FLOAT64_ARRAY)
         joints = list(result.setup.joints)
         empty = np.empty(0)
-        events: list[tuple[int, int, Any, bytes]] = []
+        times: list[np.ndarray] = []
+        kinds: list[np.ndarray] = []
+        connections: list[Any] = []
+        messages: list[bytes] = []
+
+        def add(t_ns: np.ndarray, kind: int, conn: Any, raw: list[bytes]) -> None:
+            times.append(np.asarray(t_ns, np.int64))
+            kinds.append(np.full(len(raw), kind))
+            connections.extend([conn] * len(raw))
+            messages.extend(raw)
+
         if len(stream.t):
-            # one message serialised by rosbags, then the same layout filled per tick
             first = Traj(header=Header(stamp=Time(sec=0, nanosec=0), frame_id=""),
                          joint_names=joints,
                          points=[Point(positions=stream.p[0], velocities=stream.v[0],
@@ -67,17 +92,15 @@ def write_bag(result: ReplayResult, stream: Stream, path: Path) -> Path:
                                        time_from_start=Duration(sec=0, nanosec=0))])
             template = encode(first, JOINT_TRAJECTORY)
             lay = Layouts(JOINT_TRAJECTORY).layout(template)
-            slots = [lay.floats[f][0] for f in ("positions", "velocities", "accelerations")]
-            for k, t in enumerate(stream.t.tolist()):
-                sec, nsec = _stamp(t)
-                buf = bytearray(template)
-                view = np.frombuffer(buf, "<f8", count=(len(buf) - 4) // 8, offset=4)
-                view[slots[0]], view[slots[1]], view[slots[2]] = (stream.p[k], stream.v[k],
-                                                                  stream.a[k])
-                _STAMP.pack_into(buf, 4, sec, nsec)
-                events.append((sec * 1_000_000_000 + nsec, 0, sp, bytes(buf)))
+            slots = [4 + 8 * int(lay.floats[f][0][0])
+                     for f in ("positions", "velocities", "accelerations")]
+            sec, nsec = stamps_of(stream.t)
+            add(sec * 1_000_000_000 + nsec, 0, sp,
+                filled(template, len(stream.t), dict(zip(slots, (stream.p, stream.v, stream.a))),
+                       sec, nsec))
         if result.plans:
             pl = writer.add_topic(result.topics["plan"], JOINT_TRAJECTORY)
+            raw = []
             for sent in result.plans:
                 k = sent.knots
                 sec, nsec = divmod(k.stamp_ns, 1_000_000_000)
@@ -88,15 +111,21 @@ def write_bag(result: ReplayResult, stream: Stream, path: Path) -> Path:
                        for i, off in enumerate(k.offsets_ns)]
                 msg = Traj(header=Header(stamp=Time(sec=sec, nanosec=nsec), frame_id=""),
                            joint_names=joints, points=pts)
-                events.append((int(round(sent.time * 1e9)), 2, pl,
-                               encode(msg, JOINT_TRAJECTORY)))
-        layout = Layout(dim=[Dim(label=decision_record.LABEL, size=0, stride=0)], data_offset=0)
-        for d, now in zip(result.decisions, result.now.tolist()):
-            msg = F64(layout=layout, data=decision_record.encode(d))
-            events.append((int(round(now * 1e9)), 1, dc, encode(msg, FLOAT64_ARRAY)))
-        events.sort(key=lambda e: (e[0], e[1]))
-        for t_ns, _, conn, raw in events:
-            writer.write(conn, t_ns, raw)
+                raw.append(encode(msg, JOINT_TRAJECTORY))
+            add(np.array([int(round(p.time * 1e9)) for p in result.plans], np.int64), 2, pl,
+                raw)
+        if result.decisions:
+            layout = Layout(dim=[Dim(label=decision_record.LABEL, size=0, stride=0)],
+                            data_offset=0)
+            records = np.array([decision_record.encode(d) for d in result.decisions])
+            template = encode(F64(layout=layout, data=records[0]), FLOAT64_ARRAY)
+            offset = Layouts(FLOAT64_ARRAY).layout(template).parsed.floats["data"][0][0]
+            add(np.array([int(round(now * 1e9)) for now in result.now.tolist()], np.int64), 1,
+                dc, filled(template, len(records), {offset: records}))
+        if messages:
+            t_ns, kind = np.concatenate(times), np.concatenate(kinds)
+            for i in np.lexsort((kind, t_ns)).tolist():  # by time, then topic (stable)
+                writer.write(connections[i], int(t_ns[i]), messages[i])
         writer.set_custom_data("adaptive_streamer.replay_of", str(result.bag))
         writer.set_custom_data("adaptive_streamer.replay_policy", result.policy)
     finally:
