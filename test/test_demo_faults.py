@@ -117,12 +117,13 @@ def read_topics(folder: Path) -> dict[str, list[tuple[int, int, np.ndarray, np.n
     return out
 
 
-def held(followed: list, t0_ns: int, t1_ns: int) -> np.ndarray:
-    """The one position the driver followed at every tick stamped in [t0, t1]."""
+def held(followed: list, t0_ns: int, t1_ns: int, tol: float = 0.0) -> np.ndarray:
+    """The one position (within ``tol`` rad) the driver followed at every tick stamped in
+    [t0, t1]."""
     rows = [r[2] for r in followed if t0_ns <= r[0] <= t1_ns]
     assert len(rows) >= 10, f"{len(rows)} followed ticks in {(t1_ns - t0_ns) * 1e-9:.3f} s"
     spread = np.max(np.abs(np.array(rows) - rows[0]))
-    assert spread == 0.0, f"the followed position moved by {spread:g} rad while holding"
+    assert spread <= tol, f"the followed position moved by {spread:g} rad while holding"
     return rows[0]
 
 
@@ -177,4 +178,6 @@ def test_adapter_stall_with_the_stream_output_holds_then_stops_at_rest(tmp_path)
     assert_near_the_last_command(position, commands, setpoints[k][1] + 2_000_000)
     # after the stall the adapter's overruns stop brought its stream, and the arm, to rest
     assert np.all(np.abs(setpoints[-1][3]) <= 1e-9), setpoints[-1][3]
-    held(followed, followed[-1][0] - 200_000_000, followed[-1][0])
+    # at rest on the stop's last segment: its positions are evaluated per tick in float64,
+    # equal to the last bits only (seen: 3.3e-16 rad)
+    held(followed, followed[-1][0] - 200_000_000, followed[-1][0], tol=1e-12)
