@@ -31,6 +31,7 @@ from typing import Any
 
 import yaml
 
+from .io.param_specs import ParamsCheckError, check_params_file
 from .share import expand
 
 NODE_KINDS = {
@@ -66,7 +67,8 @@ class NodeEntry:
 
 
 def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
-    """Nodes of a params file and its text with ``$(share)`` expanded."""
+    """Nodes of a params file and its text with ``$(share)`` expanded; every node's
+    parameters are checked against its table (`adaptive_streamer.io.param_specs`)."""
     path = Path(path)
     try:
         text = expand(path.read_text())
@@ -103,6 +105,10 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
         nodes.append(NodeEntry(kind, ns, dict(params or {})))
     if not nodes:
         raise BringupError(f"{path}: names no node")
+    try:
+        check_params_file(path, text)
+    except ParamsCheckError as exc:
+        raise BringupError(str(exc)) from None
     return nodes, text
 
 

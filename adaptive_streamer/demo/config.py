@@ -9,6 +9,7 @@ from typing import Any
 
 import yaml
 
+from ..io.param_specs import ParamsCheckError, check_node_params, check_params_file
 from ..core.feasibility import FeasibilityError, ensure_feasible
 from ..core.limits import JointLimits, LimitsError
 from ..core.policies import PolicyError, load_card
@@ -94,6 +95,10 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     """Resolve the demo options into a `DemoConfig` (files written into ``workdir``)."""
     notes: list[str] = []
     params_path = demo_file("params.yaml")
+    try:
+        check_params_file(params_path)
+    except ParamsCheckError as exc:
+        raise DemoError(str(exc)) from None
     data = yaml.safe_load(expand(params_path.read_text()))
     params = {k: copy.deepcopy(v["ros__parameters"]) for k, v in data.items()}
     adapter, ref = params["adapter"], params["reference_server"]
@@ -131,6 +136,10 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     seed = int(args.seed) if args.seed is not None else int(params["edge_sensor"].get("seed", scenario.seed))
     params["edge_sensor"]["seed"] = seed
     params["sim_driver"]["seed"] = seed
+    problems = [p for kind, values in params.items()
+                for p in check_node_params(kind, values, "the demo's effective params")]
+    if problems:
+        raise DemoError("\n".join(problems))
     return DemoConfig(params, card, label, limits_file, limits, seed,
                       played.duration, played, rate, period, notes)
 
