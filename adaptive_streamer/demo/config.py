@@ -16,10 +16,9 @@ from ..core.policies import PolicyError, load_card
 from ..core.reference import ReferenceTrajectory
 from ..io.reference_bags import ReferenceFileError, load_reference
 from ..sim.config import load_scenario
-from ..share import demo_file, expand
+from ..io.policy_kinds import POLICY_KINDS
+from ..share import KIND_CARDS, demo_file, expand
 
-KIND_CARDS = {"onnx": "policy_edge.yaml", "linear_feedback": "policy_feedback.yaml",
-              "tracker": "policy_reference_only.yaml"}
 REFERENCE_ONLY_CARD = "policy_reference_only.yaml"
 SLOW_DOWN_FRACTION = 0.8
 
@@ -67,7 +66,7 @@ def _card_for(policy: str | None, limits_given: bool, notes: list[str]) -> tuple
     path = Path(policy)
     if not path.is_file():
         raise DemoError(f"--policy '{policy}': no such card file, and not one of the kinds "
-                        f"{sorted(KIND_CARDS) + ['hold']}")
+                        f"{list(POLICY_KINDS)}")
     return path.resolve(), path.name
 
 
