@@ -385,8 +385,9 @@ SENSOR_BRIDGE = NodeParams("sensor_bridge", (
 
 _SIM = {"read_only": True, "dynamic_typing": True}
 SIM_DRIVER = NodeParams("sim_driver", (
-    Param("joints", _SS, None, "joint names", empty_ok=False, **_SIM),
-    Param("initial_positions", _NN, None, "start positions [rad] (one per joint)",
+    Param("joints", _SS, ["j1", "j2", "j3", "j4", "j5", "j6"], "joint names", empty_ok=False,
+          **_SIM),
+    Param("initial_positions", _NN, None, "start positions [rad] (one per joint; default: 0)",
           empty_ok=False, **_SIM),
     Param("rate", _N, 250.0, "tick and publish rate [Hz]", **POSITIVE, **_SIM),
     Param("command_interface", _S, "position", "position | velocity | trajectory | plan",

@@ -71,7 +71,6 @@ from ..io.param_specs import SIM_DRIVER
 from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
                      run_nodes)
 
-DEFAULT_JOINTS = ["j1", "j2", "j3", "j4", "j5", "j6"]
 TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",
           "trajectory": "driver/trajectory_command", "plan": "driver/plan"}
 MAX_LAG_S = 0.5          # behind the clock by more than this: re-anchor instead of catching up
@@ -89,8 +88,8 @@ def _number(node: Node, name: str) -> float:
     return float(value)
 
 
-def _strings(node: Node, name: str, default: list[str]) -> list[str]:
-    value = declare(node, SIM_DRIVER[name], default)
+def _strings(node: Node, name: str) -> list[str]:
+    value = declare(node, SIM_DRIVER[name])
     if len(set(value)) != len(value):
         raise SimDriverError(f"parameter '{name}': names must be unique, got {list(value)}")
     return list(value)
@@ -113,7 +112,7 @@ class SimDriver(SetupNode):
         super().__init__("sim_driver", **kwargs)
 
     def _setup(self) -> None:
-        self._joints = _strings(self, "joints", DEFAULT_JOINTS)
+        self._joints = _strings(self, "joints")
         n = len(self._joints)
         q0 = _numbers(self, "initial_positions", n)
         rate = _number(self, "rate")
