@@ -8,7 +8,8 @@ the file may use ``$(share)`` for the package's share folder.
 The adapter is configured and activated through its lifecycle services (unless its
 ``autostart`` parameter does it), retried until ``joint_states`` is fresh. On Ctrl-C (or
 SIGTERM) the adapter is deactivated first, which brings the arm to rest while the stream and
-the driver keep running; then every child is stopped, cleanly, without a traceback.
+the driver keep running; then the adapters' processes are stopped and, once they exited,
+every other child, cleanly, without a traceback.
 
 Before anything starts, the params file is checked against the nodes' parameter tables
 (`adaptive_streamer.io.param_specs`). Each child's output goes to a log file (in a folder
@@ -38,6 +39,7 @@ from typing import Any
 
 import yaml
 
+from .core.text_files import yaml_problem
 from .io.param_specs import ParamsCheckError, check_params_file
 from .share import expand
 
@@ -88,7 +90,7 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
     try:
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
-        raise BringupError(f"{path}: not valid YAML: {exc}") from None
+        raise BringupError(f"{path}: not valid YAML: {yaml_problem(exc)}") from None
     if not isinstance(data, dict) or not data:
         raise BringupError(f"{path}: expected a ROS 2 params file (node: ros__parameters: ...)")
     nodes = []
@@ -175,7 +177,7 @@ def run_child(kinds: list[str], args: list[str]) -> int:
 def run_one_process(entries: list[NodeEntry], params_file: str) -> int:
     """All nodes in this process (one executor; the adapter keeps its stream thread)."""
     from .nodes import common
-    from .nodes.adapter import AdapterNode
+    from .nodes.adapter import AdapterNode, bring_to_rest
     from .nodes.threads import make_executor
 
     namespaces = {e.namespace for e in entries}
@@ -189,11 +191,6 @@ def run_one_process(entries: list[NodeEntry], params_file: str) -> int:
         klass = getattr(importlib.import_module(module), cls)
         factories.append(lambda k=klass: k())
 
-    def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
-        for node in nodes:
-            if isinstance(node, AdapterNode):
-                node.stop_at_rest()
-
     def activate(nodes: list) -> None:
         for node in nodes:
             if isinstance(node, AdapterNode):
@@ -204,10 +201,12 @@ def run_one_process(entries: list[NodeEntry], params_file: str) -> int:
 
 
 class Processes:
-    """Child processes of a bringup, stopped in order."""
+    """Child processes of a bringup, stopped in order: the adapters first."""
 
     def __init__(self) -> None:
         self.children: list[tuple[NodeEntry, subprocess.Popen]] = []
+        self._killed: set[int] = set()     # pids this object killed with SIGKILL
+        self._adapters: set[int] = set()   # pids of children that run an adapter
 
     def start(self, entry: NodeEntry, params_file: str, group: list[str] | None = None,
               remaps: dict[str, str] | None = None, **popen: Any) -> None:
@@ -216,20 +215,59 @@ class Processes:
         kinds = group or [entry.kind]
         proc = subprocess.Popen(child_command(kinds, params_file, entry.namespace, remaps),
                                 start_new_session=True, **popen)
+        self.add(entry, proc, kinds)
+
+    def add(self, entry: NodeEntry, proc: subprocess.Popen, kinds: list[str]) -> None:
+        """Track a started child process running the nodes ``kinds``."""
         self.children.append((entry, proc))
+        if "adapter" in kinds:
+            self._adapters.add(proc.pid)
+
+    def send_signal(self, kind: str, sig: int) -> int:
+        """Send ``sig`` to the running child whose entry is the node ``kind`` (SIGSTOP and
+        SIGCONT suspend and resume it, SIGKILL kills it) and return its pid. A child killed
+        with SIGKILL here is left out of `dead` and `stop`'s notes: it did not end on its
+        own. `BringupError` when no child of that node runs."""
+        for entry, proc in self.children:
+            if entry.kind == kind and proc.poll() is None:
+                proc.send_signal(sig)
+                if sig == signal.SIGKILL:
+                    self._killed.add(proc.pid)
+                return proc.pid
+        raise BringupError(f"no running process of node '{kind}'")
 
     def dead(self) -> list[tuple[NodeEntry, int]]:
-        """Children that exited, with their exit codes."""
-        return [(e, p.returncode) for e, p in self.children if p.poll() is not None]
+        """Children that exited on their own (not killed by `send_signal`), with their exit
+        codes."""
+        return [(e, p.returncode) for e, p in self.children
+                if p.pid not in self._killed and p.poll() is not None]
 
     def stop(self, timeout: float = STOP_TIMEOUT) -> list[str]:
-        """SIGINT every child (reverse start order), then SIGKILL after ``timeout``."""
-        for _, proc in reversed(self.children):
+        """Stop the children; returns notes on those that did not stop cleanly.
+
+        The adapters first: SIGINT, and wait until they exited (each brings its arm to rest
+        with the controlled stop, which needs the driver still running), SIGKILL after
+        ``timeout``; only then SIGINT every other child (reverse start order), SIGKILL after
+        another ``timeout``. A suspended child is resumed so that it can take the SIGINT; a
+        child killed by `send_signal` is only reaped."""
+        adapters = [c for c in self.children if c[1].pid in self._adapters]
+        others = [c for c in reversed(self.children) if c[1].pid not in self._adapters]
+        return self._stop_group(adapters, timeout) + self._stop_group(others, timeout)
+
+    def _stop_group(self, children: list[tuple[NodeEntry, subprocess.Popen]], timeout: float
+                    ) -> list[str]:
+        """SIGINT ``children`` and wait for them (SIGKILL after ``timeout``); notes on those
+        that were killed or exited with an error."""
+        for _, proc in children:
             if proc.poll() is None:
                 proc.send_signal(signal.SIGINT)
+                proc.send_signal(signal.SIGCONT)
         deadline = time.monotonic() + timeout
         notes = []
-        for entry, proc in reversed(self.children):
+        for entry, proc in children:
+            if proc.pid in self._killed:
+                proc.wait()
+                continue
             try:
                 proc.wait(max(0.1, deadline - time.monotonic()))
             except subprocess.TimeoutExpired:

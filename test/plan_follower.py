@@ -98,11 +98,13 @@ def follow(messages: list[PlanMessage], t0_ns: int, t1_ns: int, step_ns: int = 1
     return out
 
 
-def switch_jumps(messages: list[PlanMessage]) -> list[float]:
+def switch_differences(messages: list[PlanMessage]) -> list[tuple[np.ndarray, bool]]:
     """At every switch from one message in force to the next (at the later one's first knot
-    time): the largest |difference| of p, v and a between the outgoing and the incoming
-    plan there."""
-    jumps = []
+    time): the largest |difference| of p, v and a (3,) between the outgoing and the
+    incoming plan there, and whether the outgoing plan had ended (it then holds its last
+    knot's position at rest, and that knot is at rest only within the session's rest
+    tolerances)."""
+    out = []
     for k in range(1, len(messages)):
         t = messages[k].start_ns
         prev = active(messages[:k], t)
@@ -110,5 +112,11 @@ def switch_jumps(messages: list[PlanMessage]) -> list[float]:
             continue
         old = evaluate(messages[prev], t)[:3]
         new = evaluate(messages[k], t)[:3]
-        jumps.append(max(float(np.max(np.abs(x - y))) for x, y in zip(old, new)))
-    return jumps
+        out.append((np.array([float(np.max(np.abs(x - y))) for x, y in zip(old, new)]),
+                    bool(t >= messages[prev].times_ns[-1])))
+    return out
+
+
+def switch_jumps(messages: list[PlanMessage]) -> list[float]:
+    """At every switch (`switch_differences`): the largest |difference| of p, v and a."""
+    return [float(d.max()) for d, _ in switch_differences(messages)]

@@ -1,5 +1,7 @@
 """`adaptive-streamer bringup`: params-file parsing, a real multi-process bring-up of the demo
-cell with a tracking policy, the controlled stop on Ctrl-C, and the one-process mode."""
+cell with a tracking policy, the controlled stop on Ctrl-C, the one-process mode, and the
+stop order of the child processes (stand-in children: the adapter's exits before the
+driver's is asked to stop; a hanging adapter is killed after the timeout)."""
 import os
 import signal
 import subprocess
@@ -133,7 +135,80 @@ def test_a_child_that_exits_during_startup_stops_bringup_at_once_with_its_last_l
     notice = "bringup: /sim_driver exited during startup (code 1); its last output:\n"
     assert notice in out.stderr, out.stderr[-3000:]
     quoted = out.stderr.split(notice)[1]
-    assert "    error: parameter 'initial_positions': expected 6 finite numbers" in quoted, \
-        out.stderr[-3000:]
+    assert "    error: SimDriverError: parameter 'initial_positions': expected 6 finite " \
+           "numbers" in quoted, out.stderr[-3000:]
     assert "lifecycle services did not appear" not in out.stderr   # no 30 s wait first
     assert "Traceback" not in out.stdout + out.stderr
+
+
+STAND_IN = """
+import signal, sys, time
+out, delay = sys.argv[1], float(sys.argv[2])
+def on_int(signum, frame):
+    with open(out, "a") as f:
+        f.write(f"sigint {time.monotonic()}\\n")
+    time.sleep(delay)
+    with open(out, "a") as f:
+        f.write(f"exit {time.monotonic()}\\n")
+    sys.exit(0)
+signal.signal(signal.SIGINT, on_int if delay >= 0 else signal.SIG_IGN)
+print("ready", flush=True)
+while True:
+    time.sleep(0.01)
+"""
+
+
+def stand_in(tmp_path: Path, name: str, delay: float) -> tuple[subprocess.Popen, Path]:
+    """A child process that, on SIGINT, notes the time, takes ``delay`` seconds to stop and
+    notes its exit (delay < 0: ignores SIGINT)."""
+    out = tmp_path / f"{name}.log"
+    proc = subprocess.Popen([sys.executable, "-c", STAND_IN, str(out), str(delay)],
+                            stdout=subprocess.PIPE, text=True)
+    assert proc.stdout.readline().strip() == "ready"
+    return proc, out
+
+
+def events(path: Path) -> dict[str, float]:
+    return {k: float(v) for k, v in (line.split() for line in path.read_text().splitlines())}
+
+
+@pytest.fixture
+def stand_ins(tmp_path):
+    """Start stand-in children (see `stand_in`); any still running at the end is killed."""
+    started: list[subprocess.Popen] = []
+
+    def start(name: str, delay: float) -> tuple[subprocess.Popen, Path]:
+        proc, out = stand_in(tmp_path, name, delay)
+        started.append(proc)
+        return proc, out
+    yield start
+    for proc in started:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+
+
+def test_stop_ends_the_adapter_before_the_driver(stand_ins):
+    from adaptive_streamer.bringup import NodeEntry, Processes
+    procs = Processes()
+    driver, driver_log = stand_ins("driver", 0.0)
+    adapter, adapter_log = stand_ins("adapter", 0.5)   # braking takes a while
+    procs.add(NodeEntry("sim_driver", "", {}), driver, ["sim_driver"])
+    procs.add(NodeEntry("adapter", "", {}), adapter, ["adapter"])
+    assert procs.stop(timeout=5.0) == []
+    a, d = events(adapter_log), events(driver_log)
+    assert d["sigint"] >= a["exit"], (a, d)   # the driver ran on until the adapter exited
+
+
+def test_stop_kills_an_adapter_that_hangs_then_stops_the_driver(stand_ins):
+    from adaptive_streamer.bringup import NodeEntry, Processes
+    procs = Processes()
+    driver, driver_log = stand_ins("driver", 0.0)
+    adapter, _ = stand_ins("adapter", -1.0)
+    procs.add(NodeEntry("sim_driver", "", {}), driver, ["sim_driver"])
+    procs.add(NodeEntry("adapter", "", {}), adapter, ["adapter"])
+    t0 = time.monotonic()
+    notes = procs.stop(timeout=0.5)
+    assert notes == ["/adapter did not stop within 0.5 s and was killed"], notes
+    assert adapter.returncode == -signal.SIGKILL and driver.returncode == 0
+    assert events(driver_log)["sigint"] >= t0 + 0.5

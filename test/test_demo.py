@@ -81,6 +81,7 @@ def test_demo_adapts_within_limits_and_writes_its_report(tmp_path):
     rc, out, report = run_demo(tmp_path, "--record", str(tmp_path / "bags"))
     assert rc == 0, out[-4000:]
     assert "NOT a safety function" in out and "ISO 10218" in out   # cautions at start
+    assert "locked on: edge_offset within 0.001 for 0.5 s" in out   # the pass's start condition
     summary = json.loads((report / "summary.json").read_text())
     assert summary["violations"] == 0
     assert summary["watchdog_events"] == []

@@ -4,6 +4,7 @@ the transient-local path, diagnostics, and refusal of bad files and parameters."
 from __future__ import annotations
 
 import os
+import re
 import subprocess
 import sys
 import time
@@ -18,6 +19,7 @@ from rclpy.node import Node
 from rclpy.parameter import Parameter
 from rclpy.parameter_client import AsyncParameterClient
 from rosgraph_msgs.msg import Clock
+from sensor_msgs.msg import JointState
 from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
 
@@ -382,7 +384,7 @@ def test_main_prints_error_and_exits_nonzero():
         capture_output=True, text=True, timeout=60, env=env)
     assert proc.returncode == 1
     assert "Traceback" not in proc.stderr
-    assert "error: parameter 'reference_file':" in proc.stderr
+    assert "error: ReferenceServerError: parameter 'reference_file':" in proc.stderr
     assert "reference_bad_nan.csv: line 3: joint 'j2' position is nan" in proc.stderr
 
 
@@ -414,3 +416,68 @@ def test_trajectory_conversions_round_trip_reuse_and_errors():
         msg_to_window(msg)
     with pytest.raises(TrajectoryMessageError, match="0 points"):
         msg_to_window(JointTrajectory(joint_names=["a"]))
+
+
+LOCK = dict(start_condition="lock_on", **{"lock_on.feature": "edge_offset",
+                                          "lock_on.tolerance": 0.001, "lock_on.hold": 0.3,
+                                          "lock_on.timeout": 2.0, "lock_on.max_age": 0.1})
+
+
+def _feed(h: Harness, pub, value: float) -> JointTrajectory:
+    """One period on: the clock, one feedback reading, the window of the new time."""
+    h.clock_ns += PERIOD_NS
+    h.publish_clock()
+    msg = JointState(name=["edge_angle", "edge_offset"], position=[0.0, value])
+    pub.publish(msg)
+    return h.await_window()
+
+
+def test_lock_on_starts_the_pass_once_the_feedback_has_settled(ros):
+    h = Harness(params(reference_file=str(DATA / "reference_smooth.csv"), **LOCK), sim_time=True)
+    pub = h.probe.create_publisher(JointState, "feedback", 10)
+    try:
+        h.await_window()
+        answer = h.call("start")
+        assert answer.success and "waiting for edge_offset within 0.001" in answer.message
+        for _ in range(20):   # 1 s off by 5 mm: the pass must not start
+            w = _feed(h, pub, 0.005)
+        assert h.server.playback.state == "waiting"
+        assert np.all(np.array(w.points[0].velocities) == 0.0)
+        settled = []
+        while "running" not in settled and len(settled) < 40:
+            _feed(h, pub, 0.0004)   # settled: within 1 mm
+            settled.append(h.server.playback.state)
+        # not before 0.3 s of settled readings (7 readings 0.05 s apart), then it starts
+        assert "running" in settled and settled.index("running") >= 6, settled
+    finally:
+        h.close()
+
+
+def test_lock_on_that_never_settles_fails_with_its_reason_and_may_be_retried(ros):
+    h = Harness(params(reference_file=str(DATA / "reference_smooth.csv"), **LOCK), sim_time=True)
+    pub = h.probe.create_publisher(JointState, "feedback", 10)
+    try:
+        h.await_window()
+        assert h.call("start").success
+        for _ in range(45):   # 2.25 s, past the 2 s timeout
+            _feed(h, pub, 0.003)
+        assert h.server.playback.state == "waiting"
+        h.spin_until(lambda: any(d.message.startswith("lock_failed") for d in h.diags),
+                     "lock_failed diagnostics")
+        failed = [d for d in h.diags if d.message.startswith("lock_failed")][-1]
+        assert "no lock-on within 2 s" in failed.message and "largest 0.003" in failed.message
+        again = h.call("start")
+        assert again.success and "start requested" in again.message
+    finally:
+        h.close()
+
+
+@pytest.mark.parametrize("overrides, fragment", [
+    (dict(start_condition="later"), "parameter 'start_condition'"),
+    (dict(LOCK, **{"lock_on.timeout": 0.2}), "'timeout' (0.2 s) must be longer than 'hold'"),
+    (dict(LOCK, **{"lock_on.feature": ""}), "'feature' must name a feedback feature"),
+])
+def test_bad_lock_on_parameters_are_refused(ros, overrides, fragment):
+    with pytest.raises(ReferenceServerError, match=re.escape(fragment)):
+        ReferenceServer(parameter_overrides=params(reference_file=str(DATA / "reference_smooth.csv"),
+                                                   **overrides))

@@ -464,13 +464,13 @@ def test_executable_reports_bad_config_without_traceback(capsys):
                  "-p", "edge.type:=geometry_msgs/msg/Nope", "-p", "edge.fields:=[point.y]",
                  "-p", "edge.features:=[edge_y]"])
     assert code == 1
-    assert "error: input 'edge': unknown message type 'geometry_msgs/msg/Nope'" in \
+    assert "error: BridgeConfigError: input 'edge': unknown message type 'geometry_msgs/msg/Nope'" in \
         capsys.readouterr().err
     # YAML 1.1 reads an unquoted y as a boolean (YAML 1.1 spec, bool type; from memory).
     code = main(["--ros-args", "-p", "inputs:=[edge]", "-p", "edge.topic:=x",
                  "-p", "edge.type:=geometry_msgs/msg/PointStamped", "-p",
                  "edge.fields:=[point.y]", "-p", "edge.features:=[y]"])
     assert code == 1
-    assert "error: parameter 'edge.features' is [True]; expected a non-empty list of " \
-           "strings (YAML reads unquoted y, n, yes, no, on, off, true, false as booleans: " \
+    assert "error: BridgeConfigError: parameter 'edge.features' is [True]; expected a " \
+           "non-empty list of strings (YAML reads unquoted y, n, yes, no, on, off, true, false as booleans: " \
            "quote such names)" in capsys.readouterr().err

@@ -5,7 +5,7 @@ Checked: the first holding segment, late decisions replaced by braking and count
 overruns trip, input faults (following error with the command latency, stale inputs, a
 window ending early), reset rules, the setpoint guard trigger (a corrupt segment injected
 into the plan: the only way to reach it, the plan is within the limits by construction),
-the shadow plan, limit_scale changes. Committed segments are checked with test/oracle_lp.py
+the shadow plan, limit_scale changes, re-timing after a setpoint that left late. Committed segments are checked with test/oracle_lp.py
 (exact constant-jerk extrema).
 """
 from __future__ import annotations
@@ -23,7 +23,7 @@ from adaptive_streamer.core.policies import policy_for_kind
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import Segment, StreamClock
-from adaptive_streamer.core.watchdog import WatchdogConfig
+from adaptive_streamer.core.watchdog import EVENTS_KEPT, WatchdogConfig
 from test_cycle import (LIMITS, N, P0, T, T0, TOL, approach_policy, reference, running)
 
 RATE = 250.0
@@ -252,3 +252,90 @@ def test_joints_measured_at_different_times_are_each_compared_at_their_own_time(
     assert emu.s.input_faults(now, apart, False) == []
     oldest = dataclasses.replace(apart, joint_stamp=float(stamps.min()))
     assert [k for k, _ in emu.s.input_faults(now, oldest, False)] == ["following_error"]
+
+
+def test_feedback_frozen_while_moving_counts_as_stale():
+    # a republished copy of a dead sensor's last values is not fresh feedback: bit-identical
+    # values for longer than feedback_frozen while the arm moves stop it as feedback_stale
+    class Values:     # the part of a FeatureVector the check reads
+        def __init__(self, v):
+            self.values = np.array(v)
+
+    def at(t, v):     # feedback received and valid at t (never old)
+        return t, SessionInputs(None, None, Values(v), t, None, None, None)
+
+    moving = MotionState(P0.copy(), np.full(N, 0.1), np.zeros(N))
+    s = session(feedback_frozen=0.3)
+    s.cycle.state = moving
+    assert "feedback_stale" not in dict(s.input_faults(*at(T0, [0.002, 0.01]), True))
+    faults = dict(s.input_faults(*at(T0 + 0.31, [0.002, 0.01]), True))
+    assert "feedback frozen" in faults["feedback_stale"], faults
+    # values that change (a live sensor) or an arm at rest never count as frozen
+    s = session(feedback_frozen=0.3)
+    s.cycle.state = moving
+    for k in range(40):
+        now, inputs = at(T0 + 0.01 * k, [0.002 + 1e-9 * (k % 2), 0.01])
+        assert "feedback_stale" not in dict(s.input_faults(now, inputs, True))
+    s.cycle.state = MotionState(P0.copy(), np.zeros(N), np.zeros(N))
+    for k in range(40):
+        assert "feedback_stale" not in dict(s.input_faults(*at(T0 + 1 + 0.1 * k, [0.0, 0.0]),
+                                                           True))
+
+
+def test_a_setpoint_that_left_late_re_times_the_plan_instead_of_jumping():
+    s = session()
+    s.set_stream_timing(RATE, 0.01)
+    emu = Emulator(s)
+    emu.run(2.0)
+    assert s.mode == "following"
+    tick = 1.0 / RATE
+    # the previous setpoint left on time: after 0.3 s idle the stream skips ahead
+    t = emu.clock.time_of(emu.i)
+    s.sample(t, 100.0)
+    s.sent(100.0002)
+    sp, reason = s.sample(t + 0.3, 100.3)
+    assert reason is None and s.stream_lag == 0.0 and s.retimes == 0
+    assert s.late_decisions > 0   # the decisions it missed were braked in their place
+    # the next setpoint left 0.3 s late (a stall between sampling and sending it): 1 ms
+    # later the stream time is 0.304 s on, but the plan advances two ticks (1 ms + 10 ms
+    # jitter, in whole ticks), stamped with the stream time
+    t = t + 0.3 + tick
+    s.sample(t, 100.304)
+    s.sent(100.604)
+    nxt = s.commanded_at(t + 2 * tick)
+    sp, reason = s.sample(t + 0.3, 100.605)
+    assert reason is None and s.retimes == 1
+    assert s.stream_lag == pytest.approx(0.3 - 2 * tick, abs=1e-9)
+    np.testing.assert_allclose(sp.position, nxt.position, atol=1e-12)
+    np.testing.assert_allclose(sp.velocity, nxt.velocity, atol=1e-12)
+    # commanded_at answers in stream time from now on
+    np.testing.assert_allclose(s.commanded_at(t + 0.3).position, sp.position, atol=1e-12)
+    # stopped at rest, a reset drops the lag: the held position is the same at stream time
+    s.stop(t + 0.3, "external_stop", "test")
+    clock, u = 100.605, t + 0.3
+    while not (s.mode == "stopped" and s.cycle.at_rest):
+        u, clock = u + tick, clock + tick
+        s.sample(u, clock)
+        s.sent(clock)
+        if s.decision_due(u):
+            s.decide(u, emu.inputs(u))
+    held = s.commanded_at(u)
+    ok, msg = s.reset([])
+    assert ok, msg
+    assert s.stream_lag == 0.0
+    np.testing.assert_array_equal(s.commanded_at(u).position, held.position)
+    sp, reason = s.sample(u + tick, clock + tick)
+    assert reason is None and s.retimes == 1
+    np.testing.assert_array_equal(sp.position, held.position)
+
+
+def test_new_trips_after_more_events_than_are_kept():
+    s = session()
+    kept = EVENTS_KEPT
+    s.watchdog.fire("external_stop", 1.0, "first")
+    assert [t.message for t in s.new_trips()] == ["first"] and s.new_trips() == []
+    for i in range(kept + 3):
+        s.watchdog.fire("external_stop", 2.0, f"n{i}")
+    fresh = s.new_trips()
+    assert len(fresh) == kept and fresh[-1].message == f"n{kept + 2}"
+    assert s.new_trips() == []

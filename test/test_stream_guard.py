@@ -5,7 +5,9 @@
   2008, ch. 3; from memory), including at epoch-sized ROS times where segment starts are
   sums of float64 periods;
 * `StreamClock`: worked examples of due ticks and skipped-tick counting;
-* `SetpointGuard`: every reason, and a plan at its jerk limit passes.
+* `SetpointGuard`: every reason, a plan at its jerk limit passes, and a step judged over the
+  real time since the previous setpoint left (send time) when that is shorter;
+* `StreamTimeline`: ROS time carried on the monotonic clock, to the nanosecond.
 """
 from __future__ import annotations
 
@@ -17,7 +19,8 @@ import pytest
 from adaptive_streamer.core.guard import SetpointGuard
 from adaptive_streamer.core.limits import JointLimits
 from adaptive_streamer.core.segment import MotionState
-from adaptive_streamer.core.stream import CommandPlan, Segment, StreamClock, StreamError
+from adaptive_streamer.core.stream import (CommandPlan, Segment, StreamClock, StreamError,
+                                          StreamTimeline)
 
 T = 0.05
 EPOCH = 1_796_000_000.0  # ROS time of today's order: float64 resolves 2.4e-7 s there
@@ -189,3 +192,30 @@ def test_guard_passes_a_plan_at_its_jerk_limit():
         t = t0 + i / rate
         assert g.check(t, plan.sample(t)) is None, i
     assert g.failures == 0
+
+
+def test_guard_judges_over_the_real_time_since_the_last_setpoint_left():
+    # stamps 0.3 s apart, but the setpoint follows the previous one 1 ms after it left:
+    # 0.05 rad in 1 ms + 10 ms jitter is a jump (V = 2: at most 0.022 rad) and is refused
+    g = SetpointGuard(LIMITS, jitter=0.01)
+    assert g.check(1.0, state()) is None
+    reason = g.check(1.3, state(p=(0.05, 0.0)), since_sent=0.001)
+    assert reason is not None and "position jumps" in reason and "11.000 ms judged" in reason
+    # the same step after 0.3 s of real time is within the limits
+    assert g.check(1.3, state(p=(0.05, 0.0)), since_sent=0.3) is None
+    # without a send time the stamps alone measure the elapsed time
+    g = SetpointGuard(LIMITS, jitter=0.01)
+    g.check(1.0, state())
+    assert g.check(1.3, state(p=(0.05, 0.0))) is None
+
+
+def test_guard_refuses_a_negative_jitter_and_names_it():
+    with pytest.raises(ValueError, match="stream_jitter"):
+        SetpointGuard(LIMITS, jitter=-0.001)
+
+
+def test_timeline_carries_ros_time_on_the_monotonic_clock():
+    tl = StreamTimeline(1_796_000_000_123_456_789, 5_000_000_000)
+    assert tl.ns(5_000_000_000) == 1_796_000_000_123_456_789
+    assert tl.ns(5_004_000_000) == 1_796_000_000_127_456_789   # 4 ms later
+    assert tl.at(5_004_000_000) == pytest.approx(1_796_000_000.127456789, abs=3e-7)

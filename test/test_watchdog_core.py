@@ -11,7 +11,7 @@ import math
 import numpy as np
 import pytest
 
-from adaptive_streamer.core.watchdog import (KINDS, PERSISTENT, InputAges, Watchdog,
+from adaptive_streamer.core.watchdog import (EVENTS_KEPT, KINDS, PERSISTENT, InputAges, Watchdog,
                                              WatchdogConfig, WatchdogError)
 
 JOINTS = ("j1", "j2", "j3")
@@ -49,6 +49,15 @@ def test_first_trip_latches_later_ones_are_counted():
     with pytest.raises(WatchdogError, match="unknown trigger 'bogus'"):
         w.fire("bogus", 3.0, "")
     assert set(PERSISTENT) <= set(KINDS)
+
+
+def test_events_keep_the_latest_and_count_them_all():
+    w = dog()
+    for i in range(EVENTS_KEPT + 5):
+        w.fire("external_stop", float(i), f"stop {i}")
+    assert len(w.events) == EVENTS_KEPT and w.total_events == EVENTS_KEPT + 5
+    assert w.events[0].message == "stop 5" and w.events[-1].message == f"stop {EVENTS_KEPT + 4}"
+    assert w.trip.message == "stop 0" and w.counts["external_stop"] == EVENTS_KEPT + 5
 
 
 def test_deviation_per_joint_norm_and_continuous_wrap():

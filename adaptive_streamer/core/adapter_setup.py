@@ -25,14 +25,14 @@ from .watchdog import WatchdogConfig
 
 WATCHDOG_PARAMS = ("deviation_joint", "deviation_norm", "following_error", "command_latency",
                    "joint_states_timeout", "feedback_timeout", "reference_timeout",
-                   "max_overruns", "overrun_window")
+                   "max_overruns", "overrun_window", "feedback_frozen")
 _WD = WatchdogConfig()
 DEFAULTS: dict[str, Any] = {
     "policy": "", "shadow_policy": "", "limits_file": "", "limits_dynamics": "",
     "joints": [""], "decision_period": 0.05, "stream_rate": 250.0, "horizon": 10,
     "limit_scale": 1.0, "features": [""], "outputs": ["position"],
     "approach_scale": 0.3, "approach_tolerance": 2e-3, "approach_bandwidth": 4.0,
-    "plan_lead": 0.01,
+    "plan_lead": 0.01, "stream_jitter": 0.02,
     **{f"watchdog.{k}": getattr(_WD, k) for k in WATCHDOG_PARAMS},
 }
 
@@ -127,6 +127,10 @@ def build_session(params: Mapping[str, Any], policy: str | None = None,
                          approach_bandwidth=float(_get(params, "approach_bandwidth")))
         session = StreamingSession(limits, period, main, approach, cc, wd,
                                    float(_get(params, "limit_scale")), shadow)
+        try:
+            session.set_stream_timing(rate, float(_get(params, "stream_jitter")))
+        except ValueError as exc:
+            raise SetupError(f"parameter 'stream_jitter': {exc}") from None
         if plan_outputs(params):
             try:
                 session.enable_plan_ahead(float(_get(params, "plan_lead")))

@@ -60,13 +60,15 @@ def session_values(session: StreamingSession, timings: CycleTimings,
     vals: list[tuple[str, Any]] = [
         ("mode", session.mode), ("limit_scale", session.limit_scale),
         ("decisions", stats.decisions), ("late_decisions", session.late_decisions),
-        ("skipped_ticks", skipped_ticks), *timings.percentiles_ms(),
+        ("skipped_ticks", skipped_ticks), ("stream_retimes", session.retimes),
+        ("stream_lag", session.stream_lag), *timings.percentiles_ms(),
         ("policy_ms_p50", _pct_ms(stats.policy_times, 50, last=500)),
         ("policy_swaps", stats.policy_swaps), ("non_viable_states", stats.non_viable),
         ("limit_transitions", stats.limit_transitions),
         ("trip", "none" if trip is None else trip.kind),
         ("trip_message", "" if trip is None else trip.message),
         ("trip_time", math.nan if trip is None else trip.time)]
+    vals += [("watchdog_events", session.watchdog.total_events)]
     vals += [(f"count.{k}", v) for k, v in session.watchdog.counts.items() if v]
     if session.shadow_policy is not None:
         st = session.shadow_stats

@@ -6,8 +6,16 @@ must be at rest): the position, velocity and
 acceleration steps since the previous setpoint must be within what the velocity,
 acceleration and jerk limits allow over the elapsed time. A failure names the joint and
 what was wrong; the adapter then stops (and counts it).
+
+The elapsed time is the smaller of the stamps' step and, when the caller knows it, the real
+time since the previous setpoint actually left (a monotonic clock) plus ``jitter``: a
+setpoint whose stamp is far ahead of the previous one but that follows it within a few
+milliseconds (the previous one left late, or the stamps' clock jumped) is judged over the
+real time, so a jump is refused even when the stamps are far apart.
 """
 from __future__ import annotations
+
+import math
 
 import numpy as np
 
@@ -18,9 +26,18 @@ REL_TOL = 1e-6
 
 
 class SetpointGuard:
-    """Checks successive setpoints against ``limits`` (relative tolerance ``REL_TOL``)."""
+    """Checks successive setpoints against ``limits`` (relative tolerance ``REL_TOL``).
 
-    def __init__(self, limits: JointLimits) -> None:
+    Args:
+        limits: the hardware limits.
+        jitter: slack [s] added to the real time since the previous setpoint left (the
+            timing jitter of a sent setpoint; see the module docstring).
+    """
+
+    def __init__(self, limits: JointLimits, jitter: float = 0.0) -> None:
+        if not (math.isfinite(jitter) and jitter >= 0.0):
+            raise ValueError(f"stream_jitter must be a non-negative time [s], got {jitter!r}")
+        self.jitter = float(jitter)
         self.limits = limits
         self._pmin = limits.position_min - REL_TOL * (1 + np.abs(limits.position_min))
         self._pmax = limits.position_max + REL_TOL * (1 + np.abs(limits.position_max))
@@ -34,16 +51,19 @@ class SetpointGuard:
         """Forget the previous setpoint (a new stream starts)."""
         self._prev = None
 
-    def check(self, t: float, sp: MotionState) -> str | None:
-        """None if ``sp`` at time ``t`` may go out, else the reason (and it is counted)."""
-        reason = self._reason(t, sp)
+    def check(self, t: float, sp: MotionState, since_sent: float | None = None) -> str | None:
+        """None if ``sp`` at time ``t`` may go out, else the reason (and it is counted).
+
+        ``since_sent``: real time [s] since the previous setpoint left (None: unknown, the
+        stamps alone measure the elapsed time)."""
+        reason = self._reason(t, sp, since_sent)
         if reason is None:
             self._prev = (t, sp)
         else:
             self.failures += 1
         return reason
 
-    def _reason(self, t: float, sp: MotionState) -> str | None:
+    def _reason(self, t: float, sp: MotionState, since_sent: float | None) -> str | None:
         p, v, a = sp
         names = self.limits.names
         for label, x in (("position", p), ("velocity", v), ("acceleration", a)):
@@ -73,6 +93,8 @@ class SetpointGuard:
         # its spacing (2.4e-7 s at today's epoch, 1e-4 of a 2 ms tick): the steps are
         # allowed over dt plus two spacings, or a plan at exactly its limit fails here.
         span = dt + 2.0 * float(np.spacing(abs(t)))
+        if since_sent is not None:
+            span = min(span, max(0.0, since_sent) + self.jitter)
         for label, step, bound in (
                 ("position", np.abs(p - p0), self._v * span + slack),
                 ("velocity", np.abs(v - v0), self._a * span + slack),
@@ -81,5 +103,6 @@ class SetpointGuard:
             if bad.any():
                 i = int(np.argmax(bad))
                 return (f"setpoint {label} jumps by {step[i]:.6g} on joint '{names[i]}' in "
-                        f"{dt * 1e3:.3f} ms (at most {bound[i]:.6g} allowed)")
+                        f"{dt * 1e3:.3f} ms of stamps, {span * 1e3:.3f} ms judged (at most "
+                        f"{bound[i]:.6g} allowed)")
         return None

@@ -23,7 +23,8 @@ from pathlib import Path
 from typing import Any, ClassVar, Iterable, Mapping, Sequence
 
 import numpy as np
-import yaml
+
+from .text_files import TextFileError, load_yaml, read_text
 
 FIELDS = ("position_min", "position_max", "velocity_max", "acceleration_max", "jerk_max")
 
@@ -204,19 +205,16 @@ class JointLimits:
         """
         path = Path(path)
         try:
-            text = path.read_text()
-        except OSError as exc:
-            raise LimitsError(f"cannot read limits file '{path}': {exc.strerror}") from None
-        except UnicodeDecodeError as exc:
-            raise LimitsError(f"{path}: not a UTF-8 text file ({exc.reason} at byte "
-                              f"{exc.start})") from None
+            text = read_text(path, "limits file")
+        except TextFileError as exc:
+            raise LimitsError(str(exc)) from None
         if path.suffix.lower() in (".urdf", ".xml") or text.lstrip().startswith("<"):
             dyn = Path(dynamics) if dynamics else path.with_name(path.stem + ".limits.yaml")
             return cls.from_urdf_string(text, dyn, source=str(path), joints=joints)
         try:
-            data = yaml.safe_load(text)
-        except yaml.YAMLError as exc:
-            raise LimitsError(f"{path}: not valid YAML: {exc}") from None
+            data = load_yaml(text, str(path))
+        except TextFileError as exc:
+            raise LimitsError(str(exc)) from None
         limits = cls.from_mapping(data, source=str(path))
         if not joints:
             return limits
@@ -323,16 +321,10 @@ def _dynamics_mapping(dynamics: str | Path | Mapping[str, Any], source: str
     else:
         dyn_source = str(dynamics)
         try:
-            dyn = yaml.safe_load(Path(dynamics).read_text())
-        except OSError as exc:
-            raise LimitsError(
-                f"{source}: a URDF has no acceleration/jerk limits; cannot read the limits "
-                f"YAML '{dynamics}' beside it: {exc.strerror}") from None
-        except yaml.YAMLError as exc:
-            raise LimitsError(f"{dynamics}: not valid YAML: {exc}") from None
-        except UnicodeDecodeError as exc:
-            raise LimitsError(f"{dynamics}: not a UTF-8 text file ({exc.reason} at byte "
-                              f"{exc.start})") from None
+            dyn = load_yaml(read_text(dynamics, "limits YAML"), dyn_source)
+        except TextFileError as exc:
+            raise LimitsError(f"{source}: a URDF has no acceleration/jerk limits; {exc}"
+                              ) from None
     if not isinstance(dyn, Mapping) or not isinstance(dyn.get("joints"), Mapping):
         raise LimitsError(f"{dyn_source}: expected a top-level 'joints:' mapping")
     return dyn, dyn_source

@@ -38,6 +38,7 @@ import numpy as np
 import yaml
 
 from .limits import JointLimits
+from .text_files import TextFileError, read_text, yaml_problem
 from .reference import ReferenceTrajectory, TrajectoryError
 from .timing import DEFAULT_FRACTION, TimingError, time_parameterise
 
@@ -123,7 +124,7 @@ def load_yaml(path: str | Path, *, joints: Sequence[str] | None = None,
         root = yaml.compose(text, Loader=yaml.SafeLoader)
         data = yaml.safe_load(text)
     except yaml.YAMLError as exc:
-        raise ReferenceFileError(f"{p}: not valid YAML: {exc}") from None
+        raise ReferenceFileError(f"{p}: not valid YAML: {yaml_problem(exc)}") from None
     if not isinstance(data, dict):
         raise ReferenceFileError(f"{p}: expected a mapping with 'joints' and 'points' or "
                                  "'waypoints'")
@@ -190,12 +191,9 @@ def _yaml_number(path: Path, label: str, what: str, value: Any) -> float:
 # ---------------------------------------------------------------------- shared checks
 def _read_text(path: Path) -> str:
     try:
-        return path.read_text()
-    except OSError as exc:
-        raise ReferenceFileError(f"cannot read reference file '{path}': {exc.strerror}") from None
-    except UnicodeDecodeError as exc:
-        raise ReferenceFileError(f"{path}: not a UTF-8 text file ({exc.reason} at byte "
-                                 f"{exc.start})") from None
+        return read_text(path, "reference file")
+    except TextFileError as exc:
+        raise ReferenceFileError(str(exc)) from None
 
 
 def _check_samples(src: str, names: Sequence[str], times: Sequence[float] | None,

@@ -24,6 +24,18 @@ decision starts from that state (on its braking tail, or at rest at its end), an
 late decisions reach the watchdog's ``max_overruns`` it latches an ``overruns`` stop that
 brakes along the same continuation and needs a reset. Nothing ever jumps.
 
+Stream timing (`set_stream_timing`, the live node): the stream tells `sample` when each
+setpoint is sampled and `sent` when it actually left, on a monotonic clock. A setpoint may
+advance along the plan at most by the real time since the previous one left plus the
+jitter: after a stall while the stream was idle, the stream skips ahead along the plan (the
+real time passed, the late decisions were braked as above); when the previous setpoint left
+late instead (the stream stalled between sampling and sending it), the plan is re-timed:
+the stream's time runs ahead of the plan time by the stall (`stream_lag`), the next setpoint
+is the plan's next tick after the one sent, and it is stamped with the stream time. The
+plan then follows the reference that much later; more lag than the reference window holds
+ends in the reference-stale controlled stop, and a reset at rest drops the lag. With the plan-ahead output the driver follows
+the sent plan on its own, so the plan is never re-timed.
+
 Thread-safety: `sample` (stream thread) and `decide` (decision thread) share a lock held
 only while committing or sampling, never while the policy runs.
 """
@@ -116,6 +128,8 @@ class StreamingSession:
         self.guard = SetpointGuard(limits)
         self._lock = threading.Lock()
         self._trips_seen = 0
+        self._feedback_last: np.ndarray | None = None   # values of the last feedback checked
+        self._feedback_changed = -math.inf               # when they last changed (or rested)
         self.late_decisions = 0
         self.shadow_policy = shadow
         self.shadow: DecisionCycle | None = None
@@ -125,6 +139,11 @@ class StreamingSession:
         self.last_plan: PlanKnots | None = None
         self._grid: PlanGrid | None = None
         self._tail: list[np.ndarray] = []     # sent braking continuation, not yet committed
+        self._tick: float | None = None       # stream tick [s] (None: never re-time)
+        self._lag = 0.0                       # stream time - plan time [s] (re-timing)
+        self._last_t: float | None = None     # stream time of the last setpoint passed
+        self._sent_clock: float | None = None  # monotonic time it left [s]
+        self.retimes = 0
 
     def enable_plan_ahead(self, lead: float) -> None:
         """Build a plan message after every commit (`last_plan`) and, with a clock given to
@@ -134,6 +153,21 @@ class StreamingSession:
             raise ValueError(f"plan_lead must be within [0, decision_period = {self.period:g}) "
                              f"s, got {lead:g}")
         self.plan_lead = lead
+
+    def set_stream_timing(self, rate: float, jitter: float) -> None:
+        """The live stream's tick rate [Hz] and send jitter [s]: `sample` with a clock then
+        never advances the plan by more than the real time since the last setpoint left
+        plus ``jitter``, re-timing the plan instead (see the module docstring); the guard
+        judges with the same slack."""
+        if not (math.isfinite(rate) and rate > 0.0):
+            raise ValueError(f"stream_rate must be positive, got {rate!r}")
+        self.guard = SetpointGuard(self.limits, jitter)
+        self._tick = 1.0 / float(rate)
+
+    @property
+    def stream_lag(self) -> float:
+        """How far the stream's time runs ahead of the plan time [s] after re-timing."""
+        return self._lag
 
     # ------------------------------------------------------------------ lifecycle
     @property
@@ -148,6 +182,7 @@ class StreamingSession:
             self.shadow_plan.clear()
             self.shadow = None
             self.guard.reset()
+            self._lag, self._last_t, self._sent_clock = 0.0, None, None
             self.cycle.begin(t, measured)
             first = self.cycle.commit_braking()
             self.cycle.stats.overruns -= 1  # the holding segment is planned, not late
@@ -158,14 +193,23 @@ class StreamingSession:
     def stop(self, now: float, kind: str, message: str) -> Trip:
         """Latch a stop (external request, guard failure...); the cycle brakes to rest."""
         trip = self.watchdog.fire(kind, now, message)
-        self.cycle.request_stop()
+        self.request_stop()
         return trip
 
+    def request_stop(self) -> None:
+        """Brake to rest from the next decision on (no trip latched: deactivation, process
+        shutdown). Takes the lock the stream's braking commits take, so it never lands
+        between a late segment's commit and its mode change."""
+        with self._lock:
+            self.cycle.request_stop()
+
     def new_trips(self) -> list[Trip]:
-        """Watchdog events since the previous call (for logging and reactions)."""
-        events = self.watchdog.events[self._trips_seen:]
-        self._trips_seen = len(self.watchdog.events)
-        return events
+        """Watchdog events since the previous call (for logging and reactions; the latest
+        `watchdog.EVENTS_KEPT` of them when more came)."""
+        kept = self.watchdog.events
+        fresh = min(self.watchdog.total_events - self._trips_seen, len(kept))
+        self._trips_seen = self.watchdog.total_events
+        return list(kept)[len(kept) - fresh:] if fresh > 0 else []
 
     def reset(self, persisting: list[tuple[str, str]]) -> tuple[bool, str]:
         """Reset the latched stop unless a cause persists or the arm is still braking."""
@@ -173,8 +217,21 @@ class StreamingSession:
             return False, "reset refused: still braking to rest"
         ok, msg = self.watchdog.reset(persisting)
         if ok:
+            with self._lock:
+                self._drop_lag()
             self.cycle.reset()
         return ok, msg
+
+    def _drop_lag(self) -> None:
+        """At rest, move the plan up to the stream's time: the re-timing lag goes (the arm
+        holds one position, the same at either time), so the approach after a reset aligns
+        the reference at the stream's time again (the lock is held)."""
+        if self._lag == 0.0 or not self.cycle.at_rest:
+            return
+        self.plan.shift(self._lag)
+        self.shadow_plan.shift(self._lag)
+        self.cycle.t += self._lag
+        self._lag = 0.0
 
     def reset_on(self, now: float, inputs: SessionInputs) -> tuple[bool, str]:
         """Reset (the adapter's ``~/reset``) unless an input fault persists on the current
@@ -219,15 +276,47 @@ class StreamingSession:
         self.cycle.set_stages(stage, approach_stage)
 
     # ------------------------------------------------------------------ stream side
-    def sample(self, t: float) -> tuple[MotionState, str | None]:
-        """Setpoint at nominal time ``t`` and the guard's verdict (None = fine)."""
+    def sample(self, t: float, clock: float | None = None) -> tuple[MotionState, str | None]:
+        """Setpoint at nominal stream time ``t`` and the guard's verdict (None = fine).
+
+        ``clock``: monotonic time [s] of this sample; with `set_stream_timing` and the time
+        the previous setpoint left (`sent`), the plan is re-timed when ``t`` is further
+        ahead of the previous setpoint than the real time since it left plus the jitter
+        (see the module docstring)."""
+        since = None
         with self._lock:
-            self._fill_late(t, t)
-            sp = self.plan.sample(t)
-        reason = self.guard.check(t, sp)
-        if reason is not None and not self.watchdog.tripped:
+            if clock is not None and self._sent_clock is not None:
+                since = clock - self._sent_clock
+                self._retime(t, since)
+            tp = t - self._lag
+            self._fill_late(tp, t)
+            sp = self.plan.sample(tp)
+        reason = self.guard.check(t, sp, since)
+        if reason is None:
+            self._last_t = t
+        elif not self.watchdog.tripped:
             self.stop(t, "setpoint_guard", reason)
         return sp, reason
+
+    def sent(self, clock: float) -> None:
+        """The setpoint that last passed `sample` left at monotonic time ``clock`` [s]."""
+        self._sent_clock = clock
+
+    def _retime(self, t: float, since: float) -> None:
+        """Shift the stream time ahead of the plan time so that ``t`` samples the plan at
+        most the real time ``since`` the last setpoint left (plus the jitter) after it, in
+        whole ticks and at least one (the lock is held)."""
+        if self._tick is None or self._last_t is None or self.plan_lead is not None:
+            return
+        allowed = max(0.0, since) + self.guard.jitter
+        step = t - self._last_t
+        if step <= allowed + 1e-9:
+            return
+        ticks = max(1, math.floor(allowed / self._tick + 1e-9))
+        shift = round((step - ticks * self._tick) / self._tick) * self._tick
+        if shift > 0.0:
+            self._lag += shift
+            self.retimes += 1
 
     def commit_late(self, t: float) -> None:
         """Commit the braking segments of every decision that was late by ``t`` (the plan
@@ -243,15 +332,15 @@ class StreamingSession:
             if self.shadow is None or self.shadow_plan.empty:
                 return None
             try:
-                return self.shadow_plan.sample(t)
+                return self.shadow_plan.sample(t - self._lag)
             except StreamError:
                 return None
 
     def commanded_at(self, t: float) -> MotionState | None:
-        """What the stream commanded at time ``t`` (None outside the kept plan)."""
+        """What the stream commanded at stream time ``t`` (None outside the kept plan)."""
         with self._lock:
             try:
-                return self.plan.sample(t)
+                return self.plan.sample(t - self._lag)
             except StreamError:
                 return None
 
@@ -260,7 +349,7 @@ class StreamingSession:
         (the next decision is needed before the plan runs out). Follows the plan's own
         segment times, so rounding in long runs never eats the one-period margin."""
         with self._lock:
-            return not self.plan.empty and self.plan.end - t <= self.period + 1e-9
+            return not self.plan.empty and self.plan.end - (t - self._lag) <= self.period + 1e-9
 
     # ------------------------------------------------------------------ decision side
     @property
@@ -275,8 +364,10 @@ class StreamingSession:
 
     def input_faults(self, now: float, inputs: SessionInputs, needs_feedback: bool
                      ) -> list[tuple[str, str]]:
-        """(kind, reason) of every input fault present now (staleness, following error)."""
+        """(kind, reason) of every input fault present now (staleness, frozen feedback,
+        following error)."""
         ages = InputAges(
+            feedback_unchanged=self._feedback_unchanged(now, inputs),
             joint_states=_age(now, inputs.joint_received),
             feedback=_age(now, inputs.feedback_valid_since),
             reference=_age(now, inputs.window_received),
@@ -292,6 +383,19 @@ class StreamingSession:
                 if reason is not None:
                     faults.append(("following_error", reason))
         return faults
+
+    def _feedback_unchanged(self, now: float, inputs: SessionInputs) -> float:
+        """How long the feedback values have stayed bit-identical while the arm moved (a
+        republished copy of a dead sensor's last values is not fresh feedback)."""
+        fb, state = inputs.feedback, self.cycle.state
+        moving = state is not None and bool(np.any(state.velocity != 0.0))
+        values = None if fb is None else np.asarray(fb.values, float)
+        last = self._feedback_last
+        if (values is None or not moving or last is None or values.shape != last.shape
+                or not np.array_equal(values, last, equal_nan=True)):
+            self._feedback_changed = now
+        self._feedback_last = None if values is None else values.copy()
+        return max(0.0, now - self._feedback_changed)
 
     def _commanded_before(self, stamps: float | np.ndarray) -> np.ndarray | None:
         """Commanded positions ``command_latency`` before the measurement time of each
@@ -327,7 +431,7 @@ class StreamingSession:
         if deadline:
             with self._lock:
                 self._fill_late(now + self.plan_lead, now)
-        if cycle.state is None or cycle.t - now > self.period + 1e-6:
+        if cycle.state is None or cycle.t - (now - self._lag) > self.period + 1e-6:
             return None  # already decided ahead (a duplicate trigger)
         following = cycle.mode in ("approaching", "following")
         if following and not self.watchdog.tripped:
@@ -378,7 +482,7 @@ class StreamingSession:
             reason = self.watchdog.overrun(True)
             if reason is not None and not self.watchdog.tripped:
                 self.watchdog.fire("overruns", now, reason)
-                self.cycle.request_stop()
+                self.cycle.request_stop()   # the lock is held
 
     def _step_shadow(self, main: Decision, inputs: SessionInputs) -> None:
         if self.shadow_policy is None:

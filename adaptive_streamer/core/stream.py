@@ -7,12 +7,16 @@ commanded at time t" for following-error monitoring with a driver latency.
 
 `StreamClock` turns a wake-up time into the tick index to publish (nominal time
 ``t0 + i / rate``) and counts ticks that were skipped because a wake-up came late.
+
+`StreamTimeline` is the live stream's time: ROS time read once at an anchor, carried
+forward on the monotonic clock, so a step of the system clock neither stops nor bunches the
+stream (its stamps stay ROS time as of the anchor).
 """
 from __future__ import annotations
 
 import math
 from collections import deque
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -47,6 +51,11 @@ class CommandPlan:
     def clear(self) -> None:
         """Forget every segment."""
         self._segments.clear()
+
+    def shift(self, dt: float) -> None:
+        """Move every kept segment ``dt`` seconds later."""
+        self._segments = deque((replace(s, start=s.start + dt) for s in self._segments),
+                               maxlen=self._segments.maxlen)
 
     def commit(self, segment: Segment) -> None:
         """Append a segment; it must start where the previous one ends."""
@@ -141,3 +150,23 @@ class StreamClock:
             self.skipped += i - self.last_index - 1
         self.last_index = i
         return i
+
+
+class StreamTimeline:
+    """Seconds of ROS time carried forward on a monotonic clock from an anchor.
+
+    Args:
+        ros_ns: ROS time at the anchor [ns].
+        monotonic_ns: the monotonic clock at the same instant [ns] (``time.monotonic_ns``).
+    """
+
+    def __init__(self, ros_ns: int, monotonic_ns: int) -> None:
+        self._ros_ns, self._mono_ns = int(ros_ns), int(monotonic_ns)
+
+    def ns(self, monotonic_ns: int) -> int:
+        """The timeline at monotonic time ``monotonic_ns`` [ns], in integer nanoseconds."""
+        return self._ros_ns + (int(monotonic_ns) - self._mono_ns)
+
+    def at(self, monotonic_ns: int) -> float:
+        """The timeline at monotonic time ``monotonic_ns``, in seconds."""
+        return self.ns(monotonic_ns) * 1e-9

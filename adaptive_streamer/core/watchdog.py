@@ -24,6 +24,8 @@ overruns            too many late decisions in a window       ``max_overruns`` i
                                                               ``overrun_window`` decisions
 external_stop       ``~/stop`` service or the stop topic      (always on)
 setpoint_guard      an outgoing setpoint failed the guard     (always on)
+stream_fault        an error in the stream thread's loop or   (always on)
+                    tick, or in the process's executor
 ==================  ========================================  ===========================
 """
 from __future__ import annotations
@@ -36,7 +38,9 @@ from typing import Any
 import numpy as np
 
 KINDS = ("deviation", "following_error", "joint_states_stale", "feedback_stale",
-         "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard")
+         "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard",
+         "stream_fault")
+EVENTS_KEPT = 1000   # watchdog events kept (the latest); `Watchdog.total_events` counts all
 PERSISTENT = ("following_error", "joint_states_stale", "feedback_stale", "reference_stale",
               "external_stop")
 
@@ -58,6 +62,7 @@ class WatchdogConfig:
     reference_timeout: float = 0.25
     max_overruns: int = 3
     overrun_window: int = 20
+    feedback_frozen: float = 0.0   # feedback values unchanged this long while moving: stale (0: off)
 
     def __post_init__(self) -> None:
         for name in ("deviation_joint", "deviation_norm", "following_error",
@@ -68,6 +73,9 @@ class WatchdogConfig:
         if not (math.isfinite(self.command_latency) and self.command_latency >= 0):
             raise WatchdogError(f"watchdog parameter 'command_latency' must be >= 0, "
                                 f"got {self.command_latency!r}")
+        if not (math.isfinite(self.feedback_frozen) and self.feedback_frozen >= 0):
+            raise WatchdogError(f"watchdog parameter 'feedback_frozen' must be >= 0 (0 "
+                                f"disables the check), got {self.feedback_frozen!r}")
         if int(self.max_overruns) < 1 or int(self.overrun_window) < int(self.max_overruns):
             raise WatchdogError("watchdog parameters need 1 <= max_overruns <= overrun_window, got "
                                 f"{self.max_overruns} and {self.overrun_window}")
@@ -92,6 +100,8 @@ class InputAges:
     reference: float = math.inf
     reference_margin: float = math.inf  # window end minus the last time the horizon needs
     feedback_needed: bool = False
+    feedback_unchanged: float = 0.0     # how long the feedback values stayed identical while
+    #                                     the arm moved
 
 
 class Watchdog:
@@ -101,7 +111,8 @@ class Watchdog:
         self.config = config
         self.joint_names = joint_names
         self.trip: Trip | None = None
-        self.events: list[Trip] = []
+        self.events: list[Trip] = []   # the latest EVENTS_KEPT, oldest first
+        self.total_events = 0
         self.counts = {k: 0 for k in KINDS}
         self.stop_requested: str | None = None
         self._overruns: deque[bool] = deque(maxlen=int(config.overrun_window))
@@ -120,6 +131,9 @@ class Watchdog:
         event = Trip(kind, time, message, values)
         self.counts[kind] += 1
         self.events.append(event)
+        if len(self.events) > EVENTS_KEPT:
+            del self.events[0]
+        self.total_events += 1
         if self.trip is None:
             self.trip = event
         return event
@@ -165,6 +179,11 @@ class Watchdog:
         if ages.feedback_needed and ages.feedback > c.feedback_timeout:
             out.append(("feedback_stale", _age_text("feedback", ages.feedback, "feedback_timeout",
                                                     c.feedback_timeout)))
+        elif (ages.feedback_needed and c.feedback_frozen > 0.0
+              and ages.feedback_unchanged > c.feedback_frozen):
+            out.append(("feedback_stale", f"feedback frozen: its values have not changed for "
+                        f"{ages.feedback_unchanged:.3f} s while the arm moves (over "
+                        f"feedback_frozen {c.feedback_frozen:g} s)"))
         if ages.reference > c.reference_timeout:
             out.append(("reference_stale", _age_text("reference/window", ages.reference,
                                                      "reference_timeout", c.reference_timeout)))

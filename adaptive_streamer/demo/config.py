@@ -1,4 +1,11 @@
-"""The demo's effective configuration: params file, policy card, limits, seed, notes."""
+"""The demo's effective configuration: params file, policy card, limits, seed, output, notes.
+
+``--output`` picks the pair the adapter and the simulated driver use (`OUTPUT_PAIRS`):
+``stream``, the params file's position output streamed at the stream rate to the driver's
+``position`` interface; ``plan``, the adapter's plan-ahead output (``outputs: [plan]``,
+``plan.type: plan`` on ``driver/plan``) to the driver's ``plan`` interface. In both the
+driver publishes ``driver/followed`` (the noise-free motion it follows).
+"""
 from __future__ import annotations
 
 import argparse
@@ -21,6 +28,20 @@ from ..share import KIND_CARDS, demo_file, expand
 
 REFERENCE_ONLY_CARD = "policy_reference_only.yaml"
 SLOW_DOWN_FRACTION = 0.8
+PLAN_OUTPUT = {"type": "plan", "topic": "driver/plan"}
+
+
+@dataclass(frozen=True)
+class OutputPair:
+    """What the adapter sends (its ``outputs`` list, each with its own parameters) and the
+    simulated driver's ``command_interface`` that takes it."""
+
+    adapter_outputs: dict[str, dict[str, str]] | None   # None: the params file's own
+    command_interface: str
+
+
+OUTPUT_PAIRS = {"stream": OutputPair(None, "position"),
+                "plan": OutputPair({"plan": PLAN_OUTPUT}, "plan")}
 
 
 class DemoError(RuntimeError):
@@ -41,6 +62,7 @@ class DemoConfig:
     reference: ReferenceTrajectory    # the pass as the reference server will play it
     stream_rate: float
     decision_period: float
+    output: str = "stream"            # key of OUTPUT_PAIRS
     notes: list[str] = field(default_factory=list)
 
     def write_params(self, path: Path) -> Path:
@@ -90,6 +112,21 @@ def _retarget(card: Path, kind: str, limits_file: Path, joints: tuple[str, ...],
     return out
 
 
+def _select_output(params: dict[str, Any], output: str) -> None:
+    """Set the adapter's outputs and the driver's interface for ``--output`` (in place)."""
+    if output not in OUTPUT_PAIRS:
+        raise DemoError(f"--output '{output}': expected one of {sorted(OUTPUT_PAIRS)}")
+    pair = OUTPUT_PAIRS[output]
+    adapter, driver = params["adapter"], params["sim_driver"]
+    if pair.adapter_outputs is not None:
+        for name in adapter.get("outputs", []):
+            adapter.pop(name, None)
+        adapter["outputs"] = list(pair.adapter_outputs)
+        adapter.update(copy.deepcopy(pair.adapter_outputs))
+    driver["command_interface"] = pair.command_interface
+    driver["publish_followed"] = True
+
+
 def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     """Resolve the demo options into a `DemoConfig` (files written into ``workdir``)."""
     notes: list[str] = []
@@ -135,10 +172,16 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     seed = int(args.seed) if args.seed is not None else int(params["edge_sensor"].get("seed", scenario.seed))
     params["edge_sensor"]["seed"] = seed
     params["sim_driver"]["seed"] = seed
+    _select_output(params, args.output)
+    lock = scenario.lock_on
+    if lock is not None and lock.feature in load_card(card).feedback_features:
+        ref.update({"start_condition": "lock_on", "lock_on.feature": lock.feature,
+                    "lock_on.tolerance": lock.tolerance, "lock_on.hold": lock.hold,
+                    "lock_on.timeout": lock.timeout, "lock_on.max_age": lock.max_age})
     problems = [p for kind, values in params.items()
                 for p in check_node_params(kind, values, "the demo's effective params")]
     if problems:
         raise DemoError("\n".join(problems))
     return DemoConfig(params, card, label, limits_file, limits, seed,
-                      played.duration, played, rate, period, notes)
+                      played.duration, played, rate, period, args.output, notes)
 

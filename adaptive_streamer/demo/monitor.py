@@ -68,6 +68,9 @@ class Recorded:
     joint_states: list[tuple[float, list]] = field(default_factory=list)
     decisions: list[Decision] = field(default_factory=list)
     readings: list[tuple[float, float, float]] = field(default_factory=list)
+    # driver/followed: (stamp [int ns], positions, velocities, accelerations; the last two
+    # empty with the stream output)
+    followed: list[tuple[int, list, list, list]] = field(default_factory=list)
     diagnostics: dict[str, dict[str, str]] = field(default_factory=dict)
     diag_messages: dict[str, str] = field(default_factory=dict)
     diag_counts: dict[str, int] = field(default_factory=dict)   # messages per status name
@@ -86,6 +89,7 @@ class DemoMonitor(Node):
         q = reliable_qos(1000)
         self.create_subscription(JointTrajectory, "setpoints", self._on_setpoint, q)
         self.create_subscription(JointState, "joint_states", self._on_joint_state, q)
+        self.create_subscription(JointTrajectory, "driver/followed", self._on_followed, q)
         self.create_subscription(Float64MultiArray, "adapter/decisions", self._on_decision, q)
         self.create_subscription(PointStamped, "edge_sensor/offset", self._on_reading, 50)
         self.create_subscription(DiagnosticArray, "/diagnostics", self._on_diag, 50)
@@ -114,6 +118,24 @@ class DemoMonitor(Node):
             except (ValueError, IndexError):
                 return
             self.data.joint_states.append((stamp_to_sec(msg.header.stamp), q))
+
+    def _on_followed(self, msg: JointTrajectory) -> None:
+        if not (self.recording and msg.points):
+            return
+        names = list(msg.joint_names)
+        try:
+            order = [names.index(j) for j in self.joints]
+        except ValueError:
+            return
+        pt = msg.points[0]
+        stamp = msg.header.stamp.sec * 1_000_000_000 + msg.header.stamp.nanosec
+        try:
+            self.data.followed.append((stamp, [pt.positions[i] for i in order],
+                                       [pt.velocities[i] for i in order] if pt.velocities else [],
+                                       [pt.accelerations[i] for i in order]
+                                       if pt.accelerations else []))
+        except IndexError:
+            return
 
     def _on_decision(self, msg: Float64MultiArray) -> None:
         if self.recording:

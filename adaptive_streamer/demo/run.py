@@ -1,12 +1,16 @@
 """``adaptive-streamer demo``: one dispensing pass of the simulated cell over real DDS.
 
-Processes: the cell (reference_server, sim_driver, edge_sensor, sensor_bridge) in one, the
-adapter in its own (so its stream timing is not shared with the simulator's), a recorder
-with ``--record``; this process observes and operates (`DemoMonitor`). Sequence: wait for
+Processes: the cell (reference_server, edge_sensor, sensor_bridge) in one, the simulated
+driver in its own (its 4 ms ticks are what ``driver/followed`` shows: sharing an executor
+with the cell, it ran a third to a half of them late, as catch-up ticks), the adapter in its
+own (so its stream timing is not shared with the simulator's), a recorder with
+``--record``; this process observes and operates (`DemoMonitor`). Sequence: wait for
 ``joint_states``, configure and activate the adapter (it approaches the start point), start
 the reference once the adapter follows, inject the requested faults, end when the pass is
-done and the arm at rest (or on ``--duration``, or after a watchdog stop), deactivate,
-stop everything; then compute the figures, write the report and print the summary.
+done and the arm at rest (or on ``--duration``, or after a watchdog stop, or once the
+followed motion is at rest after the adapter was killed), deactivate (not a killed
+adapter), stop everything; then compute the figures, write the report and print the
+summary. A suspended adapter is always resumed before the processes are stopped.
 """
 from __future__ import annotations
 
@@ -29,9 +33,11 @@ from ..safety import CAUTIONS
 from .config import DemoConfig, DemoError, build_config
 from .faults import JUMP_JOINT, JUMP_OFFSET, InjectionRecord, PlannedFault, plan_faults
 from ..nodes.recording_ready import RecordingNotReady, RecordingWatch
-from .options import FAULTS, OptionError, parse_injection
+from .followed import REST_VELOCITY as FOLLOWED_REST
+from .options import OptionError, describe, parse_injection
+from .process_faults import AdapterProcessFaults, ProcessFaultError
 
-CELL_NODES = ["reference_server", "sim_driver", "edge_sensor", "sensor_bridge"]
+CELL_NODES = ["reference_server", "edge_sensor", "sensor_bridge"]
 STARTUP_TIMEOUT = 30.0
 SETTLE = 0.5       # seconds at rest after the pass before ending
 REST_VELOCITY = 1e-4
@@ -52,8 +58,9 @@ def run_demo(args: argparse.Namespace) -> int:
         params_file = cfg.write_params(workdir / "params.yaml")
         faults = _plan(cfg, args, injections, params_file, workdir)
         for f in faults:
-            print(f"fault to inject at +{f.at:g} s: {f.fault} ({FAULTS[f.fault]}); expected "
-                  f"stop: {f.expected}{'; ' + f.note if f.note else ''}", flush=True)
+            name = f.fault + (f":{f.length:g}" if math.isfinite(f.length) else "")
+            print(f"fault to inject at +{f.at:g} s: {name} ({describe(f.fault, f.length)}); "
+                  f"expected stop: {f.expected}{'; ' + f.note if f.note else ''}", flush=True)
         return _run(cfg, args, faults, params_file, workdir)
     finally:
         shutil.rmtree(workdir, ignore_errors=True)
@@ -70,7 +77,8 @@ def _plan(cfg: DemoConfig, args: argparse.Namespace, injections: list,
         raise DemoError(f"the adapter would not configure: {exc}") from None
     run_end = cfg.reference_duration if args.duration is None \
         else min(float(args.duration), cfg.reference_duration)
-    return plan_faults(injections, setup, cfg.policy_card, cfg.reference, run_end, workdir)
+    return plan_faults(injections, setup, cfg.policy_card, cfg.reference, run_end, workdir,
+                       float(cfg.params["sim_driver"].get("command_timeout", 0.1)))
 
 
 def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
@@ -88,6 +96,8 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
     relay = any(f.fault == "reference_jump" for f in faults)
     monitor = DemoMonitor(joints, relay_windows=relay)
     monitor.start()
+    process_faults = AdapterProcessFaults(procs, lambda: monitor.get_clock().now().nanoseconds
+                                          * 1e-9)
     bar = None
     records = [InjectionRecord(f) for f in faults]
     status: dict[str, str] = {}
@@ -96,7 +106,8 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
         if args.record:
             watch = RecordingWatch(monitor, "/recorder")
             _start_recorder(procs, args.record, workdir, logs)
-        for name, group in (("cell", CELL_NODES), ("adapter", ["adapter"])):
+        for name, group in (("cell", CELL_NODES), ("driver", ["sim_driver"]),
+                            ("adapter", ["adapter"])):
             procs.start(NodeEntry(group[0], "", {}), params_file, group=group,
                         remaps=RELAY_REMAP if relay and name == "cell" else None,
                         stdout=(logs / f"{name}.log").open("w"), stderr=subprocess.STDOUT)
@@ -109,18 +120,22 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
         ok, msg = monitor.trigger("reference_server/start")
         if not ok:
             raise DemoError(f"reference_server/start refused: {msg}")
+        _wait_lock_on(monitor, cfg, msg)
         t_start = monitor.get_clock().now().nanoseconds * 1e-9
         limit = cfg.reference_duration + 5.0 if args.duration is None else float(args.duration)
         print(f"dispensing pass: {cfg.reference_duration:.1f} s with policy {cfg.policy_label}",
               flush=True)
         bar = _progress(cfg.reference_duration, args.no_progress)
-        t_end = _follow_pass(monitor, procs, cfg, records, t_start, limit, bar)
+        t_end = _follow_pass(monitor, procs, cfg, records, t_start, limit, bar,
+                             process_faults)
         if bar is not None:
             bar.close()
             bar = None
-        monitor.wait_fresh_status("adapter")
+        process_faults.release()
+        if not process_faults.crashed:   # a killed adapter answers nothing
+            monitor.wait_fresh_status("adapter")
         status = dict(monitor.adapter_status())   # the latched trip, before deactivating
-        if monitor.adapter.state(5.0) == "active":
+        if not process_faults.crashed and monitor.adapter.state(5.0) == "active":
             monitor.adapter.deactivate()
         monitor.recording = False
     except LifecycleClientError as exc:
@@ -128,6 +143,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
     finally:
         if bar is not None:
             bar.close()
+        process_faults.release()
         procs.stop()
         monitor.stop()
         monitor.destroy_node()
@@ -135,6 +151,8 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
     trip = status.get("trip", "none")
     after = f" after a {trip} stop nobody injected" if trip != "none" else ""
     for rec in records:
+        if rec.planned.fault == "adapter_stall" and math.isfinite(rec.time):
+            rec.ended = process_faults.resumed_at
         if not math.isfinite(rec.time) and not rec.note:
             rec.note = f"the run ended at +{t_end - t_start:.1f} s{after}, before the injection"
     return _report(cfg, monitor, args, t_start, t_end, records, status)
@@ -182,6 +200,23 @@ def _bring_up_adapter(monitor, procs: Processes, watch: RecordingWatch | None) -
         monitor.spin_for(0.5)
 
 
+def _wait_lock_on(monitor, cfg: DemoConfig, answer: str) -> None:
+    """With the scenario's lock-on, wait until the reference server has started the pass
+    (the correction settled) or says it could not (`DemoError` with its reason)."""
+    ref = cfg.params["reference_server"]
+    if ref.get("start_condition") != "lock_on":
+        return
+    print(f"lock-on: {answer}", flush=True)
+    state = lambda: monitor.reference_status().get("state", "")  # noqa: E731
+    timeout = float(ref["lock_on.timeout"]) + STARTUP_TIMEOUT
+    monitor.wait_for("lock-on", lambda: state() not in ("", "waiting", "locking"), timeout)
+    if state() != "running":
+        status = monitor.reference_status()
+        raise DemoError(f"the pass did not start: reference_server state '{state()}' "
+                        f"({status.get('lock_on', '')})")
+    print(f"locked on: {monitor.reference_status().get('lock_on', '')}", flush=True)
+
+
 def _alive(procs: Processes) -> bool:
     dead = procs.dead()
     if dead:
@@ -197,7 +232,8 @@ def _progress(total: float, disabled: bool):
 
 
 def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, records: list[InjectionRecord],
-                 t_start: float, limit: float, bar) -> float:
+                 t_start: float, limit: float, bar, process_faults: AdapterProcessFaults
+                 ) -> float:
     pending = list(records)
     rest_since = None
     stopped_at = None
@@ -208,13 +244,18 @@ def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, records: list[Injec
         elapsed = now - t_start
         mode = monitor.last_mode()
         while pending and elapsed >= pending[0].planned.at:
-            _inject(monitor, pending.pop(0), mode, now)
+            _inject(monitor, pending.pop(0), mode, now, process_faults)
         if bar is not None:
             bar.n = round(min(elapsed, cfg.reference_duration), 1)
             bar.set_postfix_str(mode)
             bar.refresh()
-        at_rest = bool(monitor.data.setpoints) and \
-            max(abs(x) for x in monitor.data.setpoints[-1][3]) < REST_VELOCITY
+        if process_faults.crashed:   # no setpoints any more: the arm as the driver moves it
+            mode = "crashed"
+            at_rest = _followed_at_rest(monitor)
+            stopped_at = stopped_at or now
+        else:
+            at_rest = bool(monitor.data.setpoints) and \
+                max(abs(x) for x in monitor.data.setpoints[-1][3]) < REST_VELOCITY
         finished = monitor.reference_status().get("state") == "finished"
         if mode in ("stopping", "stopped") and stopped_at is None:
             stopped_at = now
@@ -228,15 +269,38 @@ def _follow_pass(monitor, procs: Processes, cfg: DemoConfig, records: list[Injec
             return now
 
 
-def _inject(monitor, rec: InjectionRecord, mode: str, now: float) -> None:
+def _followed_at_rest(monitor) -> bool:
+    """Whether the last two driver/followed ticks are at rest (by their velocities, or by
+    their positions with the stream output)."""
+    rows = monitor.data.followed[-2:]
+    if len(rows) < 2:
+        return False
+    (t0, p0, _, _), (t1, p1, v1, _) = rows
+    if v1:
+        return max(abs(x) for x in v1) < FOLLOWED_REST
+    dt = (t1 - t0) * 1e-9
+    return dt > 0 and max(abs(b - a) for a, b in zip(p0, p1)) / dt < FOLLOWED_REST
+
+
+def _inject(monitor, rec: InjectionRecord, mode: str, now: float,
+            process_faults: AdapterProcessFaults) -> None:
     """Inject ``rec``'s fault unless the adapter has already stopped; note what happened."""
     f = rec.planned
     if mode in ("stopping", "stopped"):
         rec.note = f"the adapter was already {mode} (see the watchdog events)"
         print(f"\nnot injecting {f.fault}: {rec.note}", file=sys.stderr, flush=True)
         return
-    print(f"\ninjecting {f.fault} at +{f.at:g} s: {FAULTS[f.fault]}", flush=True)
+    print(f"\ninjecting {f.fault} at +{f.at:g} s: {describe(f.fault, f.length)}", flush=True)
     rec.time = now
+    if f.fault in ("adapter_stall", "adapter_crash"):
+        try:
+            rec.time = (process_faults.stall(f.length) if f.fault == "adapter_stall"
+                        else process_faults.crash())
+        except ProcessFaultError as exc:
+            rec.time = math.nan
+            rec.note = str(exc)
+            print(f"warning: could not inject {f.fault}: {exc}", file=sys.stderr)
+        return
     if f.fault == "feedback_dropout":
         ok = monitor.set_param("edge_sensor", "dropout", True)
     elif f.fault == "joint_state_stall":
@@ -278,7 +342,8 @@ def _report(cfg: DemoConfig, monitor, args: argparse.Namespace, t_start: float,
     t_ref, e_ref = _reference_only(cfg, window[1] - window[0])
     summary = summarise(series, cfg.limits, panel, cfg.stream_rate, window, e_ref,
                         cfg.policy_label, cfg.seed, monitor.adapter_status(), cfg.notes,
-                        outcomes(records, status, series.sp_t, series.sp_v))
+                        outcomes(records, status, series.sp_t, series.sp_v, series.followed,
+                                 cfg.limits))
     out = Path(args.report)
     out.mkdir(parents=True, exist_ok=True)
     plots = [] if args.no_plots else _plots(cfg, series, panel, window, t_ref, e_ref, out)

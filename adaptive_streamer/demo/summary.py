@@ -12,6 +12,7 @@ from ..sim.metrics import lateral_error
 from ..sim.panel import Panel
 from ..core.stream_metrics import StreamReport, check_stream, period_stats, time_resolution_of
 from .faults import FaultOutcome
+from .followed import FollowedCheck, FollowedMotion, check_followed, followed_motion
 from .monitor import Recorded
 
 
@@ -48,6 +49,7 @@ class DemoSummary:
     adapter_diag: dict[str, str] = field(default_factory=dict)
     pass_window: tuple[float, float] = (math.nan, math.nan)
     faults: list[FaultOutcome] = field(default_factory=list)
+    followed: FollowedCheck | None = None
 
     @property
     def improvement(self) -> float:
@@ -67,6 +69,7 @@ class Series:
     js_t: np.ndarray
     js_q: np.ndarray
     decisions: list[Decision]
+    followed: FollowedMotion
 
     @staticmethod
     def of(data: Recorded, n: int) -> "Series":
@@ -79,7 +82,24 @@ class Series:
                 else np.zeros((0, n))
         return Series(np.array([s[0] for s in sp]), np.array([s[1] for s in sp]),
                       arr(sp, 2), arr(sp, 3), arr(sp, 4),
-                      np.array([j[0] for j in js]), arr(js, 1), list(data.decisions))
+                      np.array([j[0] for j in js]), arr(js, 1), list(data.decisions),
+                      _followed(data.followed, n))
+
+
+def _followed(rows: list[tuple[int, list, list, list]], n: int) -> FollowedMotion:
+    """The followed motion from the monitor's rows (one per driver tick, in stamp order;
+    a repeated stamp is kept once). Ticks without velocities and accelerations among ticks
+    with them (the plan output before its first plan) get NaN there."""
+    by_stamp = {r[0]: r for r in sorted(rows, key=lambda r: r[0])}
+    rows = list(by_stamp.values())
+    t = np.array([r[0] for r in rows], dtype=np.int64)
+    p = np.array([r[1] for r in rows], float).reshape(len(rows), n)
+    if not any(r[2] for r in rows):
+        return followed_motion(t, p, None, None)
+    nan = [math.nan] * n
+    v = np.array([r[2] or nan for r in rows], float)
+    a = np.array([r[3] or nan for r in rows], float)
+    return followed_motion(t, p, v, a)
 
 
 def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
@@ -102,9 +122,10 @@ def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
     if adapter_diag.get("trip", "none") != "none" and not events:
         events.append((_num(adapter_diag.get("trip_time")), adapter_diag["trip"],
                        adapter_diag.get("trip_message", "")))
+    followed = check_followed(series.followed, limits) if series.followed.ticks else None
     return DemoSummary(policy, seed, adapted, ErrorFigures.of(reference_only_err), stream,
                        period_stats(series.sp_arrival, rate), decision_ms, events, notes,
-                       adapter_diag, pass_window, list(faults or []))
+                       adapter_diag, pass_window, list(faults or []), followed)
 
 
 def _pct(x: np.ndarray, q: float) -> float:
@@ -135,6 +156,7 @@ def format_summary(s: DemoSummary, limits: JointLimits) -> str:
                        ("|j|", st.peak_jerk)):
         if arr is not None:
             lines.append(f"  {label:8s}  " + "".join(f"{100 * x:7.1f}%" for x in arr))
+    lines.extend(_followed_lines(s.followed, limits))
     d = s.decision_ms
     lines.append(f"decision compute: policy p50 {d['policy_p50']:.3f} ms, p99 "
                  f"{d['policy_p99']:.3f} ms; whole cycle p50 {d['cycle_p50']:.3f} ms, p99 "
@@ -157,3 +179,30 @@ def format_summary(s: DemoSummary, limits: JointLimits) -> str:
     for note in s.notes:
         lines.append(f"note: {note}")
     return "\n".join(lines)
+
+
+FOLLOWED_HOW = {"messages": "v, a from its messages, jerk = change of a between ticks",
+                "differences": "v, a, jerk by finite differences of its positions at the "
+                               "tick stamps"}
+
+
+def _followed_lines(f: FollowedCheck | None, limits: JointLimits) -> list[str]:
+    """The followed-motion block: what the simulated driver actually followed (noise-free),
+    checked against the limits; not counted in the stream's violations."""
+    if f is None:
+        return ["followed motion (simulated driver, noise-free): none recorded"]
+    over = ", ".join(f"{k} {v}" for k, v in f.over.items() if v)
+    lines = [f"followed motion (what the simulated driver actually followed, noise-free; "
+             f"{FOLLOWED_HOW[f.source]}): {f.ticks} ticks over {f.duration:.1f} s, ticks over "
+             f"a limit: {f.ticks_over}{' (' + over + ')' if over else ''}",
+             "  joint     " + "".join(f"{n:>8s}" for n in limits.names)]
+    for label, arr in (("|v|", f.peak_velocity), ("|a|", f.peak_acceleration),
+                       ("|j|", f.peak_jerk)):
+        lines.append(f"  {label:8s}  " + "".join(_pct_cell(x) for x in arr))
+    return lines
+
+
+def _pct_cell(x: float) -> str:
+    if not math.isfinite(x):
+        return f"{'-':>8s}"
+    return f"{100 * x:7.1f}%" if x < 100 else f"{100 * x:7.0e}%"

@@ -55,6 +55,11 @@ class LatestInputs:
         """When the latest window message arrived (None: none yet)."""
         return self._window[0] if self._window is not None else None
 
+    @property
+    def feedback_received(self) -> float | None:
+        """When the latest feedback message arrived (None: none yet)."""
+        return self._feedback[0] if self._feedback is not None else None
+
     def window(self) -> WindowInput:
         """The latest window as a core `Window` (refused messages give ``error``)."""
         if self._window is None:

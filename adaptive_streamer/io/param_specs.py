@@ -270,6 +270,8 @@ _WATCHDOG_HELP = {
     "reference_timeout": "stop when the reference window is older [s]",
     "max_overruns": "stop after this many decision overruns ...",
     "overrun_window": "... within this many decisions",
+    "feedback_frozen": "stop when the feedback stays bit-identical this long while the arm "
+                       "moves [s] (0: off)",
 }
 
 
@@ -277,7 +279,7 @@ def _watchdog(key: str) -> Param:
     default = DEFAULTS[f"watchdog.{key}"]
     if key in ("max_overruns", "overrun_window"):
         return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1)
-    if key == "command_latency":
+    if key in ("command_latency", "feedback_frozen"):
         return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0)
     return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], **POSITIVE)
 
@@ -324,6 +326,10 @@ ADAPTER = NodeParams("adapter", (
        "distance [rad] at which the policy takes over", **POSITIVE),
     _p("approach_bandwidth", _N, DEFAULTS["approach_bandwidth"],
        "approach tracking bandwidth [rad/s]", **POSITIVE),
+    _p("stream_jitter", _N, DEFAULTS["stream_jitter"],
+       "timing jitter of a sent setpoint [s]: a setpoint advances along the plan at most "
+       "the real time since the previous one left plus this, else the plan is re-timed "
+       "(read at configure)", low=0.0),
     _p("plan_lead", _N, DEFAULTS["plan_lead"],
        "with a plan output: send each decision's plan at least this long before its "
        "instant, else drop it and follow the sent braking continuation [s]", low=0.0),
@@ -354,6 +360,13 @@ REFERENCE_SERVER = NodeParams("reference_server", (
     _ro("limit_fraction", _N, 0.8, "fraction of limits for timing/slow-down",
         low=0.0, low_open=True, high=1.0),
     _ro("max_gap", _N, 1.0, "largest gap between file samples [s]; 0: off", low=0.0),
+    _ro("start_condition", _S, "none", "'none' or 'lock_on' (start once the lock-on feature "
+        "settled)", choices=("none", "lock_on")),
+    _ro("lock_on.feature", _S, "", "feedback feature judged by lock-on"),
+    _ro("lock_on.tolerance", _N, 0.001, "settled |value| (feature unit)", **POSITIVE),
+    _ro("lock_on.hold", _N, 0.5, "settled for this long [s]", **POSITIVE),
+    _ro("lock_on.timeout", _N, 10.0, "lock-on timeout [s]", **POSITIVE),
+    _ro("lock_on.max_age", _N, 0.1, "longest reading gap [s]", **POSITIVE),
 ))
 
 _BRIDGE_QOS = ("sensor_data", "best_effort", "reliable", "transient_local")

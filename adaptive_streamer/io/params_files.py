@@ -7,6 +7,7 @@ from typing import Any, Mapping
 
 import yaml
 
+from ..core.text_files import yaml_problem
 from ..core.adapter_setup import SetupError
 from ..share import expand
 from .param_specs import flatten
@@ -24,7 +25,8 @@ def load_params_file(path: str | Path, node: str = "adapter") -> dict[str, Any]:
     except OSError as exc:
         raise ParamsFileError(f"cannot read params file '{p}': {exc.strerror}") from None
     except yaml.YAMLError as exc:
-        raise ParamsFileError(f"params file '{p}': not valid YAML: {exc}") from None
+        raise ParamsFileError(f"params file '{p}': not valid YAML: {yaml_problem(exc)}"
+                              ) from None
     if not isinstance(data, Mapping):
         raise ParamsFileError(f"params file '{p}': expected a mapping of node names")
     base = node.strip("/").split("/")[-1]

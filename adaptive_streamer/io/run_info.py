@@ -28,18 +28,23 @@ from __future__ import annotations
 
 import datetime as _dt
 import hashlib
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
 
 import yaml
 
+from adaptive_streamer.core.limits import JointLimits, LimitsError
+from adaptive_streamer.core.policies.card import CardError, load_card
+from adaptive_streamer.core.text_files import TextFileError, load_yaml, read_text
+
 TOPIC = "adaptive_streamer/run_info"
 CUSTOM_KEY = "adaptive_streamer.run_info"
 FORMAT = 1
 FILE_PARAMS = ("limits_file", "limits_dynamics", "policy", "shadow_policy")
 CARD_PARAMS = ("policy", "shadow_policy")
-MAX_TEXT = 4 * 2 ** 20  # larger files are stored by hash only
+MAX_TEXT = 2 ** 20  # larger files are stored by hash only (the adapter refuses them anyway)
 
 
 class RunInfoError(ValueError):
@@ -63,43 +68,72 @@ class RunInfo:
         return (ns or "") + "/"
 
 
-def _file_entry(path: Path) -> dict[str, Any] | None:
+def _file_entry(path: Path, store_text: bool = True) -> dict[str, Any]:
+    """Hash and size of ``path`` and, with ``store_text``, its text (UTF-8 files of at most
+    `MAX_TEXT` bytes); ``missing`` when it cannot be read."""
     try:
-        data = path.read_bytes()
+        size = path.stat().st_size
+        data = path.read_bytes() if size <= MAX_TEXT else None
     except OSError:
-        return None
-    text: str | None
-    try:
-        text = data.decode("utf-8") if len(data) <= MAX_TEXT and b"\0" not in data else None
-    except UnicodeDecodeError:
-        text = None
-    return {"sha256": hashlib.sha256(data).hexdigest(), "size": len(data), "text": text}
+        return {"missing": True}
+    text: str | None = None
+    if store_text and data is not None and b"\0" not in data:
+        try:
+            text = data.decode("utf-8")
+        except UnicodeDecodeError:
+            text = None
+    digest = hashlib.sha256(data).hexdigest() if data is not None else _sha(path)
+    return {"sha256": digest, "size": size, "text": text}
 
 
-def _card_files(card: Path) -> list[Path]:
-    """Files a policy card names (limits, model), as absolute paths."""
+def _loaded_card(path: Path) -> tuple[list[Path], str]:
+    """The files a valid policy card makes the adapter load (the card, its limits and
+    model, absolute), or no files and the reason it is not a card the adapter loads."""
     try:
-        data = yaml.safe_load(card.read_text())
-    except (OSError, yaml.YAMLError, UnicodeDecodeError):
-        return []
-    if not isinstance(data, Mapping):
-        return []
-    return [(card.parent / data[k]).resolve() for k in ("limits", "model")
-            if isinstance(data.get(k), str) and data[k]]
+        load_card(path)
+        data = load_yaml(read_text(path, "policy card"), str(path))
+    except (CardError, TextFileError) as exc:
+        return [], str(exc)
+    return [path] + [(path.parent / data[k]).resolve() for k in ("limits", "model")
+                     if isinstance(data.get(k), str) and data[k]], ""
+
+
+def _loaded_limits(path: Path, dynamics: str) -> tuple[list[Path], str]:
+    """The limits file (and the limits YAML beside a URDF) if the adapter can load them."""
+    try:
+        JointLimits.from_file(path, Path(dynamics).resolve() if dynamics else None)
+    except LimitsError as exc:
+        return [], str(exc)
+    paths = [path]
+    if dynamics:
+        paths.append(Path(dynamics).resolve())
+    elif path.suffix.lower() in (".urdf", ".xml"):
+        paths.append(path.with_name(path.stem + ".limits.yaml"))
+    return paths, ""
 
 
 def collect_files(parameters: Mapping[str, Any]) -> dict[str, dict[str, Any]]:
-    """Entries (hash, size, text) of every file the adapter parameters name."""
+    """Entries (hash, size, text) of the files the adapter parameters make it load: a policy
+    card only when it is a valid card (with its limits and model: the model by hash only), a
+    limits file only when it loads as limits. A file named by a parameter that the adapter
+    would not load is listed as ``refused`` with the reason, hash and size, never its text,
+    so any readable file set as a parameter is not copied into the bag."""
     files: dict[str, dict[str, Any]] = {}
     for key in FILE_PARAMS:
         value = parameters.get(key)
-        if not isinstance(value, str) or not value:
+        if not isinstance(value, str) or not value or key == "limits_dynamics":
             continue
         path = Path(value).resolve()
-        paths = [path] + (_card_files(path) if key in CARD_PARAMS else [])
+        if key in CARD_PARAMS:
+            paths, refused = _loaded_card(path)
+        else:
+            paths, refused = _loaded_limits(path, str(parameters.get("limits_dynamics") or ""))
+        if refused:
+            entry = _file_entry(path, store_text=False)
+            files[str(path)] = entry if entry.get("missing") else {**entry, "refused": refused}
+            continue
         for p in paths:
-            entry = _file_entry(p)
-            files[str(p)] = entry if entry is not None else {"missing": True}
+            files[str(p)] = _file_entry(p, store_text=p.suffix.lower() != ".onnx")
     return files
 
 
@@ -116,9 +150,9 @@ def build(node: str, parameters: Mapping[str, Any], recorder: Mapping[str, Any])
 def parse(text: str, source: str = "run_info") -> RunInfo:
     """Parse a run-info document; raises `RunInfoError` naming ``source``."""
     try:
-        doc = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        raise RunInfoError(f"{source}: not valid YAML: {exc}") from None
+        doc = load_yaml(text, source)
+    except TextFileError as exc:
+        raise RunInfoError(str(exc)) from None
     if not isinstance(doc, Mapping) or doc.get("run_info") != FORMAT:
         raise RunInfoError(f"{source}: not a run-info document of format {FORMAT}")
     adapter = doc.get("adapter")
@@ -139,20 +173,39 @@ def _sha(path: Path) -> str | None:
         return None
 
 
+def _mirror(folder: Path, recorded: str) -> Path:
+    """Where the copy of the recorded file ``recorded`` goes under ``folder`` (its absolute
+    path mirrored); `RunInfoError` for an entry that is not a normalised absolute path, so
+    no entry of an untrusted bag can write outside ``folder``."""
+    p = Path(recorded)
+    if not p.is_absolute() or ".." in p.parts or str(p) != os.path.normpath(recorded):
+        raise RunInfoError(f"run info: file entry '{recorded}' is not a normalised absolute "
+                           "path; refused (a bag's entries must not reach outside the replay "
+                           "folder)")
+    out = (folder / p.relative_to(p.anchor)).resolve()
+    root = folder.resolve()
+    if root not in out.parents:
+        raise RunInfoError(f"run info: file entry '{recorded}' would be written outside the "
+                           f"replay folder {root}; refused")
+    return out
+
+
 def resolve_files(info: RunInfo, folder: Path) -> tuple[dict[str, Any], list[str]]:
     """Parameters whose file paths hold the recorded content, and notes on what was done.
 
     Changed or missing text files are written under ``folder`` (mirroring their absolute
-    paths); a changed or missing binary file raises `RunInfoError`.
+    paths; an entry that is not a normalised absolute path is refused); a changed or
+    missing binary file raises `RunInfoError`.
     """
     params = dict(info.parameters)
     notes: list[str] = []
     stale = {p: e for p, e in info.files.items()
-             if not e.get("missing") and _sha(Path(p)) != e.get("sha256")}
+             if not (e.get("missing") or e.get("refused")) and _sha(Path(p)) != e.get("sha256")}
     if not stale:
         return params, notes
+    mirrors = {p: _mirror(folder, p) for p in info.files}
     for p, e in info.files.items():
-        mirror = folder / Path(p).relative_to(Path(p).anchor)
+        mirror = _mirror(folder, p)   # again: links made meanwhile must not lead outside
         mirror.parent.mkdir(parents=True, exist_ok=True)
         if p in stale:
             if e.get("text") is None:
@@ -163,10 +216,10 @@ def resolve_files(info: RunInfo, folder: Path) -> tuple[dict[str, Any], list[str
             mirror.write_text(e["text"])
             notes.append(f"'{p}' is {'missing' if not Path(p).exists() else 'changed'}; "
                          "replay uses the copy stored in the bag")
-        elif not e.get("missing") and not mirror.exists():
-            mirror.symlink_to(Path(p))
+        elif not e.get("missing") and Path(p).is_file() and not mirror.exists():
+            mirror.symlink_to(Path(p))   # regular files only: a linked folder could lead out
     for key in FILE_PARAMS:
         value = params.get(key)
         if isinstance(value, str) and value and str(Path(value).resolve()) in info.files:
-            params[key] = str(folder / Path(value).resolve().relative_to(Path(value).anchor))
+            params[key] = str(mirrors[str(Path(value).resolve())])
     return params, notes

@@ -22,15 +22,18 @@ segment). Callbacks only store the latest message; conversions are in
 from __future__ import annotations
 
 import os
+import sys
 import threading
 import time
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 from lifecycle_msgs.msg import State as StateMsg
 from rcl_interfaces.msg import SetParametersResult
 from rclpy.callback_groups import MutuallyExclusiveCallbackGroup
+from rclpy.executors import Executor
 from rclpy.lifecycle import LifecycleNode, LifecycleState, TransitionCallbackReturn
+from rclpy.node import Node
 from rclpy.parameter import Parameter
 from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool, Float64MultiArray, MultiArrayDimension, String
@@ -45,7 +48,7 @@ from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, se
 from adaptive_streamer.core.policies import load_policy
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
-from adaptive_streamer.core.stream import StreamClock
+from adaptive_streamer.core.stream import StreamClock, StreamTimeline
 from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 
 from . import common
@@ -65,6 +68,8 @@ class AdapterNode(LifecycleNode):
 
     def __init__(self, name: str = "adapter", **kwargs: Any) -> None:
         super().__init__(name, **kwargs)
+        self._timeline: StreamTimeline | None = None
+        self._anchor_timeline()
         self._declare_parameters()
         self._priority_note = set_thread_priority(
             int(self.get_parameter("decision_priority").value))
@@ -252,14 +257,16 @@ class AdapterNode(LifecycleNode):
 
     def on_activate(self, state: LifecycleState) -> TransitionCallbackReturn:
         session = self.session
-        now = now_sec(self)
+        self._anchor_timeline()
+        now = self._now()
         js = self._joint_state()
         wd = session.watchdog.config
         check = check_activation(
             now, self._joints, session.limits, js[0] if js else None, js[2] if js else None,
             js[3] if js else None, wd.joint_states_timeout,
             self._latest_inputs.window_received, wd.reference_timeout,
-            float(self._param("activation_velocity")))
+            float(self._param("activation_velocity")), session.cycle.policy.needs_feedback,
+            self._latest_inputs.feedback_received, wd.feedback_timeout)
         if not check.ok:
             self.get_logger().error(f"activate refused: {check.refusal}")
             return TransitionCallbackReturn.FAILURE
@@ -271,9 +278,9 @@ class AdapterNode(LifecycleNode):
         self._decide_gc = self.create_guard_condition(self._on_decide,
                                                       callback_group=self._decide_group)
         ticks = self._ticks
-        self._stream_timer = StreamThread(lambda: now_sec(self),
+        self._stream_timer = StreamThread(self._now,
                                           lambda: ticks.time_of(ticks.last_index + 1),
-                                          self._on_stream,
+                                          self._on_stream, self._on_stream_error,
                                           priority=int(self._param("stream_priority")))
         self._stream_timer.start()
         self._status = "active"
@@ -282,11 +289,15 @@ class AdapterNode(LifecycleNode):
         self._publish_plan(session)  # the managed publishers are active from here on
         return result
 
-    def _stop_and_wait(self) -> bool:
+    def _stop_and_wait(self, spin: Callable[[], None] | None = None) -> bool:
+        """Start the controlled stop and wait until the stream has sent the plan's rest
+        (at most ``stop_timeout``). Decides here meanwhile (this may run in the executor
+        thread); ``spin`` runs the process's executor too, so that nodes sharing it (a
+        driver in the same process) go on while the arm brakes."""
         session = self.session
         if session is None or self._stream_timer is None:
             return True
-        session.cycle.request_stop()
+        session.request_stop()
         deadline = time.monotonic() + float(self._param("stop_timeout"))
         rest_from: float | None = None  # the plan is at rest from this time on
         while time.monotonic() < deadline:
@@ -296,14 +307,18 @@ class AdapterNode(LifecycleNode):
                 ticks = self._ticks  # the plan runs ahead: wait until the stream got there
                 if ticks is None or ticks.time_of(ticks.last_index) >= rest_from - 1e-9:
                     return True
-            self._on_decide()  # this may run in the executor thread: decide here meanwhile
-            time.sleep(0.005)
+            self._on_decide()
+            if spin is None:
+                time.sleep(0.005)
+            else:
+                spin()
         self.get_logger().error("stop_timeout: deactivating before the plan reached rest")
         return False
 
-    def stop_at_rest(self) -> None:
-        """Bring the arm to rest, then stop the stream (process shutdown)."""
-        self._stop_and_wait()
+    def stop_at_rest(self, spin: Callable[[], None] | None = None) -> None:
+        """Bring the arm to rest, then stop the stream (process shutdown; ``spin`` as in
+        `_stop_and_wait`)."""
+        self._stop_and_wait(spin)
         self._teardown_timers()
 
     def destroy_node(self) -> None:
@@ -365,7 +380,7 @@ class AdapterNode(LifecycleNode):
         """Store the raw message (merged with the others when a decision needs it)."""
         merger = self._js_merger
         if merger is not None:
-            merger.add(data, now_sec(self))
+            merger.add(data, self._now())
 
     def _joint_state(self) -> tuple[float, np.ndarray, np.ndarray, np.ndarray | None] | None:
         """Merged joint state: (oldest received, stamp per joint, positions, velocities) in
@@ -380,12 +395,12 @@ class AdapterNode(LifecycleNode):
     def _on_window(self, msg: JointTrajectory) -> None:
         latest = self._latest_inputs
         if latest is not None:
-            latest.set_window(now_sec(self), msg)
+            latest.set_window(self._now(), msg)
 
     def _on_feedback(self, msg: JointState) -> None:
         latest = self._latest_inputs
         if latest is not None:
-            latest.set_feedback(now_sec(self), msg)
+            latest.set_feedback(self._now(), msg)
 
     def _on_stop_topic(self, msg: Bool) -> None:
         session = self.session
@@ -394,7 +409,7 @@ class AdapterNode(LifecycleNode):
         if msg.data:
             if session.watchdog.stop_requested is None:
                 session.watchdog.stop_requested = "stop topic is true"
-                session.stop(now_sec(self), "external_stop", "stop requested on the stop topic")
+                session.stop(self._now(), "external_stop", "stop requested on the stop topic")
         else:
             session.watchdog.stop_requested = None
 
@@ -418,7 +433,7 @@ class AdapterNode(LifecycleNode):
             i = clock.due(now)
             if i is None:
                 last = clock.time_of(clock.last_index)
-                if now < last - 1.0 / clock.rate:  # ROS time went back (sim time reset)
+                if now < last - 1.0 / clock.rate:  # sim time went back (a bag restarted)
                     self.get_logger().error(
                         f"ROS time went back to {now:.3f} s, before the last setpoint "
                         f"({last:.3f} s): no setpoint until the clock passes it again (the "
@@ -426,7 +441,8 @@ class AdapterNode(LifecycleNode):
                 return
             t = clock.time_of(i)
             self._timings.lateness.append(now - t)
-            sp, reason = session.sample(t)
+            sim = self._timeline is None  # the arm lives on sim time then
+            sp, reason = session.sample(t, None if sim else time.monotonic())
             if reason is None:
                 fill_setpoint(self._setpoint_msg, t, sp)
                 self._setpoint_pub.publish(self._setpoint_msg)
@@ -435,6 +451,8 @@ class AdapterNode(LifecycleNode):
                     if out.kind == "trajectory" and ahead is None:
                         ahead = session.commanded_at(t + out.dt) or sp
                     out.publish(sp, ahead or sp)
+                if not sim:
+                    session.sent(time.monotonic())
             else:
                 self._counters["guard_failures"] += 1
             shadow = session.sample_shadow(t)
@@ -444,8 +462,20 @@ class AdapterNode(LifecycleNode):
             if self._decide_gc is not None and session.decision_due(t):
                 self._decide_gc.trigger()
         except Exception as exc:  # never let an exception escape the stream callback
-            self._counters["stream_errors"] += 1
-            self.get_logger().error(f"stream tick failed: {exc}", throttle_duration_sec=1.0)
+            self._on_stream_error(exc)
+
+    def _on_stream_error(self, exc: Exception) -> None:
+        """An error in the stream tick or the stream thread's loop: count and log it, and
+        start the controlled stop (the thread goes on ticking, so the braking reaches the
+        driver)."""
+        self._counters["stream_errors"] += 1
+        self.get_logger().error(f"stream tick failed: {type(exc).__name__}: {exc}",
+                                throttle_duration_sec=1.0)
+        session = self.session
+        if session is not None and session.cycle.state is not None \
+                and not session.watchdog.tripped:
+            session.stop(self._now(), "stream_fault",
+                         f"stream tick failed: {type(exc).__name__}: {exc}")
 
     def _on_decide(self) -> None:
         session = self.session
@@ -453,7 +483,7 @@ class AdapterNode(LifecycleNode):
             return
         try:
             t0 = time.perf_counter()
-            now = now_sec(self)
+            now = self._now()
             d = session.decide(now, self._inputs(now), self._now)
             if d is not None:
                 self._publish_plan(session)
@@ -465,12 +495,24 @@ class AdapterNode(LifecycleNode):
             self._counters["decision_errors"] += 1
             self.get_logger().error(f"decision failed: {exc}", throttle_duration_sec=1.0)
             if self.session is not None:
-                self.session.stop(now_sec(self), "policy_fault", f"decision failed: {exc}")
+                self.session.stop(self._now(), "policy_fault", f"decision failed: {exc}")
 
     def _now(self) -> float:
-        """The node's ROS time [s] (the session's clock for the plan deadline; not named
-        ``_clock``, which is rclpy's own attribute)."""
-        return now_sec(self)
+        """The adapter's time [s]: ROS time as of the last anchor (node start, activation)
+        carried forward on the monotonic clock, or the ROS clock itself under sim time.
+        Input receive times, decisions and setpoint stamps are all on it, so a step of the
+        system clock neither stops nor bunches the stream (not named ``_clock``, which is
+        rclpy's own attribute)."""
+        if self._timeline is None:
+            return now_sec(self)
+        return self._timeline.at(time.monotonic_ns())
+
+    def _anchor_timeline(self) -> None:
+        """Re-read ROS time as the anchor of the adapter's time (see `_now`); no anchor
+        under sim time."""
+        clock = self.get_clock()
+        self._timeline = (None if clock.ros_time_is_active else
+                          StreamTimeline(clock.now().nanoseconds, time.monotonic_ns()))
 
     def _publish_plan(self, session: StreamingSession) -> None:
         """Send the plan of the last commit on every plan output."""
@@ -511,12 +553,16 @@ class AdapterNode(LifecycleNode):
 
     # ------------------------------------------------------------------ services
     def _on_stop(self, request: Trigger.Request, response: Trigger.Response) -> Trigger.Response:
+        """Latch the external stop; the answer says whether anything was moving."""
         session = self.session
-        if session is None or session.cycle.state is None:
-            response.success, response.message = False, "not streaming (activate first)"
+        response.success = True
+        if session is None or self._stream_timer is None:
+            response.message = f"nothing was moving: the adapter is not active ({self._status})"
             return response
-        session.stop(now_sec(self), "external_stop", "stop requested via ~/stop")
-        response.success, response.message = True, "controlled stop started"
+        moving = not (session.mode == "stopped" and session.cycle.at_rest)
+        session.stop(self._now(), "external_stop", "stop requested via ~/stop")
+        response.message = ("controlled stop started" if moving else
+                            "nothing was moving: the plan is at rest (stop latched)")
         return response
 
     def _on_reset(self, request: Trigger.Request, response: Trigger.Response) -> Trigger.Response:
@@ -524,7 +570,7 @@ class AdapterNode(LifecycleNode):
         if session is None or session.cycle.state is None:
             response.success, response.message = False, "not streaming (activate first)"
             return response
-        now = now_sec(self)
+        now = self._now()
         ok, msg = session.reset_on(now, self._inputs(now))
         if ok:
             self._diag.set(OK, "reset: approaching the reference")
@@ -553,14 +599,25 @@ class AdapterNode(LifecycleNode):
         return vals
 
 
-def main(args: list[str] | None = None) -> int:
-    """Run the adapter node until Ctrl-C (the arm is brought to rest first)."""
-    prepare_process()
+def bring_to_rest(nodes: list[Node], executor: Executor) -> None:
+    """Bring every adapter among ``nodes`` to rest with the controlled stop while
+    ``executor`` keeps running the other nodes (`common.run_nodes`' ``before_shutdown``).
+    An error of another node's callback while spinning is logged and the stop goes on."""
+    def spin() -> None:
+        try:
+            executor.spin_once(timeout_sec=0.005)
+        except Exception as exc:
+            print(f"error while bringing the arm to rest: {exc}", file=sys.stderr)
+            time.sleep(0.005)
+    for node in nodes:
+        if isinstance(node, AdapterNode):
+            node.stop_at_rest(spin)
 
-    def bring_to_rest(nodes: list, executor: Any) -> None:  # noqa: ARG001
-        for node in nodes:
-            if isinstance(node, AdapterNode):
-                node.stop_at_rest()
+
+def main(args: list[str] | None = None) -> int:
+    """Run the adapter node until Ctrl-C or SIGTERM, or until an error ends the process;
+    every way out brings the arm to rest first."""
+    prepare_process()
     return common.run_nodes([AdapterNode], args, executor=make_executor,
                             before_shutdown=bring_to_rest)
 

@@ -186,8 +186,10 @@ def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = 
     """Init rclpy, build the nodes, spin until Ctrl-C/SIGTERM, shut down cleanly (no traceback).
 
     ``executor`` makes the executor (after rclpy.init; default single-threaded).
-    ``after_start`` runs once the nodes are in the executor; ``before_shutdown`` runs after
-    the stop request (e.g. to bring the arm to rest). Returns a process exit code.
+    ``after_start`` runs once the nodes are in the executor; ``before_shutdown`` runs on
+    every way out once the nodes exist (Ctrl-C, SIGTERM, an error raised from a callback
+    while spinning), before any node is destroyed (e.g. to bring the arm to rest while the
+    executor still runs the rest). Returns a process exit code.
     """
     rclpy.init(args=args, signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
     stop = {"flag": False}
@@ -207,12 +209,16 @@ def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = 
             after_start(nodes)
         while not stop["flag"] and rclpy.ok():
             ex.spin_once(timeout_sec=0.1)
-        if before_shutdown is not None:
-            before_shutdown(nodes, ex)
     except (KeyboardInterrupt, ExternalShutdownException):
         pass
-    except Exception as exc:  # a node failed to start: say why, no traceback wall
-        print(f"error: {exc}", file=sys.stderr)
+    except Exception as exc:  # a node failed to start or a callback raised: say why
+        print(f"error: {type(exc).__name__}: {exc}", file=sys.stderr)
+        code = 1
+    try:
+        if before_shutdown is not None and nodes and rclpy.ok():
+            before_shutdown(nodes, ex)
+    except Exception as exc:
+        print(f"error while shutting down: {type(exc).__name__}: {exc}", file=sys.stderr)
         code = 1
     finally:
         for s, h in old.items():

@@ -98,6 +98,7 @@ class RecorderNode(Node):
         self._info_text: str | None = None
         self._param_client = None
         self._fetching = False
+        self._refetch = False      # parameters changed while a fetch was in flight
         if self._adapter:
             from rclpy.parameter_client import AsyncParameterClient
             self._adapter_fqn = self.resolve_topic_name(self._adapter)
@@ -163,8 +164,12 @@ class RecorderNode(Node):
 
     # ------------------------------------------------------------------ run info
     def _on_parameter_event(self, event: ParameterEvent) -> None:
-        if event.node == self._adapter_fqn and (event.changed_parameters or
-                                                event.new_parameters) and self._info_text:
+        if event.node != self._adapter_fqn or not (event.changed_parameters or
+                                                   event.new_parameters):
+            return
+        if self._fetching:
+            self._refetch = True   # the values in flight may predate this change
+        elif self._info_text:
             self._fetch_parameters()
 
     def _fetch_parameters(self) -> None:
@@ -186,6 +191,9 @@ class RecorderNode(Node):
 
     def _on_values(self, names: list[str], future: Any) -> None:
         self._fetching = False
+        if self._refetch:          # a change came while these values were fetched
+            self._refetch = False
+            self._fetch_parameters()
         try:
             values = [parameter_value_to_python(v) for v in future.result().values]
         except Exception as exc:  # the adapter went away: try again later

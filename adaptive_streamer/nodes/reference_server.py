@@ -28,6 +28,16 @@ Parameters (read-only unless noted):
   slow_down           slow an infeasible reference down instead of refusing it (default false)
   limit_fraction      fraction of the limits used by waypoint timing and by the slow-down (0.8)
   max_gap             largest allowed time between file samples [s]; 0 disables (default 1.0)
+  start_condition     'none' (start on request) or 'lock_on' (default 'none'): with lock_on,
+                      ~/start (or start_mode immediate) waits until the task feedback has
+                      settled (`adaptive_streamer.core.lock_on`), then starts; if it does not
+                      within lock_on.timeout the state is 'lock_failed' with the reason
+                      (diagnostics, log) and ~/start may be called again
+  lock_on.feature     the feature of ``feedback`` (sensor_msgs/JointState, a name) to judge
+  lock_on.tolerance   largest |value| that counts as settled (feature unit; default 0.001)
+  lock_on.hold        how long every reading must be settled [s] (default 0.5)
+  lock_on.timeout     how long to wait [s] (default 10.0)
+  lock_on.max_age     longest gap between readings, and oldest last reading [s] (default 0.1)
 """
 from __future__ import annotations
 
@@ -37,11 +47,14 @@ from typing import Any, Callable
 
 from rcl_interfaces.msg import SetParametersResult
 from rclpy.parameter import Parameter
+from sensor_msgs.msg import JointState
 from std_srvs.srv import Trigger
 from trajectory_msgs.msg import JointTrajectory
 
 from adaptive_streamer.core.feasibility import FeasibilityError, ensure_feasible
 from adaptive_streamer.core.limits import JointLimits, LimitsError
+from adaptive_streamer.core.lock_on import (LockOn, LockOnConfig, LockOnError, LockState,
+                                            LockVerdict)
 from adaptive_streamer.core.playback import Playback, PlaybackError, validate_override
 from adaptive_streamer.io.reference_bags import ReferenceFileError, load_reference
 
@@ -79,11 +92,20 @@ class ReferenceServer(SetupNode):
         slow_down = declare(self, REFERENCE_SERVER["slow_down"])
         fraction = declare(self, REFERENCE_SERVER["limit_fraction"])
         max_gap = declare(self, REFERENCE_SERVER["max_gap"])
+        condition = declare(self, REFERENCE_SERVER["start_condition"])
+        lock_values = tuple(declare(self, REFERENCE_SERVER[f"lock_on.{name}"])
+                            for name in ("feature", "tolerance", "hold", "timeout", "max_age"))
 
         for name, value in (("decision_period", period), ("override_ramp_time", ramp)):
             if not math.isfinite(value):
                 raise ReferenceServerError(f"parameter '{name}': expected a finite time in "
                                            f"seconds, got {value}")
+        self._lock: LockOn | None = None
+        if condition == "lock_on":
+            try:
+                self._lock = LockOn(LockOnConfig(*lock_values))
+            except LockOnError as exc:
+                raise ReferenceServerError(f"parameters 'lock_on.*': {exc}") from None
         try:
             limits = JointLimits.from_file(limits_file)
         except LimitsError as exc:
@@ -116,7 +138,10 @@ class ReferenceServer(SetupNode):
                                          reliable_qos(1, transient_local=True))
         path_pub.publish(samples_to_msg(reference.resample(period), now_sec(self)))
         self._path_pub = path_pub
-        self.create_service(Trigger, "~/start", self._service(self.playback.start))
+        self._verdict = LockVerdict(LockState.IDLE)
+        if self._lock is not None:
+            self.create_subscription(JointState, "feedback", self._on_feedback, 50)
+        self.create_service(Trigger, "~/start", self._service(self._start))
         self.create_service(Trigger, "~/pause", self._service(self.playback.pause))
         self.create_service(Trigger, "~/resume", self._service(self.playback.resume))
         self.add_on_set_parameters_callback(self._validate_params)
@@ -130,10 +155,57 @@ class ReferenceServer(SetupNode):
             f"{reference.duration:.3f} s, {self.feasibility.summary()}{note}")
 
     # ------------------------------------------------------------------ callbacks
+    def _start(self, t: float) -> str:
+        """~/start: start now, or (with lock-on) once the feedback has settled."""
+        lock = self._lock
+        if lock is None or self.playback.state != "waiting":
+            return self.playback.start(t)
+        if lock.state is LockState.WAITING:
+            return "already waiting for lock-on: " + self._verdict.reason
+        lock.begin(t)
+        self._verdict = lock.judge(t)
+        return "start requested; " + self._verdict.reason
+
+    def _on_feedback(self, msg: JointState) -> None:
+        lock = self._lock
+        if lock is None or lock.state is not LockState.WAITING:
+            return
+        try:
+            i = list(msg.name).index(lock.config.feature)
+            value = float(msg.position[i])
+        except (ValueError, IndexError):
+            value = math.nan   # the feature is missing from this message: not settled
+        lock.add(now_sec(self), value)
+
+    def _judge_lock(self, t: float) -> None:
+        """Start the playback once locked on; log a failed lock-on once."""
+        lock = self._lock
+        if lock is None:
+            return
+        if self._immediate and lock.state is LockState.IDLE and self.playback.state == "waiting":
+            lock.begin(t)
+        if lock.state is not LockState.WAITING:
+            return
+        self._verdict = lock.judge(t)
+        if self._verdict.state is LockState.LOCKED:
+            self.get_logger().info(f"locked on ({self._verdict.reason}): "
+                                   f"{self.playback.start(t)}")
+        elif self._verdict.state is LockState.FAILED:
+            self.get_logger().error(f"start refused: {self._verdict.reason}")
+
+    def _state(self) -> str:
+        """The playback state, or the lock-on's while it holds the start."""
+        if self.playback.state == "waiting" and self._verdict.state is LockState.WAITING:
+            return "locking"
+        if self.playback.state == "waiting" and self._verdict.state is LockState.FAILED:
+            return "lock_failed"
+        return self.playback.state
+
     def _tick(self) -> None:
         try:
             t = now_sec(self)
-            if self._immediate and self.playback.state == "waiting":
+            self._judge_lock(t)
+            if self._immediate and self._lock is None and self.playback.state == "waiting":
                 self.playback.start(t)
             window_to_msg(self.playback.window(t), self._msg)
             self._window_pub.publish(self._msg)
@@ -147,13 +219,18 @@ class ReferenceServer(SetupNode):
             self.get_logger().error(self._error, throttle_duration_sec=5.0)
 
     def _update_status(self) -> None:
-        state = self.playback.state
+        state = self._state()
         if state == self._last_state:
             return
         self._last_state = state
-        level = WARN if self.slow_down_factor > 1.0 else OK
-        note = f" (slowed down {self.slow_down_factor:.4g}x)" if self.slow_down_factor > 1.0 else ""
-        self._diag.set(level, state + note)
+        if state == "lock_failed":
+            self._diag.set(ERROR, f"{state}: {self._verdict.reason}")
+        else:
+            level = WARN if self.slow_down_factor > 1.0 else OK
+            note = (f" (slowed down {self.slow_down_factor:.4g}x)"
+                    if self.slow_down_factor > 1.0 else "")
+            self._diag.set(level, state + note)
+        self._diag.publish()   # a change of state is told at once
 
     def _service(self, request: Callable[[float], str]) -> Callable[[Any, Any], Any]:
         def handle(req: Trigger.Request, resp: Trigger.Response) -> Trigger.Response:
@@ -189,7 +266,8 @@ class ReferenceServer(SetupNode):
         st = self.playback.status()
         fz = self.feasibility
         return [
-            ("state", st.state),
+            ("state", self._state()),
+            ("lock_on", self._verdict.reason or "none"),
             ("progress", st.progress),
             ("reference_time", st.reference_time),
             ("duration", st.duration),

@@ -104,16 +104,27 @@ def _resolve(ns: str, name: str) -> str:
     return name if name.startswith("/") else ns.rstrip("/") + "/" + name
 
 
-def _load_run_info(bag: Bag, names: list[str]) -> run_info_mod.RunInfo | None:
+def _load_run_info(bag: Bag, names: list[str]) -> tuple[run_info_mod.RunInfo | None, int]:
+    """The run info in force when the decisions began, and its index on its topic: the last
+    run-info message received before the first decision record (the recorder may have read
+    the parameters before the adapter was configured, when the outputs' parameters were not
+    declared yet), else the first; from the bag's metadata when there is no topic."""
     for name in names:
         data = bag.get(name)
         if data is not None:
             try:
-                return run_info_mod.parse(read_string(data.raw[0]), f"{bag.path} {name}")
+                first = run_info_mod.parse(read_string(data.raw[0]), f"{bag.path} {name}")
+                decisions = bag.get(first.node + "/decisions")
+                if decisions is None or len(decisions.times) == 0:
+                    return first, 0
+                k = max(int(np.searchsorted(data.times, decisions.times[0], side="right")) - 1,
+                        0)
+                return (first if k == 0 else
+                        run_info_mod.parse(read_string(data.raw[k]), f"{bag.path} {name}")), k
             except MessageError as exc:
                 raise ReplayError(f"{bag.path}: topic '{name}': {exc}") from None
     text = bag.custom_data.get(run_info_mod.CUSTOM_KEY)
-    return run_info_mod.parse(text, f"{bag.path} metadata") if text else None
+    return (run_info_mod.parse(text, f"{bag.path} metadata") if text else None), 0
 
 
 def _check_type(bag: Bag, topic: str, expected: str) -> TopicData | None:
@@ -168,7 +179,7 @@ def configure(bag: Bag, params_file: str | Path | None, policy: str | None,
     notes: list[str] = []
     info_names = sorted(n for n in bag.topics if n.endswith("/" + run_info_mod.TOPIC))
     try:
-        info = _load_run_info(bag, info_names)
+        info, info_index = _load_run_info(bag, info_names)
     except run_info_mod.RunInfoError as exc:
         raise ReplayError(str(exc)) from None
     params: dict[str, Any] = {}
@@ -182,7 +193,7 @@ def configure(bag: Bag, params_file: str | Path | None, policy: str | None,
                 raise ReplayError(f"{bag.path}: {exc}") from None
             params, file_notes = dict(info.parameters), [str(exc)]
         notes += file_notes
-        changed = _changed_parameters(bag, info_names, info)
+        changed = _changed_parameters(bag, info_names, info, info_index)
         if changed:
             notes.append(f"the adapter's parameters {changed} changed during the recording; "
                          "replay uses their values at the start")
@@ -210,11 +221,13 @@ def configure(bag: Bag, params_file: str | Path | None, policy: str | None,
     return setup, ns, decisions_topic, notes
 
 
-def _changed_parameters(bag: Bag, names: list[str], first: run_info_mod.RunInfo) -> list[str]:
-    """Decision-shaping parameters whose value differs in a later run-info message."""
+def _changed_parameters(bag: Bag, names: list[str], first: run_info_mod.RunInfo,
+                        index: int) -> list[str]:
+    """Decision-shaping parameters whose value differs in a run-info message after the one
+    replay uses (``index`` on its topic)."""
     changed: set[str] = set()
     for name in names:
-        for raw in bag.topics[name].raw[1:]:
+        for raw in bag.topics[name].raw[index + 1:]:
             try:
                 later = run_info_mod.parse(read_string(raw))
             except (run_info_mod.RunInfoError, MessageError):

@@ -29,8 +29,14 @@ millimetres/degrees)::
       dwell: 0.5                   # s at rest at each end
       sample_period: 0.01          # s between reference CSV rows
       ik_seed: [0.3, 0.75, 0.3, 0.0, 0.5, -1.9]   # rad, first IK guess
+    lock_on:                       # optional: the pass's start condition (core.lock_on)
+      feature: edge_offset         # the feedback feature judged
+      tolerance_mm: 1.0            # settled: |feature| within this
+      hold: 0.5                    # s, every reading settled for this long
+      timeout: 10.0                # s, then the start fails with the reason
+      max_age: 0.1                 # s, longest gap between readings
 
-All keys are required. Random streams: the placement draws from
+All keys are required, except the ``lock_on`` block. Random streams: the placement draws from
 ``numpy.random.default_rng([seed, 0])``, the sensor noise from ``default_rng([seed, 1])``.
 """
 from __future__ import annotations
@@ -43,6 +49,8 @@ from typing import Any, Mapping
 import numpy as np
 import yaml
 
+from ..core.lock_on import LockOnConfig, LockOnError
+from ..core.text_files import yaml_problem
 from .line_sensor import SensorConfig, SensorError
 from .nominal_path import PassConfig, PathError
 from .panel import Panel, PanelError, draw_placement
@@ -64,6 +72,7 @@ class Scenario:
     sensor: SensorConfig
     nominal_pass: PassConfig
     source: str = "<memory>"
+    lock_on: LockOnConfig | None = None   # the pass's start condition (None: start at once)
 
     def placement(self, seed: int | None = None) -> tuple[float, float]:
         """The placement (offset [m], angle [rad]) drawn for ``seed`` (default: the file's)."""
@@ -141,10 +150,19 @@ def parse_scenario(data: Mapping[str, Any], source: str = "<memory>") -> Scenari
             ramp_time=_num(p, "ramp_time", w), dwell=_num(p, "dwell", w),
             sample_period=_num(p, "sample_period", w),
             ik_seed=np.array(_vec(p, "ik_seed", w, None)))
-    except (PanelError, SensorError, PathError) as exc:
+        lock = None
+        if data.get("lock_on") is not None:
+            q = _get(data, "lock_on", source)
+            w = f"{source}: lock_on"
+            feature = q.get("feature")
+            if not isinstance(feature, str):
+                raise ScenarioError(f"{w}: 'feature' must name a feedback feature")
+            lock = LockOnConfig(feature, _num(q, "tolerance_mm", w) * 1e-3, _num(q, "hold", w),
+                                _num(q, "timeout", w), _num(q, "max_age", w))
+    except (PanelError, SensorError, PathError, LockOnError) as exc:
         raise ScenarioError(f"{source}: {exc}") from None
     return Scenario(seed, nominal, offset_mm, angle_deg, sensor, nominal_pass,  # type: ignore
-                    source)
+                    source, lock)
 
 
 def load_scenario(path: str | Path | None = None) -> Scenario:
@@ -155,7 +173,8 @@ def load_scenario(path: str | Path | None = None) -> Scenario:
     except OSError as exc:
         raise ScenarioError(f"scenario file '{path}': cannot read: {exc.strerror}") from None
     except yaml.YAMLError as exc:
-        raise ScenarioError(f"scenario file '{path}': not valid YAML: {exc}") from None
+        raise ScenarioError(f"scenario file '{path}': not valid YAML: {yaml_problem(exc)}"
+                            ) from None
     return parse_scenario(data, f"scenario file '{path}'")
 
 

@@ -87,9 +87,9 @@ from pathlib import Path
 from typing import Any, Mapping
 
 import numpy as np
-import yaml
 
 from ..limits import JointLimits, LimitsError
+from ..text_files import TextFileError, load_yaml, read_text
 from ..observation import BLOCK_KINDS, HORIZON_BLOCKS, ObservationBlock, ObservationLayout
 from .running import PolicyError, RunningConfig
 
@@ -197,16 +197,9 @@ def load_card(card_path: str | Path) -> PolicyCard:
     """Read and validate a policy card file (relative paths resolve from its folder)."""
     path = Path(card_path)
     try:
-        text = path.read_text()
-    except OSError as exc:
-        raise CardError(f"cannot read policy card '{path}': {exc.strerror}") from None
-    except UnicodeDecodeError as exc:
-        raise CardError(f"{path}: not a UTF-8 text file ({exc.reason} at byte "
-                        f"{exc.start})") from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as exc:
-        raise CardError(f"{path}: not valid YAML: {exc}") from None
+        data = load_yaml(read_text(path, "policy card"), str(path))
+    except TextFileError as exc:
+        raise CardError(str(exc)) from None
     return parse_card(data, str(path), path.parent)
 
 
