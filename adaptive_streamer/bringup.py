@@ -11,6 +11,11 @@ SIGTERM) the adapter is deactivated first, which brings the arm to rest while th
 the driver keep running; then the adapters' processes are stopped and, once they exited,
 every other child, cleanly, without a traceback.
 
+Before anything starts, the params file is checked against the nodes' parameter tables
+(`adaptive_streamer.io.param_specs`). Each child's output goes to a log file (in a folder
+bringup names when it starts) and is copied to bringup's output; a child that exits while
+the cell starts stops the bringup at once, quoting the child's last lines.
+
 With ``--record`` the adapter is activated (motion starts) only once the recorder records
 every configured topic that has a publisher (`adaptive_streamer.nodes.recording_ready`).
 An adapter that activates itself (``autostart``), or ``--one-process``, cannot wait for
@@ -25,7 +30,9 @@ import signal
 import subprocess
 import sys
 import tempfile
+import threading
 import time
+from collections import deque
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -33,6 +40,7 @@ from typing import Any
 import yaml
 
 from .core.text_files import yaml_problem
+from .io.param_specs import ParamsCheckError, check_params_file
 from .share import expand
 
 NODE_KINDS = {
@@ -45,6 +53,7 @@ NODE_KINDS = {
     "recorder": ("adaptive_streamer.nodes.recorder", "RecorderNode"),
 }
 STOP_TIMEOUT = 10.0
+LOG_TAIL = 20          # lines of a child's output shown when it exits during startup
 PR_SET_PDEATHSIG = 1   # linux/prctl.h
 SIMULATED_HARDWARE = {"sim_driver", "edge_sensor"}   # nodes that stand in for real-time devices
 
@@ -68,7 +77,8 @@ class NodeEntry:
 
 
 def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
-    """Nodes of a params file and its text with ``$(share)`` expanded."""
+    """Nodes of a params file and its text with ``$(share)`` expanded; every node's
+    parameters are checked against its table (`adaptive_streamer.io.param_specs`)."""
     path = Path(path)
     try:
         text = expand(path.read_text())
@@ -105,6 +115,10 @@ def read_params(path: str | Path) -> tuple[list[NodeEntry], str]:
         nodes.append(NodeEntry(kind, ns, dict(params or {})))
     if not nodes:
         raise BringupError(f"{path}: names no node")
+    try:
+        check_params_file(path, text)
+    except ParamsCheckError as exc:
+        raise BringupError(str(exc)) from None
     return nodes, text
 
 
@@ -266,6 +280,46 @@ class Processes:
         return notes
 
 
+class ChildOutput:
+    """A child's output (stdout and stderr) goes to a log file, which stays writable if
+    bringup itself ends abruptly (the child still brings the arm to rest and logs it); a
+    thread follows the file, copies it to this process's stdout and keeps the last
+    `LOG_TAIL` lines, to show why a child exited."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self.file = path.open("w")
+        self.lines: deque[str] = deque(maxlen=LOG_TAIL)
+        self._done = threading.Event()
+        self._thread = threading.Thread(target=self._follow, daemon=True)
+        self._thread.start()
+
+    def _follow(self) -> None:
+        with self.path.open() as stream:
+            while True:
+                line = stream.readline()
+                if line:
+                    self.lines.append(line.rstrip("\n"))
+                    sys.stdout.write(line)
+                    sys.stdout.flush()
+                elif self._done.is_set():
+                    return
+                else:
+                    time.sleep(0.05)
+
+    def close(self) -> None:
+        """Copy what is left (the child has ended) and stop following."""
+        self._done.set()
+        self._thread.join(2.0)
+        self.file.close()
+
+    def tail(self) -> str:
+        """The last lines of the log, indented."""
+        self._done.set()
+        self._thread.join(2.0)
+        return "\n".join(f"    {line}" for line in self.lines)
+
+
 def bringup(params: str | Path, one_process: bool = False, record: str | None = None,
             activate_timeout: float = 30.0, ready: Any = None) -> int:
     """Run the nodes of ``params`` until Ctrl-C/SIGTERM; returns an exit code."""
@@ -319,6 +373,7 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
 
     old = {s: signal.signal(s, _handler) for s in (signal.SIGINT, signal.SIGTERM)}
     procs = Processes()
+    outputs: dict[str, ChildOutput] = {}
     code = 0
     rclpy.init(signal_handler_options=rclpy.signals.SignalHandlerOptions.NO)
     node = Node("bringup")
@@ -327,16 +382,25 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
                if not e.params.get("autostart", False)]
     watch = RecordingWatch(node, entries[-1].fqn) if record else None
     try:
+        logs = Path(tempfile.mkdtemp(prefix="adaptive_streamer_bringup_"))
+        print(f"bringup: each node's output is also in {logs}", flush=True)
         for entry in entries:
-            procs.start(entry, params_file)
+            out = ChildOutput(logs / f"{entry.fqn.strip('/').replace('/', '_')}.log")
+            outputs[entry.fqn] = out
+            procs.start(entry, params_file, stdout=out.file, stderr=subprocess.STDOUT,
+                        env=dict(os.environ, PYTHONUNBUFFERED="1"))
             print(f"bringup: started {entry.fqn} (pid {procs.children[-1][1].pid})", flush=True)
+
+        def alive() -> None:
+            _refuse_dead(procs, outputs)
+
         for client in clients:
-            _configure(client, activate_timeout)
+            _configure(client, activate_timeout, alive)
         if watch is not None:
             watch.wait(activate_timeout, lambda s: rclpy.spin_once(node, timeout_sec=s),
                        alive=lambda: not procs.dead() and not stop["flag"])
         for client in clients:
-            _activate(client, activate_timeout, stop)
+            _activate(client, activate_timeout, stop, alive)
         if ready is not None:
             ready()
         while not stop["flag"]:
@@ -355,11 +419,13 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
                     client.deactivate()
             except LifecycleClientError as exc:
                 print(f"bringup: {exc}", file=sys.stderr)
-    except (LifecycleClientError, RecordingNotReady) as exc:
+    except (LifecycleClientError, RecordingNotReady, BringupError) as exc:
         print(f"bringup: {exc}", file=sys.stderr)
         code = 1
     finally:
         notes = procs.stop()
+        for out in outputs.values():
+            out.close()
         for note in notes:
             print(f"bringup: {note}", file=sys.stderr)
         node.destroy_node()
@@ -370,23 +436,40 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
     return code or (1 if notes else 0)
 
 
-def _configure(client: Any, timeout: float) -> None:
-    """Wait for the adapter's lifecycle services and configure it (if unconfigured)."""
+def _refuse_dead(procs: Processes, outputs: dict[str, ChildOutput]) -> None:
+    """Raise `BringupError` naming the children that exited, with their last output lines."""
+    dead = procs.dead()
+    if dead:
+        raise BringupError("\n".join(
+            f"{entry.fqn} exited during startup (code {rc}); its last output:\n"
+            f"{outputs[entry.fqn].tail() if entry.fqn in outputs else '    (none)'}"
+            for entry, rc in dead))
+
+
+def _configure(client: Any, timeout: float, alive: Any) -> None:
+    """Wait for the adapter's lifecycle services and configure it (if unconfigured);
+    ``alive()`` raises as soon as a child has exited."""
     from .nodes.lifecycle_client import LifecycleClientError
 
-    if not client.wait(timeout):
-        raise LifecycleClientError(f"{client.target}: lifecycle services did not appear")
+    deadline = time.monotonic() + timeout
+    while not client.wait(0.5):
+        alive()
+        if time.monotonic() > deadline:
+            raise LifecycleClientError(f"{client.target}: lifecycle services did not appear")
+    alive()
     state = client.state()
     if state == "unconfigured" and not client.configure():
         raise LifecycleClientError(f"{client.target}: configure refused (see its log)")
 
 
-def _activate(client: Any, timeout: float, stop: dict) -> None:
-    """Activate with retries (activation waits for fresh joint_states)."""
+def _activate(client: Any, timeout: float, stop: dict, alive: Any) -> None:
+    """Activate with retries (activation waits for fresh joint_states); ``alive()`` raises
+    as soon as a child has exited."""
     from .nodes.lifecycle_client import LifecycleClientError
 
     deadline = time.monotonic() + timeout
     while not stop["flag"]:
+        alive()
         if client.state() == "active" or client.activate():
             print(f"bringup: {client.target} active", flush=True)
             return

@@ -16,6 +16,14 @@ Checks (one table row each; the exit code is 1 if any fails):
 * nan: finite when every feedback feature is invalid (NaN), as it is during a dropout;
 * deterministic: the same input twice gives bit-identical actions;
 * latency: p50 / p99 / max of one call [µs] (reported; fails only above one decision period).
+
+With ``--params FILE`` (the cell's params file) or ``--limits FILE`` (a limits file, the
+other adapter parameters at their defaults), the load row is the adapter's own configure
+step (`adaptive_streamer.core.adapter_setup.build_session`, after the params file's check
+against the parameter tables): a card that passes is a card the adapter accepts with those
+parameters, and the other rows run on the joints, period and limits the adapter would use.
+The target may also be a policy kind (`adaptive_streamer.io.policy_kinds`), as for ``demo``
+and ``replay``.
 """
 from __future__ import annotations
 
@@ -27,10 +35,14 @@ from typing import Callable
 
 import numpy as np
 
+from .core.adapter_setup import SetupError, build_session
 from .core.feedback import FeatureVector
-from .core.policies import Policy, PolicyError, build_policy, load_card
+from .core.policies import BUILT_IN_KINDS, Policy, PolicyError, build_policy, load_card
 from .core.policies.base import PolicyInputs, RunningConfig
 from .core.segment import MotionState
+from .io.param_specs import ParamsCheckError, check_params_file
+from .io.params_files import load_params_file
+from .io.policy_kinds import POLICY_KINDS, kind_card
 
 SAMPLES = 500
 
@@ -47,19 +59,26 @@ class Check:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Arguments of ``check-policy``."""
     parser.add_argument("target", metavar="CARD_OR_MODEL",
-                        help="policy card (.yaml) or ONNX model (.onnx)")
+                        help="policy card (.yaml), ONNX model (.onnx) or policy kind ("
+                             f"{', '.join(POLICY_KINDS)})")
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument("--params", metavar="FILE",
+                       help="check the card as the adapter of this params file configures it")
+    where.add_argument("--limits", metavar="FILE",
+                       help="check the card as an adapter with this limits file (and default "
+                            "parameters) configures it")
     parser.add_argument("--samples", type=int, default=SAMPLES, help="random inputs to try")
     parser.add_argument("--seed", type=int, default=0, help="seed of the random inputs")
 
 
 def run(args: argparse.Namespace) -> int:
     """Run the checks, print the table, return 0 when all pass."""
-    target = Path(args.target)
+    target = Path(kind_card(args.target))
     rng = np.random.default_rng(args.seed)
     if target.suffix.lower() == ".onnx":
         checks = check_model(target, rng, args.samples)
     else:
-        checks = check_card(target, rng, args.samples)
+        checks = check_card(target, rng, args.samples, args.params, args.limits)
     width = max(len(c.name) for c in checks)
     print(f"check-policy {target}")
     for c in checks:
@@ -69,18 +88,28 @@ def run(args: argparse.Namespace) -> int:
     return 0 if not failed else 1
 
 
-def check_card(path: Path, rng: np.random.Generator, samples: int) -> list[Check]:
-    """All checks for a policy card."""
+def check_card(path: Path, rng: np.random.Generator, samples: int,
+               params_file: str | None = None, limits_file: str | None = None) -> list[Check]:
+    """All checks for a policy card (or a built-in kind); with ``params_file`` or
+    ``limits_file``, loaded by the adapter's configure step (see the module docstring)."""
     try:
-        card = load_card(path)
-        running = RunningConfig(card.joints, card.decision_period, card.limits,
-                                max(2, card.reference_points), card.feedback_features)
-        policy = build_policy(card, running)
-    except PolicyError as exc:
+        if params_file is None and limits_file is None:
+            if str(path) in BUILT_IN_KINDS:
+                return [Check("load", False, f"the built-in kind '{path}' is made for the "
+                                             "adapter's joints: give --params or --limits")]
+            card = load_card(path)
+            running = RunningConfig(card.joints, card.decision_period, card.limits,
+                                    max(2, card.reference_points), card.feedback_features)
+            policy = build_policy(card, running)
+            where = ""
+        else:
+            policy, running, where = _as_configured(str(path), params_file, limits_file)
+            card = policy.card
+    except (PolicyError, SetupError, ParamsCheckError) as exc:
         return [Check("load", False, str(exc))]
     checks = [Check("load", True, f"{card.kind} policy '{card.name}' for {len(card.joints)} "
                                   f"joints at {card.decision_period * 1e3:g} ms, action "
-                                  f"{policy.action_meaning}"),
+                                  f"{policy.action_meaning}{where}"),
               Check("neutral", True, "finite action on the load-time test input")]
     bound = _action_bound(policy, running)
 
@@ -98,6 +127,22 @@ def check_card(path: Path, rng: np.random.Generator, samples: int) -> list[Check
     checks.append(_determinism(call, gen.random()))
     checks.append(_latency(call, [gen.random() for _ in range(200)], card.decision_period))
     return checks
+
+
+def _as_configured(card: str, params_file: str | None, limits_file: str | None
+                   ) -> tuple[Policy, RunningConfig, str]:
+    """The policy as the adapter's configure step builds it from ``params_file`` (its
+    adapter section) or ``limits_file``; raises `SetupError`/`ParamsCheckError`."""
+    if params_file is not None:
+        check_params_file(params_file)
+        params = load_params_file(params_file)
+        where = f"; accepted by the adapter of {params_file}"
+    else:
+        params = {"limits_file": limits_file}
+        where = f"; accepted by an adapter with limits {limits_file}"
+    setup = build_session(params, policy=card)
+    policy = setup.session.cycle.policy
+    return policy, setup.running, where
 
 
 def check_model(path: Path, rng: np.random.Generator, samples: int) -> list[Check]:

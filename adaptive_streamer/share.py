@@ -43,6 +43,11 @@ def demo_file(name: str) -> Path:
     return share_dir() / "config" / "demo" / name
 
 
+# the demo's policy cards by kind (``demo --policy KIND``; see `io.policy_kinds`)
+KIND_CARDS = {"onnx": "policy_edge.yaml", "linear_feedback": "policy_feedback.yaml",
+              "tracker": "policy_reference_only.yaml"}
+
+
 def expand(text: str) -> str:
     """Replace ``$(share)`` in a params file's text by the share folder."""
     return text.replace(SHARE_TOKEN, str(share_dir())) if SHARE_TOKEN in text else text

@@ -123,6 +123,24 @@ def test_bringup_streams_and_stops_cleanly_on_ctrl_c(tmp_path, one_process, reco
         assert_inputs_recorded_before_motion(bag, ("/joint_states", "/reference/window"))
 
 
+@pytest.mark.ros
+def test_a_child_that_exits_during_startup_stops_bringup_at_once_with_its_last_lines(tmp_path):
+    data = yaml.safe_load(cell_params(tmp_path).read_text())
+    data["sim_driver"]["ros__parameters"]["initial_positions"] = [0.0] * 5   # 6 joints
+    params = write(tmp_path, "dies.yaml", yaml.safe_dump(data))
+    out = subprocess.run([sys.executable, "-m", "adaptive_streamer.cli", "bringup", "--params",
+                          str(params)], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 1, out.stdout[-3000:] + out.stderr[-3000:]
+    # the child's own error, quoted under the notice (not 30 s of "services did not appear")
+    notice = "bringup: /sim_driver exited during startup (code 1); its last output:\n"
+    assert notice in out.stderr, out.stderr[-3000:]
+    quoted = out.stderr.split(notice)[1]
+    assert "    error: SimDriverError: parameter 'initial_positions': expected 6 finite " \
+           "numbers" in quoted, out.stderr[-3000:]
+    assert "lifecycle services did not appear" not in out.stderr   # no 30 s wait first
+    assert "Traceback" not in out.stdout + out.stderr
+
+
 STAND_IN = """
 import signal, sys, time
 out, delay = sys.argv[1], float(sys.argv[2])

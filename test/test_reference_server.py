@@ -326,8 +326,8 @@ def write_joint_state_bag(path: Path) -> Path:
 
 
 @pytest.mark.parametrize("overrides, fragment", [
-    (dict(), "parameter 'reference_file' is required"),
-    (dict(reference_file="x.csv", limits_file=""), "parameter 'limits_file' is required"),
+    (dict(), "parameter 'reference_file' is empty; expected a non-empty string"),
+    (dict(reference_file="x.csv", limits_file=""), "parameter 'limits_file' is empty"),
     (dict(reference_file=str(DATA / "reference_smooth.csv"), limits_file="/nonexistent.yaml"),
      "parameter 'limits_file': cannot read limits file '/nonexistent.yaml'"),
     (dict(reference_file=str(DATA / "reference_bad_unknown_joint.csv")),
@@ -342,15 +342,15 @@ def write_joint_state_bag(path: Path) -> Path:
     (dict(reference_file=str(DATA / "reference_smooth.csv"), joint_names=["j1", "j2"]),
      "unknown joint 'j3'; expected joints"),
     (dict(reference_file=str(DATA / "reference_smooth.csv"), end_mode="bounce"),
-     "parameter 'end_mode': expected one of ['hold', 'loop'], got 'bounce'"),
+     "parameter 'end_mode' is 'bounce'; expected one of hold, loop"),
     (dict(reference_file=str(DATA / "reference_smooth.csv"), start_mode="later"),
      "parameter 'start_mode'"),
     (dict(reference_file=str(DATA / "reference_smooth.csv"), speed_override=1.5),
-     "parameter 'speed_override': speed override must be in [0.05, 1.0], got 1.5"),
+     "parameter 'speed_override' is 1.5; expected a number in [0.05, 1]"),
     (dict(reference_file=str(DATA / "reference_smooth.csv"), horizon=0),
-     "parameter 'horizon': expected a positive number of points, got 0"),
+     "parameter 'horizon' is 0; expected an integer in [1, inf)"),
     (dict(reference_file=str(DATA / "reference_smooth.csv"), decision_period=0.0),
-     "parameter 'decision_period': expected a positive time in seconds, got 0.0"),
+     "parameter 'decision_period' is 0.0; expected a number in (0, inf)"),
     (dict(reference_file=str(DATA / "reference_points.yaml"), end_mode="loop"),
      "needs the last sample to equal the first (it is refused, not blended); joint 'j1'"),
     (dict(reference_file="BAG", bag_topic="/missing"), "no topic '/missing' in the bag"),
@@ -384,7 +384,7 @@ def test_main_prints_error_and_exits_nonzero():
         capture_output=True, text=True, timeout=60, env=env)
     assert proc.returncode == 1
     assert "Traceback" not in proc.stderr
-    assert "error: parameter 'reference_file':" in proc.stderr
+    assert "error: ReferenceServerError: parameter 'reference_file':" in proc.stderr
     assert "reference_bad_nan.csv: line 3: joint 'j2' position is nan" in proc.stderr
 
 

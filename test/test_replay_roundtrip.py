@@ -60,6 +60,13 @@ def test_other_policy_replays_on_the_same_inputs(live_bag):
     assert c.task["replay"]["rms_deviation"] < 0.01
 
 
+def test_cli_takes_the_policy_kinds_the_demo_takes(live_bag, tmp_path, capsys):
+    # linear_feedback: the demo's card, as `demo --policy linear_feedback` runs it
+    assert cli_replay.main([str(live_bag), "--policy", "linear_feedback", "--out",
+                            str(tmp_path / "out"), "--quiet", "--no-plots"]) == 0
+    assert "policy_feedback.yaml" in capsys.readouterr().out
+
+
 def test_cli_writes_bag_report_and_plots(live_bag, tmp_path):
     out = tmp_path / "out"
     assert cli_replay.main([str(live_bag), "--out", str(out), "--quiet"]) == 0

@@ -395,7 +395,7 @@ GOOD = {"inputs": ["edge"],
      "parameter 'edge.scale': has 2 values but there are 1 fields (give one per field, or "
      "omit it)"),
     ({"edge.filter": "median"},
-     "input 'edge': unknown filter 'median'; expected one of none, butter"),
+     "parameter 'edge.filter' is 'median'; expected one of none, butter"),
     ({"edge.filter": "butter", "edge.cutoff_hz": 60.0, "edge.sample_rate_hz": 100.0},
      "input 'edge': cutoff_hz must be above 0 and below half of sample_rate_hz (50 Hz), "
      "got 60.0"),
@@ -404,16 +404,16 @@ GOOD = {"inputs": ["edge"],
      "got 0.0"),
     ({"edge.filter": "butter", "edge.order": 12, "edge.cutoff_hz": 5.0,
       "edge.sample_rate_hz": 100.0},
-     "input 'edge': filter order must be an integer in 1..8, got 12"),
-    ({"edge.cutoff_hz": "fast"}, "parameter 'edge.cutoff_hz': expected a finite number, "
-                                 "got 'fast'"),
+     "parameter 'edge.order' is 12; expected an integer in [1, 8]"),
+    ({"edge.cutoff_hz": "fast"}, "parameter 'edge.cutoff_hz' is 'fast'; expected a number "
+                                 "in [0, inf)"),
     ({"edge.max_age": -1.0},
-     "input 'edge': max_age must be a positive number of seconds, got -1.0"),
+     "parameter 'edge.max_age' is -1.0; expected a number in (0, inf)"),
     ({"edge.qos": "fastest"},
-     "input 'edge': parameter 'edge.qos': unknown QoS 'fastest'; expected reliable, "
-     "best_effort, sensor_data or transient_local"),
+     "parameter 'edge.qos' is 'fastest'; expected one of sensor_data, best_effort, "
+     "reliable, transient_local"),
     ({"edge.topic": "bad topic"}, "input 'edge': cannot subscribe to topic 'bad topic'"),
-    ({"publish_rate": -5.0}, "parameter 'publish_rate': must be >= 0 Hz, got -5"),
+    ({"publish_rate": -5.0}, "parameter 'publish_rate' is -5.0; expected a number in [0, inf)"),
 ])
 def test_bad_config_is_refused_naming_the_entry(ctx, change, message):
     with pytest.raises(BridgeConfigError) as err:
@@ -422,12 +422,12 @@ def test_bad_config_is_refused_naming_the_entry(ctx, change, message):
 
 
 def test_missing_required_parameters_are_named(ctx):
-    with pytest.raises(BridgeConfigError, match="parameter 'inputs': expected a non-empty list "
-                                                "of strings, got None"):
+    with pytest.raises(BridgeConfigError, match="parameter 'inputs' is empty; expected a non-empty "
+                                                "list of strings"):
         SensorBridge(context=ctx)
     params = {k: v for k, v in GOOD.items() if k != "edge.topic"}
-    with pytest.raises(BridgeConfigError, match="parameter 'edge.topic': expected a non-empty "
-                                                "string, got None"):
+    with pytest.raises(BridgeConfigError, match="parameter 'edge.topic' is empty; expected a "
+                                                "non-empty string"):
         SensorBridge(context=ctx, parameter_overrides=_overrides(params))
 
 
@@ -464,13 +464,13 @@ def test_executable_reports_bad_config_without_traceback(capsys):
                  "-p", "edge.type:=geometry_msgs/msg/Nope", "-p", "edge.fields:=[point.y]",
                  "-p", "edge.features:=[edge_y]"])
     assert code == 1
-    assert "error: input 'edge': unknown message type 'geometry_msgs/msg/Nope'" in \
+    assert "error: BridgeConfigError: input 'edge': unknown message type 'geometry_msgs/msg/Nope'" in \
         capsys.readouterr().err
     # YAML 1.1 reads an unquoted y as a boolean (YAML 1.1 spec, bool type; from memory).
     code = main(["--ros-args", "-p", "inputs:=[edge]", "-p", "edge.topic:=x",
                  "-p", "edge.type:=geometry_msgs/msg/PointStamped", "-p",
                  "edge.fields:=[point.y]", "-p", "edge.features:=[y]"])
     assert code == 1
-    assert "error: parameter 'edge.features': expected a non-empty list of strings, got " \
-           "[True] (YAML reads unquoted y, n, yes, no, on, off, true, false as booleans: " \
+    assert "error: BridgeConfigError: parameter 'edge.features' is [True]; expected a " \
+           "non-empty list of strings (YAML reads unquoted y, n, yes, no, on, off, true, false as booleans: " \
            "quote such names)" in capsys.readouterr().err

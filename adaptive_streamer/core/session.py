@@ -95,7 +95,7 @@ class ShadowStats:
 def make_stages(limits: JointLimits, period: float, limit_scale: float,
                 approach_scale: float) -> tuple[LimitStage, LimitStage]:
     """(running stage, approach stage) for ``limits`` scaled by ``limit_scale``."""
-    running = limits.scaled(limit_scale) if limit_scale < 1.0 else limits
+    running = limits if limit_scale == 1.0 else limits.scaled(limit_scale)  # refuses > 1
     return (LimitStage(running, period),
             LimitStage(limits.scaled(limit_scale * approach_scale), period))
 

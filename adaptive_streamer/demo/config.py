@@ -16,16 +16,16 @@ from typing import Any
 
 import yaml
 
+from ..io.param_specs import ParamsCheckError, check_node_params, check_params_file
 from ..core.feasibility import FeasibilityError, ensure_feasible
 from ..core.limits import JointLimits, LimitsError
 from ..core.policies import PolicyError, load_card
 from ..core.reference import ReferenceTrajectory
 from ..io.reference_bags import ReferenceFileError, load_reference
 from ..sim.config import load_scenario
-from ..share import demo_file, expand
+from ..io.policy_kinds import POLICY_KINDS
+from ..share import KIND_CARDS, demo_file, expand
 
-KIND_CARDS = {"onnx": "policy_edge.yaml", "linear_feedback": "policy_feedback.yaml",
-              "tracker": "policy_reference_only.yaml"}
 REFERENCE_ONLY_CARD = "policy_reference_only.yaml"
 SLOW_DOWN_FRACTION = 0.8
 PLAN_OUTPUT = {"type": "plan", "topic": "driver/plan"}
@@ -88,7 +88,7 @@ def _card_for(policy: str | None, limits_given: bool, notes: list[str]) -> tuple
     path = Path(policy)
     if not path.is_file():
         raise DemoError(f"--policy '{policy}': no such card file, and not one of the kinds "
-                        f"{sorted(KIND_CARDS) + ['hold']}")
+                        f"{list(POLICY_KINDS)}")
     return path.resolve(), path.name
 
 
@@ -131,6 +131,10 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
     """Resolve the demo options into a `DemoConfig` (files written into ``workdir``)."""
     notes: list[str] = []
     params_path = demo_file("params.yaml")
+    try:
+        check_params_file(params_path)
+    except ParamsCheckError as exc:
+        raise DemoError(str(exc)) from None
     data = yaml.safe_load(expand(params_path.read_text()))
     params = {k: copy.deepcopy(v["ros__parameters"]) for k, v in data.items()}
     adapter, ref = params["adapter"], params["reference_server"]
@@ -174,6 +178,10 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
         ref.update({"start_condition": "lock_on", "lock_on.feature": lock.feature,
                     "lock_on.tolerance": lock.tolerance, "lock_on.hold": lock.hold,
                     "lock_on.timeout": lock.timeout, "lock_on.max_age": lock.max_age})
+    problems = [p for kind, values in params.items()
+                for p in check_node_params(kind, values, "the demo's effective params")]
+    if problems:
+        raise DemoError("\n".join(problems))
     return DemoConfig(params, card, label, limits_file, limits, seed,
                       played.duration, played, rate, period, args.output, notes)
 

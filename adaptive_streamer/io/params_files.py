@@ -10,21 +10,11 @@ import yaml
 from ..core.text_files import yaml_problem
 from ..core.adapter_setup import SetupError
 from ..share import expand
+from .param_specs import flatten
 
 
 class ParamsFileError(SetupError):
     """A params file cannot be read or has no section for the node (names the file)."""
-
-
-def _flatten(data: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for k, v in data.items():
-        key = f"{prefix}{k}"
-        if isinstance(v, Mapping):
-            out.update(_flatten(v, key + "."))
-        else:
-            out[key] = v
-    return out
 
 
 def load_params_file(path: str | Path, node: str = "adapter") -> dict[str, Any]:
@@ -45,7 +35,7 @@ def load_params_file(path: str | Path, node: str = "adapter") -> dict[str, Any]:
     for key in ("/**", base, f"/{base}", node, node.strip("/")):
         section = data.get(key)
         if isinstance(section, Mapping) and isinstance(section.get("ros__parameters"), Mapping):
-            merged.update(_flatten(section["ros__parameters"]))
+            merged.update(flatten(section["ros__parameters"]))
             found = True
     if not found:
         raise ParamsFileError(f"params file '{p}': no section for node '{base}' (expected "

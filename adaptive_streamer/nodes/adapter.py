@@ -42,7 +42,7 @@ from trajectory_msgs.msg import JointTrajectory
 
 from adaptive_streamer.core import decision_record
 from adaptive_streamer.core.activation import check_activation, first_tick
-from adaptive_streamer.core.adapter_setup import DEFAULTS, WATCHDOG_PARAMS, build_session
+from adaptive_streamer.core.adapter_setup import DEFAULTS, build_session
 from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, session_summary,
                                                    session_values)
 from adaptive_streamer.core.policies import load_policy
@@ -53,7 +53,8 @@ from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 
 from . import common
 from ..io.adapter_inputs import LatestInputs
-from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name
+from ..io.param_specs import ADAPTER
+from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, refuse_undeclared
 from .driver_outputs import DriverOutput, fill_setpoint, output_type, setpoint_message
 from .stream_thread import StreamThread
 from .threads import make_executor, prepare_process, set_thread_priority
@@ -107,52 +108,11 @@ class AdapterNode(LifecycleNode):
 
     # ------------------------------------------------------------------ parameters
     def _declare_parameters(self) -> None:
-        d = declare
-        d(self, "policy", DEFAULTS["policy"],
-          "path of the policy card; setting it swaps the policy")
-        d(self, "shadow_policy", DEFAULTS["shadow_policy"],
-          "optional policy card evaluated alongside, never commanded")
-        d(self, "policy_active", "", "read-only: the policy card that really runs")
-        d(self, "limits_file", DEFAULTS["limits_file"],
-          "limits YAML or URDF (empty: robot_description topic)")
-        d(self, "limits_dynamics", DEFAULTS["limits_dynamics"],
-          "limits YAML with acceleration/jerk beside a URDF")
-        d(self, "joints", DEFAULTS["joints"], "joint order (empty: the limits file's order)")
-        d(self, "decision_period", DEFAULTS["decision_period"],
-          "decision period [s] (read at configure)")
-        d(self, "stream_rate", DEFAULTS["stream_rate"],
-          "setpoint stream rate [Hz], 125-1000 (read at configure)")
-        d(self, "horizon", DEFAULTS["horizon"],
-          "reference points per decision (read at configure)")
-        d(self, "limit_scale", DEFAULTS["limit_scale"],
-          "scale of velocity/acceleration/jerk limits in (0, 1]")
-        d(self, "features", DEFAULTS["features"],
-          "feedback features to read (empty: what the policy needs)")
-        d(self, "outputs", DEFAULTS["outputs"], "driver output names (see driver_outputs)")
-        d(self, "autostart", False, "configure and activate on start")
-        d(self, "activation_velocity", 0.02, "max |joint velocity| to accept activation [rad/s]")
-        d(self, "stop_timeout", 5.0, "max wait for rest on deactivate [s]")
-        d(self, "reference_pause_service", "reference_server/pause",
-          "Trigger service called (asynchronously) when the watchdog stops the arm; empty: none")
-        d(self, "joint_states_qos", "sensor_data", "QoS of the joint_states subscription")
-        d(self, "feedback_qos", "sensor_data", "QoS of the feedback subscription")
-        d(self, "stream_priority", 10, "SCHED_FIFO priority of the stream thread (0: normal)")
-        d(self, "decision_priority", 0, "SCHED_FIFO priority of the thread that runs the "
-          "executor and the decisions (0: normal); below stream_priority")
-        d(self, "approach_scale", DEFAULTS["approach_scale"], "limit scale of the approach move")
-        d(self, "approach_tolerance", DEFAULTS["approach_tolerance"],
-          "distance [rad] at which the policy takes over")
-        d(self, "approach_bandwidth", DEFAULTS["approach_bandwidth"],
-          "approach tracking bandwidth [rad/s]")
-        d(self, "stream_jitter", DEFAULTS["stream_jitter"],
-          "timing jitter of a sent setpoint [s]: a setpoint advances along the plan at most "
-          "the real time since the previous one left plus this, else the plan is re-timed "
-          "(read at configure)")
-        d(self, "plan_lead", DEFAULTS["plan_lead"],
-          "with a plan output: send each decision's plan at least this long before its "
-          "instant, else drop it and follow the sent braking continuation [s]")
-        for key in WATCHDOG_PARAMS:
-            d(self, f"watchdog.{key}", DEFAULTS[f"watchdog.{key}"], f"watchdog threshold '{key}'")
+        """Declare every parameter of the adapter's table; refuse overrides it does not
+        read (a params-file typo must not pass silently)."""
+        for spec in ADAPTER.params:
+            declare(self, spec)
+        refuse_undeclared(self, ADAPTER)
 
     def _param(self, name: str) -> Any:
         return self.get_parameter(name).value
@@ -170,11 +130,12 @@ class AdapterNode(LifecycleNode):
             if p.name == "policy_active" and not internal:
                 return SetParametersResult(successful=False,
                                            reason="policy_active is read-only (set 'policy')")
+            spec = ADAPTER.lookup(p.name, {})
+            problem = spec.problem(p.value) if spec is not None and not internal else None
+            if problem is not None:
+                return SetParametersResult(successful=False, reason=f"{p.name} {problem}")
             if p.name == "limit_scale":
                 x = p.value
-                if not isinstance(x, (int, float)) or not (0.0 < x <= 1.0):
-                    return SetParametersResult(successful=False,
-                                               reason=f"limit_scale must be in (0, 1], got {x!r}")
                 if self.session is not None:
                     self.session.set_limit_scale(float(x))
                     self.get_logger().info(f"limit_scale -> {x:g} (takes effect once the motion fits)")

@@ -12,9 +12,13 @@ import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
 from rcl_interfaces.msg import ParameterDescriptor
 from rclpy.executors import ExternalShutdownException, Executor, SingleThreadedExecutor
+from rclpy.exceptions import InvalidParameterTypeException
 from rclpy.node import Node
+from rclpy.parameter import Parameter
 from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy,
                        qos_profile_sensor_data)
+
+from ..io.param_specs import LIST_KINDS, NodeParams, Param, ParamKind
 
 
 OK, WARN, ERROR, STALE = (DiagnosticStatus.OK, DiagnosticStatus.WARN, DiagnosticStatus.ERROR,
@@ -44,12 +48,70 @@ def now_sec(node: Node) -> float:
     return node.get_clock().now().nanoseconds * 1e-9
 
 
-def declare(node: Node, name: str, default: Any, description: str,
-            read_only: bool = False, dynamic_typing: bool = False) -> Any:
-    """Declare a parameter with a description and return its current value."""
-    desc = ParameterDescriptor(description=description, read_only=read_only,
-                               dynamic_typing=dynamic_typing)
-    return node.declare_parameter(name, default, desc).value
+class NodeParamError(ValueError):
+    """A parameter given to a node (params file, ``-p``) is unknown, empty where a value is
+    needed, of the wrong type or out of range (names the parameter and what was expected)."""
+
+
+_UNSET = object()
+_ROS_TYPES = {ParamKind.BOOL: Parameter.Type.BOOL, ParamKind.INTEGER: Parameter.Type.INTEGER,
+              ParamKind.NUMBER: Parameter.Type.DOUBLE, ParamKind.STRING: Parameter.Type.STRING,
+              ParamKind.STRINGS: Parameter.Type.STRING_ARRAY,
+              ParamKind.NUMBERS: Parameter.Type.DOUBLE_ARRAY}
+
+
+def _overrides(node: Node) -> dict[str, Parameter]:
+    """The node's parameter overrides (params files and ``-p`` arguments), by name; rclpy
+    keeps them on the node and has no public accessor."""
+    return node._parameter_overrides  # noqa: SLF001
+
+
+def declare(node: Node, spec: Param, default: Any = _UNSET) -> Any:
+    """Declare the parameter ``spec`` (its table entry, `adaptive_streamer.io.param_specs`)
+    and return its value, checked against the table. ``default`` replaces the table's
+    default (for defaults only known at run time). An empty list in a params file (which
+    rclpy reads as "not set") means "empty" where the table allows it. A value that does
+    not fit raises the node's ``param_error`` (its module's error type; default
+    `NodeParamError`)."""
+    error = getattr(node, "param_error", NodeParamError)
+    value = spec.default if default is _UNSET else default
+    if value is None and not spec.dynamic_typing:
+        value = _ROS_TYPES[spec.kind]
+    desc = ParameterDescriptor(description=spec.description, read_only=spec.read_only,
+                               dynamic_typing=spec.dynamic_typing)
+    override = _overrides(node).get(spec.name)
+    if override is not None and override.type_ == Parameter.Type.NOT_SET:
+        if spec.kind not in LIST_KINDS or not spec.empty_ok:
+            raise error(f"parameter '{spec.name}' is empty; expected "
+                                 f"{spec.expected()}")
+        return node.declare_parameter(spec.name, value, desc, ignore_override=True).value
+    try:
+        result = node.declare_parameter(spec.name, value, desc).value
+    except InvalidParameterTypeException:
+        given = override.value if override is not None else None
+        raise error(f"parameter '{spec.name}' is {given!r}; expected "
+                             f"{spec.expected()}") from None
+    problem = spec.problem(result)
+    if problem is not None:
+        raise error(f"parameter '{spec.name}' {problem}")
+    return result
+
+
+def refuse_undeclared(node: Node, table: NodeParams) -> None:
+    """Refuse parameter overrides the node does not read (a typo in a params file would
+    otherwise be ignored): raises `NodeParamError` naming the first one and the closest
+    known name. Members of a group (``<output>.topic``) count as known for the entries
+    the node's list parameters name now. A params file's ``/**`` section reaches every
+    node, so its entries must be parameters of each node it starts (``use_sim_time``)."""
+    values = {p.name: node.get_parameter(p.name).value for p in table.params
+              if node.has_parameter(p.name)}
+    for name in sorted(_overrides(node)):
+        if node.has_parameter(name):
+            continue
+        why = table.unknown(name, values)
+        if why is not None:
+            raise NodeParamError(f"parameter {why} (given to node "
+                                 f"'{node.get_fully_qualified_name()}')")
 
 
 def reliable_qos(depth: int = 1, transient_local: bool = False) -> QoSProfile:

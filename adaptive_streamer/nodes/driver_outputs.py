@@ -46,6 +46,7 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from adaptive_streamer.core.plan_ahead import PlanKnots
 from adaptive_streamer.core.segment import MotionState
 
+from ..io.param_specs import ADAPTER
 from ..io.plan_messages import PlanEncoder
 from ..io.stamps import sec_to_stamp
 from .common import declare, qos_by_name
@@ -53,7 +54,6 @@ from .common import declare, qos_by_name
 OUTPUT_TYPES = ("position", "velocity", "trajectory", "plan")
 DEFAULT_TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",
                   "trajectory": "driver/trajectory_command", "plan": "driver/plan"}
-TYPE_HELP = "position | velocity | trajectory | plan"
 
 
 class OutputConfigError(ValueError):
@@ -68,16 +68,16 @@ class DriverOutput:
         kind = output_type(node, name)
         if kind not in OUTPUT_TYPES:
             raise OutputConfigError(f"output '{name}': type '{kind}' is not one of {list(OUTPUT_TYPES)}")
-        topic = _declared(node, f"{name}.topic", DEFAULT_TOPICS[kind], "topic of this output")
-        order = list(_declared(node, f"{name}.joints", [""], "driver joint order (empty: adapter order)"))
+        topic = _declared(node, name, "topic", DEFAULT_TOPICS[kind])
+        order = list(_declared(node, name, "joints"))
         order = [j for j in order if j] or list(joints)
         missing = [j for j in order if j not in joints]
         if missing or len(set(order)) != len(order) or len(order) != len(joints):
             raise OutputConfigError(
                 f"output '{name}': joints {order} must be the adapter's joints {list(joints)} "
                 "in the driver's order, each once")
-        qos_name = _declared(node, f"{name}.qos", "reliable", "reliable | best_effort | sensor_data")
-        depth = int(_declared(node, f"{name}.depth", 1, "history depth"))
+        qos_name = _declared(node, name, "qos")
+        depth = int(_declared(node, name, "depth"))
         try:
             qos = qos_by_name(qos_name, depth)
         except ValueError as exc:
@@ -137,14 +137,16 @@ class DriverOutput:
 
 def output_type(node: Node, name: str) -> str:
     """The ``<name>.type`` parameter of output ``name`` (declared on first use)."""
-    return _declared(node, f"{name}.type", "position", TYPE_HELP)
+    return _declared(node, name, "type")
 
 
-def _declared(node: Node, name: str, default: Any, description: str) -> Any:
-    """The parameter's value, declared on first use (outputs are rebuilt on each configure)."""
-    if node.has_parameter(name):
-        return node.get_parameter(name).value
-    return declare(node, name, default, description)
+def _declared(node: Node, output: str, member: str, default: Any = None) -> Any:
+    """Parameter ``<output>.<member>`` (the adapter's table), declared on first use (outputs
+    are rebuilt on each configure); ``default`` replaces the table's."""
+    spec = ADAPTER.member("outputs", output, member)
+    if node.has_parameter(spec.name):
+        return node.get_parameter(spec.name).value
+    return declare(node, spec) if default is None else declare(node, spec, default)
 
 
 def fill_setpoint(msg: JointTrajectory, t: float, sp: MotionState) -> None:

@@ -41,6 +41,7 @@ from adaptive_streamer.sim.config import ScenarioError, load_scenario
 from adaptive_streamer.sim.line_sensor import LineSensor, true_edge_reading
 
 from ..io.stamps import sec_to_stamp, stamp_to_sec
+from ..io.param_specs import EDGE_SENSOR
 from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
                      run_nodes)
 
@@ -54,19 +55,19 @@ class EdgeSensorError(ValueError):
 class EdgeSensor(SetupNode):
     """Publishes simulated line-sensor readings computed from the measured joint states."""
 
+    param_error = EdgeSensorError
+
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("edge_sensor", **kwargs)
 
     def _setup(self) -> None:
-        ro = dict(read_only=True, dynamic_typing=True)
-        path = declare(self, "scenario", "", "scenario YAML ('' = the demo's)", **ro)
-        seed = declare(self, "seed", -1, "run seed (-1 = the scenario file's)", **ro)
+        path = declare(self, EDGE_SENSOR["scenario"])
+        seed = declare(self, EDGE_SENSOR["seed"])
         if isinstance(seed, bool) or not isinstance(seed, int) or seed < -1:
             raise EdgeSensorError(f"parameter 'seed': expected an integer >= -1, got {seed!r}")
         override = {}
         for name in ("panel_offset_mm", "panel_angle_deg"):
-            value = declare(self, name, math.nan, "real placement (NaN = drawn from the seed)",
-                            **ro)
+            value = declare(self, EDGE_SENSOR[name])
             if isinstance(value, bool) or not isinstance(value, (int, float)) \
                     or math.isinf(value):
                 raise EdgeSensorError(f"parameter '{name}': expected a finite number or NaN, "
@@ -86,7 +87,7 @@ class EdgeSensor(SetupNode):
                                  scenario.sensor_seed(run_seed))
         qos = {}
         for name in ("joint_states_qos", "output_qos"):
-            value = declare(self, name, "reliable", "reliable | best_effort | sensor_data", **ro)
+            value = declare(self, EDGE_SENSOR[name])
             try:
                 qos[name] = qos_by_name(str(value), depth=10)
             except ValueError as exc:
@@ -105,7 +106,7 @@ class EdgeSensor(SetupNode):
         self.create_subscription(JointState, "joint_states", self._on_joint_state,
                                  qos["joint_states_qos"])
         self.create_timer(1.0 / scenario.sensor.rate, self._on_tick)
-        declare(self, "dropout", False, "fault injection: publish no readings while true")
+        declare(self, EDGE_SENSOR["dropout"])
         self._diag = DiagnosticsReporter(self, "edge_sensor", values=self._diag_values)
         self._diag.set(OK, "waiting for joint_states")
         self.get_logger().info(

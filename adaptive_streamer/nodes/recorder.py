@@ -51,6 +51,7 @@ from adaptive_streamer.io import run_info
 from adaptive_streamer.io.bag_io import BagError, BagWriter, encode, typestore
 from adaptive_streamer.io.recording import STACK_TOPICS, installed_message_class, qos_to_rosbags
 
+from ..io.param_specs import RECORDER
 from .common import OK, DiagnosticsReporter, declare, run_nodes
 
 STRING = "std_msgs/msg/String"
@@ -63,18 +64,19 @@ class RecorderError(ValueError):
 class RecorderNode(Node):
     """Records the configured topics to a bag (see the module docstring)."""
 
+    param_error = RecorderError
+
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("recorder", **kwargs)
-        ro = {"read_only": True}
         stamp = _dt.datetime.now(_dt.timezone.utc).strftime("%Y%m%d_%H%M%S")
-        output = declare(self, "output", f"bags/run_{stamp}", "bag folder to create", **ro)
-        topics = declare(self, "topics", list(STACK_TOPICS), "topics to record", **ro)
-        compression = declare(self, "compression", "none", "none | zstd | lz4", **ro)
-        chunk_size = declare(self, "chunk_size", 256 * 1024, "bytes per chunk", **ro)
-        chunk_duration = declare(self, "chunk_duration", 1.0, "max age of a chunk [s]", **ro)
-        period = declare(self, "discovery_period", 0.25, "topic discovery period [s]", **ro)
-        self._adapter = declare(self, "adapter_node", "adapter", "adapter to store", **ro)
-        self._depth = int(declare(self, "depth", 100, "subscription history depth", **ro))
+        output = declare(self, RECORDER["output"], f"bags/run_{stamp}")
+        topics = declare(self, RECORDER["topics"], list(STACK_TOPICS))
+        compression = declare(self, RECORDER["compression"])
+        chunk_size = declare(self, RECORDER["chunk_size"])
+        chunk_duration = declare(self, RECORDER["chunk_duration"])
+        period = declare(self, RECORDER["discovery_period"])
+        self._adapter = declare(self, RECORDER["adapter_node"])
+        self._depth = int(declare(self, RECORDER["depth"]))
         wanted = [t for t in topics if t]
         if not wanted:
             raise RecorderError("parameter 'topics' is empty")

@@ -55,16 +55,14 @@ from adaptive_streamer.core.feasibility import FeasibilityError, ensure_feasible
 from adaptive_streamer.core.limits import JointLimits, LimitsError
 from adaptive_streamer.core.lock_on import (LockOn, LockOnConfig, LockOnError, LockState,
                                             LockVerdict)
-from adaptive_streamer.core.playback import (END_MODES, Playback, PlaybackError,
-                                             validate_override)
+from adaptive_streamer.core.playback import Playback, PlaybackError, validate_override
 from adaptive_streamer.io.reference_bags import ReferenceFileError, load_reference
 
+from ..io.param_specs import REFERENCE_SERVER
 from .common import (ERROR, OK, WARN, DiagnosticsReporter, SetupNode, declare, now_sec,
                      reliable_qos, run_nodes)
 from ..io.trajectory_conversions import samples_to_msg, window_to_msg
 
-START_MODES = ("service", "immediate")
-START_CONDITIONS = ("none", "lock_on")
 
 
 class ReferenceServerError(RuntimeError):
@@ -74,75 +72,40 @@ class ReferenceServerError(RuntimeError):
 class ReferenceServer(SetupNode):
     """Publishes reference windows from a core `Playback`; converts only."""
 
+    param_error = ReferenceServerError
+
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("reference_server", **kwargs)
 
     # ------------------------------------------------------------------ startup
     def _setup(self) -> None:
-        ro = dict(read_only=True)
-        ref_file = declare(self, "reference_file", "", "reference CSV / YAML / rosbag2 path", **ro)
-        topic = declare(self, "bag_topic", "", "topic to read when reference_file is a bag", **ro)
-        joints = declare(self, "joint_names", Parameter.Type.STRING_ARRAY,
-                         "expected joints and their order (default: the file's)", **ro)
-        limits_file = declare(self, "limits_file", "", "joint limits YAML or URDF", **ro)
-        horizon = declare(self, "horizon", 10, "points per window", **ro)
-        period = declare(self, "decision_period", 0.05, "window spacing and publish period [s]",
-                         **ro)
-        override = declare(self, "speed_override", 1.0, "time-scaling factor in [0.05, 1]")
-        ramp = declare(self, "override_ramp_time", 1.0, "duration of each override ramp [s]", **ro)
-        end_mode = declare(self, "end_mode", "hold", "'hold' or 'loop'", **ro)
-        start_mode = declare(self, "start_mode", "service", "'service' or 'immediate'", **ro)
-        slow_down = declare(self, "slow_down", False, "slow an infeasible reference down", **ro)
-        fraction = declare(self, "limit_fraction", 0.8, "fraction of limits for timing/slow-down",
-                           **ro)
-        max_gap = declare(self, "max_gap", 1.0, "largest gap between file samples [s]; 0: off",
-                          **ro)
-        condition = declare(self, "start_condition", "none", "'none' or 'lock_on'", **ro)
-        lock_values = (
-            declare(self, "lock_on.feature", "", "feedback feature judged by lock-on", **ro),
-            declare(self, "lock_on.tolerance", 0.001, "settled |value| (feature unit)", **ro),
-            declare(self, "lock_on.hold", 0.5, "settled for this long [s]", **ro),
-            declare(self, "lock_on.timeout", 10.0, "lock-on timeout [s]", **ro),
-            declare(self, "lock_on.max_age", 0.1, "longest reading gap [s]", **ro))
+        ref_file = declare(self, REFERENCE_SERVER["reference_file"])
+        topic = declare(self, REFERENCE_SERVER["bag_topic"])
+        joints = declare(self, REFERENCE_SERVER["joint_names"])
+        limits_file = declare(self, REFERENCE_SERVER["limits_file"])
+        horizon = declare(self, REFERENCE_SERVER["horizon"])
+        period = declare(self, REFERENCE_SERVER["decision_period"])
+        override = declare(self, REFERENCE_SERVER["speed_override"])
+        ramp = declare(self, REFERENCE_SERVER["override_ramp_time"])
+        end_mode = declare(self, REFERENCE_SERVER["end_mode"])
+        start_mode = declare(self, REFERENCE_SERVER["start_mode"])
+        slow_down = declare(self, REFERENCE_SERVER["slow_down"])
+        fraction = declare(self, REFERENCE_SERVER["limit_fraction"])
+        max_gap = declare(self, REFERENCE_SERVER["max_gap"])
+        condition = declare(self, REFERENCE_SERVER["start_condition"])
+        lock_values = tuple(declare(self, REFERENCE_SERVER[f"lock_on.{name}"])
+                            for name in ("feature", "tolerance", "hold", "timeout", "max_age"))
 
-        if not ref_file:
-            raise ReferenceServerError("parameter 'reference_file' is required (CSV, YAML or "
-                                       "rosbag2 path)")
-        if not limits_file:
-            raise ReferenceServerError("parameter 'limits_file' is required (joint limits YAML "
-                                       "or URDF)")
-        if horizon < 1:
-            raise ReferenceServerError(f"parameter 'horizon': expected a positive number of "
-                                       f"points, got {horizon}")
         for name, value in (("decision_period", period), ("override_ramp_time", ramp)):
-            if not (math.isfinite(value) and value > 0.0):
-                raise ReferenceServerError(f"parameter '{name}': expected a positive time in "
+            if not math.isfinite(value):
+                raise ReferenceServerError(f"parameter '{name}': expected a finite time in "
                                            f"seconds, got {value}")
-        if end_mode not in END_MODES:
-            raise ReferenceServerError(f"parameter 'end_mode': expected one of {list(END_MODES)}, "
-                                       f"got {end_mode!r}")
-        if start_mode not in START_MODES:
-            raise ReferenceServerError(f"parameter 'start_mode': expected one of "
-                                       f"{list(START_MODES)}, got {start_mode!r}")
-        if condition not in START_CONDITIONS:
-            raise ReferenceServerError(f"parameter 'start_condition': expected one of "
-                                       f"{list(START_CONDITIONS)}, got {condition!r}")
         self._lock: LockOn | None = None
         if condition == "lock_on":
             try:
                 self._lock = LockOn(LockOnConfig(*lock_values))
             except LockOnError as exc:
                 raise ReferenceServerError(f"parameters 'lock_on.*': {exc}") from None
-        if not 0.0 < fraction <= 1.0:
-            raise ReferenceServerError(f"parameter 'limit_fraction': expected a value in (0, 1], "
-                                       f"got {fraction}")
-        if max_gap < 0.0:
-            raise ReferenceServerError(f"parameter 'max_gap': expected >= 0 (0 disables), got "
-                                       f"{max_gap}")
-        try:
-            validate_override(override)
-        except PlaybackError as exc:
-            raise ReferenceServerError(f"parameter 'speed_override': {exc}") from None
         try:
             limits = JointLimits.from_file(limits_file)
         except LimitsError as exc:

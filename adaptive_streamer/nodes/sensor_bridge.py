@@ -51,6 +51,7 @@ from adaptive_streamer.core.feedback import (FeatureTable, FeedbackError, Filter
                                              Verdict)
 from adaptive_streamer.nodes.common import (ERROR, OK, WARN, DiagnosticsReporter, SetupNode,
                                             declare, now_sec, qos_by_name, run_nodes)
+from adaptive_streamer.io.param_specs import SENSOR_BRIDGE
 from adaptive_streamer.io.stamps import sec_to_stamp, stamp_to_sec
 from adaptive_streamer.io.field_paths import (FieldPathError, compile_fields, is_stamped,
                                                  message_class, type_name)
@@ -79,87 +80,71 @@ class _Params:
     def __init__(self, node: Node) -> None:
         self._node = node
 
-    def _get(self, name: str, default: Any, description: str) -> Any:
-        return declare(self._node, name, default, description, dynamic_typing=True)
+    def _get(self, name: str) -> Any:
+        """Declare ``name`` from the node's table (``<entry>.<member>`` for an input's)."""
+        entry, _, member = name.rpartition(".")
+        spec = SENSOR_BRIDGE.member("inputs", entry, member) if entry else SENSOR_BRIDGE[name]
+        return declare(self._node, spec)
 
-    def string(self, name: str, description: str, default: str | None = None) -> str:
-        value = self._get(name, default, description)
+    def string(self, name: str) -> str:
+        value = self._get(name)
         if not isinstance(value, str) or not value:
             raise BridgeConfigError(f"parameter '{name}': expected a non-empty string, "
                                     f"got {value!r}")
         return value
 
-    def strings(self, name: str, description: str) -> list[str]:
-        value = self._get(name, None, description)
+    def strings(self, name: str) -> list[str]:
+        value = self._get(name)
         if not isinstance(value, (list, tuple)) or not value \
                 or not all(isinstance(v, str) for v in value):
-            hint = (" (YAML reads unquoted y, n, yes, no, on, off, true, false as booleans: "
-                    "quote such names)" if isinstance(value, (list, tuple))
-                    and any(isinstance(v, bool) for v in value) else "")
             raise BridgeConfigError(f"parameter '{name}': expected a non-empty list of "
-                                    f"strings, got {value!r}{hint}")
+                                    f"strings, got {value!r}")
         return list(value)
 
-    def number(self, name: str, description: str, default: float) -> float:
-        value = self._get(name, default, description)
-        if isinstance(value, bool) or not isinstance(value, (int, float)) \
-                or not math.isfinite(value):
+    def number(self, name: str) -> float:
+        value = self._get(name)
+        if not math.isfinite(value):
             raise BridgeConfigError(f"parameter '{name}': expected a finite number, "
                                     f"got {value!r}")
         return float(value)
 
-    def numbers(self, name: str, description: str, count: int, default: float) -> list[float]:
-        value = self._get(name, None, description)
-        if value is None or (isinstance(value, (list, tuple, bytes)) and len(value) == 0):
+    def numbers(self, name: str, count: int, default: float) -> list[float]:
+        """One number per field (``default`` for each when the parameter is unset)."""
+        value = self._get(name)
+        if value is None or len(value) == 0 or value == [""]:
             return [default] * count
-        if not isinstance(value, (list, tuple)) \
-                or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                           for v in value):
-            raise BridgeConfigError(f"parameter '{name}': expected a list of numbers, "
-                                    f"got {value!r}")
         if len(value) != count:
             raise BridgeConfigError(f"parameter '{name}': has {len(value)} values but there "
                                     f"are {count} fields (give one per field, or omit it)")
         return [float(v) for v in value]
 
-    def integer(self, name: str, description: str, default: int) -> int:
-        value = self._get(name, default, description)
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise BridgeConfigError(f"parameter '{name}': expected an integer, got {value!r}")
-        return value
+    def integer(self, name: str) -> int:
+        return int(self._get(name))
 
-    def boolean(self, name: str, description: str, default: bool) -> bool:
-        value = self._get(name, default, description)
-        if not isinstance(value, bool):
-            raise BridgeConfigError(f"parameter '{name}': expected true or false, "
-                                    f"got {value!r}")
-        return value
+    def boolean(self, name: str) -> bool:
+        return bool(self._get(name))
 
 
 def _read_entry(p: _Params, entry: str) -> tuple[InputSpec, _Channel]:
     where = f"input '{entry}'"
-    topic = p.string(f"{entry}.topic", "Topic to subscribe to")
-    tname = p.string(f"{entry}.type", "Message type, e.g. geometry_msgs/msg/PointStamped")
-    fields = p.strings(f"{entry}.fields", "Numeric field paths, e.g. point.y, data[2], "
-                                          "position[j3]")
-    features = p.strings(f"{entry}.features", "Output feature names, one per field")
+    topic = p.string(f"{entry}.topic")
+    tname = p.string(f"{entry}.type")
+    fields = p.strings(f"{entry}.fields")
+    features = p.strings(f"{entry}.features")
     if len(features) != len(fields):
         raise BridgeConfigError(f"{where}: {len(fields)} fields but {len(features)} features "
                                 "(give one feature name per field)")
     n = len(fields)
-    scale = p.numbers(f"{entry}.scale", "Scale per field (value = scale * raw + offset)", n, 1.0)
-    offset = p.numbers(f"{entry}.offset", "Offset per field", n, 0.0)
+    scale = p.numbers(f"{entry}.scale", n, 1.0)
+    offset = p.numbers(f"{entry}.offset", n, 0.0)
     spec = FilterSpec(
-        kind=p.string(f"{entry}.filter", "Low-pass filter: none or butter", "none"),
-        order=p.integer(f"{entry}.order", "Butterworth order (1..8)", 2),
-        cutoff_hz=p.number(f"{entry}.cutoff_hz", "Filter cutoff [Hz]", 0.0),
-        sample_rate_hz=p.number(f"{entry}.sample_rate_hz",
-                                "Rate the sensor publishes at [Hz] (filter design rate)", 0.0))
-    max_age = p.number(f"{entry}.max_age", "Samples older than this [s, ROS time] are stale", 0.5)
-    restamp = p.boolean(f"{entry}.restamp", "Stamp samples on arrival instead of header.stamp",
-                        False)
-    qos = p.string(f"{entry}.qos", "Input QoS: sensor_data, best_effort, reliable, "
-                                   "transient_local", "sensor_data")
+        kind=p.string(f"{entry}.filter"),
+        order=p.integer(f"{entry}.order"),
+        cutoff_hz=p.number(f"{entry}.cutoff_hz"),
+        sample_rate_hz=p.number(f"{entry}.sample_rate_hz"))
+    max_age = p.number(f"{entry}.max_age")
+    restamp = p.boolean(f"{entry}.restamp")
+    qos = p.string(f"{entry}.qos")
     try:
         qos_by_name(qos)
     except ValueError as exc:
@@ -178,7 +163,7 @@ def _read_entry(p: _Params, entry: str) -> tuple[InputSpec, _Channel]:
 def read_config(node: Node) -> tuple[FeatureTable, list[_Channel]]:
     """Declare and read the input parameters; raise `BridgeConfigError` on bad settings."""
     p = _Params(node)
-    entries = p.strings("inputs", "Names of the input entries (each configured as <name>.*)")
+    entries = p.strings("inputs")
     seen: set[str] = set()
     for entry in entries:
         if not entry or entry[0].isdigit() or any(c not in _ENTRY_NAME for c in entry):
@@ -202,15 +187,17 @@ def read_config(node: Node) -> tuple[FeatureTable, list[_Channel]]:
 class SensorBridge(SetupNode):
     """Subscribes to the configured sensor inputs and publishes ``feedback``."""
 
+    param_error = BridgeConfigError
+
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("sensor_bridge", **kwargs)
 
     def _setup(self) -> None:
         p = _Params(self)
-        rate = p.number("publish_rate", "feedback rate [Hz]; 0 = on every accepted sample", 0.0)
+        rate = p.number("publish_rate")
         if rate < 0.0:
             raise BridgeConfigError(f"parameter 'publish_rate': must be >= 0 Hz, got {rate:g}")
-        feedback_qos = p.string("feedback_qos", "QoS of the feedback publisher", "reliable")
+        feedback_qos = p.string("feedback_qos")
         try:
             out_qos = qos_by_name(feedback_qos)
         except ValueError as exc:

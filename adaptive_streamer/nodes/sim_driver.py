@@ -67,10 +67,10 @@ from trajectory_msgs.msg import JointTrajectory, JointTrajectoryPoint
 from adaptive_streamer.sim.plan_target import PlanTarget, PlanTargetError
 from adaptive_streamer.sim.plant import PlantConfig, PlantError, SimPlant
 
+from ..io.param_specs import SIM_DRIVER
 from .common import (OK, WARN, DiagnosticsReporter, SetupNode, declare, qos_by_name,
                      run_nodes)
 
-DEFAULT_JOINTS = ["j1", "j2", "j3", "j4", "j5", "j6"]
 TOPICS = {"position": "driver/position_command", "velocity": "driver/velocity_command",
           "trajectory": "driver/trajectory_command", "plan": "driver/plan"}
 MAX_LAG_S = 0.5          # behind the clock by more than this: re-anchor instead of catching up
@@ -81,37 +81,23 @@ class SimDriverError(ValueError):
     """The sim_driver parameters are missing, mistyped or out of range."""
 
 
-def _number(node: Node, name: str, default: float, description: str) -> float:
-    value = declare(node, name, default, description, read_only=True, dynamic_typing=True)
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+def _number(node: Node, name: str) -> float:
+    value = declare(node, SIM_DRIVER[name])
+    if not math.isfinite(value):
         raise SimDriverError(f"parameter '{name}': expected a finite number, got {value!r}")
     return float(value)
 
 
-def _integer(node: Node, name: str, default: int, description: str) -> int:
-    value = declare(node, name, default, description, read_only=True, dynamic_typing=True)
-    if isinstance(value, bool) or not isinstance(value, int):
-        raise SimDriverError(f"parameter '{name}': expected an integer, got {value!r}")
-    return value
-
-
-def _strings(node: Node, name: str, default: list[str], description: str) -> list[str]:
-    value = declare(node, name, default, description, read_only=True, dynamic_typing=True)
-    if not isinstance(value, (list, tuple)) or not value \
-            or not all(isinstance(v, str) and v for v in value):
-        raise SimDriverError(f"parameter '{name}': expected a non-empty list of names, "
-                             f"got {value!r}")
+def _strings(node: Node, name: str) -> list[str]:
+    value = declare(node, SIM_DRIVER[name])
     if len(set(value)) != len(value):
         raise SimDriverError(f"parameter '{name}': names must be unique, got {list(value)}")
     return list(value)
 
 
-def _numbers(node: Node, name: str, count: int, description: str) -> list[float]:
-    value = declare(node, name, [0.0] * count, description, read_only=True,
-                    dynamic_typing=True)
-    if not isinstance(value, (list, tuple)) or len(value) != count \
-            or not all(isinstance(v, (int, float)) and not isinstance(v, bool)
-                       and math.isfinite(v) for v in value):
+def _numbers(node: Node, name: str, count: int) -> list[float]:
+    value = declare(node, SIM_DRIVER[name], [0.0] * count)
+    if len(value) != count or not all(math.isfinite(v) for v in value):
         raise SimDriverError(f"parameter '{name}': expected {count} finite numbers (one per "
                              f"joint), got {value!r}")
     return [float(v) for v in value]
@@ -120,40 +106,33 @@ def _numbers(node: Node, name: str, count: int, description: str) -> list[float]
 class SimDriver(SetupNode):
     """Steps a `SimPlant` on a timer and publishes its measured state as ``joint_states``."""
 
+    param_error = SimDriverError
+
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("sim_driver", **kwargs)
 
     def _setup(self) -> None:
-        self._joints = _strings(self, "joints", DEFAULT_JOINTS, "joint names")
+        self._joints = _strings(self, "joints")
         n = len(self._joints)
-        q0 = _numbers(self, "initial_positions", n, "start positions [rad]")
-        rate = _number(self, "rate", 250.0, "tick and publish rate [Hz]")
-        if rate <= 0:
-            raise SimDriverError(f"parameter 'rate': must be > 0 Hz, got {rate:g}")
-        interface = declare(self, "command_interface", "position",
-                            "position | velocity | trajectory | plan", read_only=True,
-                            dynamic_typing=True)
-        if interface not in TOPICS:
-            raise SimDriverError(f"parameter 'command_interface': expected one of "
-                                 f"{', '.join(TOPICS)}, got {interface!r}")
+        q0 = _numbers(self, "initial_positions", n)
+        rate = _number(self, "rate")
+        interface = declare(self, SIM_DRIVER["command_interface"])
         try:
             config = PlantConfig(
                 dt=1.0 / rate,
-                natural_frequency=_number(self, "natural_frequency", 60.0, "lag wn [rad/s]"),
-                damping=_number(self, "damping", 0.7, "lag damping ratio"),
-                delay_ticks=_integer(self, "delay_ticks", 2, "transport delay [ticks]"),
-                command_timeout=_number(self, "command_timeout", 0.1,
-                                        "hold when the latest command is older [s]"),
-                position_noise=_number(self, "position_noise", 2e-5, "position noise [rad]"),
-                velocity_noise=_number(self, "velocity_noise", 2e-3, "velocity noise [rad/s]"),
+                natural_frequency=_number(self, "natural_frequency"),
+                damping=_number(self, "damping"),
+                delay_ticks=int(declare(self, SIM_DRIVER["delay_ticks"])),
+                command_timeout=_number(self, "command_timeout"),
+                position_noise=_number(self, "position_noise"),
+                velocity_noise=_number(self, "velocity_noise"),
                 interface="velocity" if interface == "velocity" else "position")
-            self.plant = SimPlant(config, q0, seed=_integer(self, "seed", 0, "noise seed"))
+            self.plant = SimPlant(config, q0, seed=int(declare(self, SIM_DRIVER["seed"])))
         except PlantError as exc:
             raise SimDriverError(f"sim_driver parameters: {exc}") from None
         qos = {}
         for name in ("command_qos", "joint_states_qos"):
-            value = declare(self, name, "reliable", "reliable | best_effort | sensor_data",
-                            read_only=True, dynamic_typing=True)
+            value = declare(self, SIM_DRIVER[name])
             try:
                 qos[name] = qos_by_name(str(value), depth=10)
             except ValueError as exc:
@@ -161,8 +140,7 @@ class SimDriver(SetupNode):
         self._interface = interface
         self._plan = PlanTarget(n) if interface == "plan" else None
         self._followed_pub = None
-        if declare(self, "publish_followed", False, "publish driver/followed every tick",
-                   read_only=True):
+        if declare(self, SIM_DRIVER["publish_followed"]):
             self._followed_pub = self.create_publisher(JointTrajectory, "driver/followed",
                                                        qos["joint_states_qos"])
             self._followed = JointTrajectory(joint_names=self._joints,
@@ -174,7 +152,7 @@ class SimDriver(SetupNode):
         self.catch_up_ticks = 0
         self.reanchors = 0
         self._pub = self.create_publisher(JointState, "joint_states", qos["joint_states_qos"])
-        declare(self, "stall", False, "fault injection: stop publishing joint_states while true")
+        declare(self, SIM_DRIVER["stall"])
         msg_type = JointTrajectory if interface in ("trajectory", "plan") else Float64MultiArray
         sub = self.create_subscription(msg_type, TOPICS[interface], self._on_command,
                                        qos["command_qos"])

@@ -37,6 +37,7 @@ from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.watchdog import WatchdogConfig, WatchdogError
 from adaptive_streamer.io.joint_states import JointStateError, joint_positions
 
+from ..io.param_specs import WATCHDOG
 from .common import (ERROR, OK, DiagnosticsReporter, SetupNode, declare, qos_by_name,
                      reliable_qos, run_nodes)
 from ..io.stamps import stamp_to_sec
@@ -51,25 +52,19 @@ class WatchdogMonitorError(ValueError):
 class WatchdogMonitor(SetupNode):
     """Converts messages for a `StreamMonitor` and reports what it finds."""
 
+    param_error = WatchdogMonitorError
+
     def __init__(self, **kwargs: Any) -> None:
         super().__init__("watchdog", **kwargs)
 
     def _setup(self) -> None:
-        ro = dict(read_only=True)
-        defaults = WatchdogConfig()
-        limits_file = declare(self, "limits_file", "", "limits YAML or URDF", **ro)
-        dynamics = declare(self, "limits_dynamics", "", "limits YAML beside a URDF", **ro)
-        following = declare(self, "following_error", defaults.following_error,
-                            "following error threshold [rad]", **ro)
-        latency = declare(self, "command_latency", defaults.command_latency,
-                          "driver latency assumed [s]", **ro)
-        self._stop_on = bool(declare(self, "stop_on_violation", False,
-                                     "call stop_service on a violation", **ro))
-        stop_service = declare(self, "stop_service", "adapter/stop",
-                               "the adapter's stop service (std_srvs/Trigger)", **ro)
-        js_qos = declare(self, "joint_states_qos", "sensor_data", "joint_states QoS", **ro)
-        if not limits_file:
-            raise WatchdogMonitorError("parameter 'limits_file' is required (limits YAML or URDF)")
+        limits_file = declare(self, WATCHDOG["limits_file"])
+        dynamics = declare(self, WATCHDOG["limits_dynamics"])
+        following = declare(self, WATCHDOG["following_error"])
+        latency = declare(self, WATCHDOG["command_latency"])
+        self._stop_on = bool(declare(self, WATCHDOG["stop_on_violation"]))
+        stop_service = declare(self, WATCHDOG["stop_service"])
+        js_qos = declare(self, WATCHDOG["joint_states_qos"])
         try:
             limits = JointLimits.from_file(limits_file, dynamics or None)
         except LimitsError as exc:

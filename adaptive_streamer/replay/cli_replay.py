@@ -22,6 +22,7 @@ import sys
 from pathlib import Path
 
 from ..io.bag_io import BagError
+from ..io.policy_kinds import POLICY_KINDS, kind_card
 
 # the demo cell's lateral-error metric, loaded by name (replay does not import the demo)
 SCENARIO_HOOK = "adaptive_streamer.demo.replay_metric:lateral_error_hook"
@@ -34,8 +35,10 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="ROS 2 params file; its adapter section overrides the recorded "
                              "parameters")
     parser.add_argument("--policy", action="append", metavar="CARD|KIND",
-                        help="policy card or built-in kind (tracker, hold) instead of the "
-                             "recorded one; repeat for a batch")
+                        help="policy card or kind instead of the recorded one: "
+                             f"{', '.join(POLICY_KINDS)} (onnx, linear_feedback: the demo's "
+                             "cards; tracker, hold: built in, for the recorded joints); "
+                             "repeat for a batch")
     parser.add_argument("--out", default="replay_out", metavar="DIR",
                         help="output folder (default: replay_out)")
     parser.add_argument("--namespace", metavar="NS",
@@ -78,7 +81,7 @@ def run(args: argparse.Namespace) -> int:
     try:
         if args.live:
             return _live(args)
-        policies = args.policy or [None]
+        policies = [kind_card(p) for p in args.policy] if args.policy else [None]
         if len(args.bags) > 1 or len(policies) > 1 or args.scheduler:
             return _batch(args, policies)
         return _single(args, policies[0])
