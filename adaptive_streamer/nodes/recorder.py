@@ -29,7 +29,12 @@ Parameters (read-only):
   depth             subscription history depth (default 100)
 
 Diagnostics (``/diagnostics``, name: the node's full name, every 0.5 s and at once when a
-topic's first message arrives): the messages recorded per topic.
+topic's first message arrives or the run info is read again): the messages recorded per
+topic, and `RUN_INFO_KEY`: the ROS time at which the last completed reading of the
+adapter's parameters started. Service ``~/refresh_run_info`` (std_srvs/Trigger) reads them
+again and answers with the time of the request, so a caller can wait until the bag's run
+info holds the parameters as they are now (the demo and bringup do, after configuring the
+adapter and before activating it).
 
 Prints ``recorder: ready <bag>`` and ``recorder: recording <topic> <type>`` lines on stdout
 (read by `adaptive_streamer.replay.recorder.Recorder`).
@@ -37,6 +42,7 @@ Prints ``recorder: ready <bag>`` and ``recorder: recording <topic> <type>`` line
 from __future__ import annotations
 
 import array
+import math
 import datetime as _dt
 import functools
 import sys
@@ -45,6 +51,7 @@ from typing import Any
 from rcl_interfaces.msg import ParameterEvent
 from rclpy.node import Node
 from rclpy.parameter import parameter_value_to_python
+from std_srvs.srv import Trigger
 from rclpy.qos import DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy
 
 from adaptive_streamer.io import run_info
@@ -55,6 +62,7 @@ from ..io.param_specs import RECORDER
 from .common import OK, DiagnosticsReporter, declare, run_nodes
 
 STRING = "std_msgs/msg/String"
+RUN_INFO_KEY = "run_info_current_since"   # diagnostics: see `RecorderNode._on_refresh`
 
 
 class RecorderError(ValueError):
@@ -99,14 +107,20 @@ class RecorderNode(Node):
         self._param_client = None
         self._fetching = False
         self._refetch = False      # parameters changed while a fetch was in flight
+        self._refresh = False      # a ~/refresh_run_info request waits for a fetch to start
+        self._asked = math.nan     # ROS time [s] the fetch in flight was started
+        self.current_since = math.nan   # start of the last completed fetch (none pending)
+        self._told_since = math.nan
         if self._adapter:
             from rclpy.parameter_client import AsyncParameterClient
             self._adapter_fqn = self.resolve_topic_name(self._adapter)
             self._param_client = AsyncParameterClient(self, self._adapter_fqn)
             self._events = self.create_subscription(ParameterEvent, "/parameter_events",
                                                     self._on_parameter_event, 10)
-        self._diag = DiagnosticsReporter(self, self.get_fully_qualified_name(), 0.5,
-                                         values=lambda: sorted(self.counts.items()))
+        self._diag = DiagnosticsReporter(
+            self, self.get_fully_qualified_name(), 0.5,
+            values=lambda: sorted(self.counts.items()) + [(RUN_INFO_KEY, self.current_since)])
+        self.create_service(Trigger, "~/refresh_run_info", self._on_refresh)
         self._diag.set(OK, "recording")
         self._received = 0   # topics with a message, when the diagnostics were last sent
         self.create_timer(float(period), self._discover)
@@ -156,11 +170,31 @@ class RecorderNode(Node):
         if not self.writer.closed:
             self.writer.maybe_close_chunk(self.get_clock().now().nanoseconds)
         received = sum(1 for c in self.counts.values() if c)
-        if received != self._received:   # a topic's first message: say so at once
-            self._received = received
+        since = self.current_since
+        if received != self._received or not (since == self._told_since or
+                                               math.isnan(since)):
+            self._received, self._told_since = received, since   # say it at once
             self._diag.publish()
+        if self._refresh and not self._fetching:
+            self._fetch_parameters()
         if self._param_client is not None and self._info_text is None and not self._fetching:
             self._fetch_parameters()
+
+    def _on_refresh(self, request: Trigger.Request, response: Trigger.Response
+                    ) -> Trigger.Response:
+        """~/refresh_run_info: read the adapter's parameters again; the answer is the ROS
+        time [s] of the request: the diagnostics value `RUN_INFO_KEY` reaches it once the
+        run info in the bag holds the parameters as they were then."""
+        now = self.get_clock().now().nanoseconds * 1e-9
+        if self._param_client is None:
+            response.success, response.message = False, "no adapter_node to read"
+            return response
+        if self._fetching:
+            self._refetch = True
+        else:
+            self._refresh = True
+        response.success, response.message = True, repr(now)
+        return response
 
     # ------------------------------------------------------------------ run info
     def _on_parameter_event(self, event: ParameterEvent) -> None:
@@ -176,7 +210,8 @@ class RecorderNode(Node):
         client = self._param_client
         if client is None or self._fetching or not client.services_are_ready():
             return
-        self._fetching = True
+        self._fetching, self._refresh = True, False
+        self._asked = self.get_clock().now().nanoseconds * 1e-9
         client.list_parameters([], 0).add_done_callback(self._on_list)
 
     def _on_list(self, future: Any) -> None:
@@ -191,6 +226,7 @@ class RecorderNode(Node):
 
     def _on_values(self, names: list[str], future: Any) -> None:
         self._fetching = False
+        asked, pending = self._asked, self._refetch
         if self._refetch:          # a change came while these values were fetched
             self._refetch = False
             self._fetch_parameters()
@@ -199,6 +235,8 @@ class RecorderNode(Node):
         except Exception as exc:  # the adapter went away: try again later
             self.get_logger().warn(f"reading the adapter's parameters failed: {exc}")
             return
+        if not pending:
+            self.current_since = asked
         params = {n: list(v) if isinstance(v, (list, tuple, array.array)) else v
                   for n, v in zip(names, values)}
         text = run_info.build(self._adapter_fqn, params, self._config)

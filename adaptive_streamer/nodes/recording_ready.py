@@ -9,20 +9,27 @@ the time) count as recorded once the recorder has received a message on them (it
 diagnostics on ``/diagnostics`` carry a count per topic); any other configured topic with a
 publisher, which may stay silent for a long time (``stop``, ``shadow/setpoints``), counts
 once the graph shows the recorder's subscription on it. A configured topic with no publisher
-yet is not waited for (the recorder picks it up when it appears).
+yet is not waited for (the recorder picks it up when it appears). And the run info in the
+bag must hold the adapter's parameters as they are after configure (`RecordingWatch.wait`
+with ``refresh``: the recorder's ``~/refresh_run_info``), so replay does not take the
+parameters read before configure for those of the first decisions.
 """
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import dataclass
 from typing import Callable, Sequence
 
 from diagnostic_msgs.msg import DiagnosticArray
 from rclpy.node import Node
+from std_srvs.srv import Trigger
 
 from adaptive_streamer.io.recording import STACK_TOPICS
 
 INPUT_TOPICS = ("joint_states", "reference/window", "feedback")
+RUN_INFO_KEY = "run_info_current_since"   # the recorder's diagnostics value (nodes.recorder)
+RUN_INFO = "run info"                     # the name `RecordingGaps.missing` gives it
 
 
 class RecordingNotReady(RuntimeError):
@@ -59,20 +66,30 @@ class RecordingWatch:
         self.topics = tuple(t if t.startswith("/") else f"{ns}/{t}" for t in topics)
         self._inputs = {f"{ns}/{t}" for t in INPUT_TOPICS}
         self.counts: dict[str, int] = {}
+        self.run_info_since = math.nan
         self._sub = node.create_subscription(DiagnosticArray, "/diagnostics", self._on_diag, 50)
+        self._refresh = node.create_client(Trigger, f"{self.fqn}/refresh_run_info")
 
     def _on_diag(self, msg: DiagnosticArray) -> None:
         for status in msg.status:
             if status.name == self.fqn:
                 for kv in status.values:
                     try:
-                        self.counts[kv.key] = int(kv.value)
+                        if kv.key == RUN_INFO_KEY:
+                            self.run_info_since = float(kv.value)
+                        else:
+                            self.counts[kv.key] = int(kv.value)
                     except ValueError:
                         continue
 
-    def gaps(self) -> RecordingGaps:
-        """The topics not recorded yet (see the module docstring)."""
+    def gaps(self, run_info_after: float = -math.inf) -> RecordingGaps:
+        """The topics not recorded yet (see the module docstring), and `RUN_INFO` while the
+        run info was last read before ``run_info_after`` (ROS time [s]; -inf: not asked)."""
         missing, published = [], 0
+        unanswered = math.isnan(run_info_after)   # the refresh was not answered yet
+        if unanswered or (run_info_after > -math.inf and not
+                          self.run_info_since >= run_info_after - 1e-6):   # 1 us in the diag
+            missing.append(RUN_INFO)
         for name in self.topics:
             if not self._node.get_publishers_info_by_topic(name):
                 continue
@@ -86,24 +103,34 @@ class RecordingWatch:
         return RecordingGaps(tuple(missing), published)
 
     def wait(self, timeout: float, pause: Callable[[float], None] = time.sleep,
-             alive: Callable[[], bool] = lambda: True) -> RecordingGaps:
-        """Wait until every published topic is recorded. ``pause(seconds)`` passes the time
-        between checks (it must let the node's subscriptions run: `time.sleep` when another
-        thread spins the node, a spin of the node otherwise); ``alive`` is asked between
-        checks and ends the wait when False. `RecordingNotReady` names the topics still not
-        recorded."""
+             alive: Callable[[], bool] = lambda: True, refresh: bool = True) -> RecordingGaps:
+        """Wait until every published topic is recorded and (``refresh``) the recorder has
+        read the adapter's parameters again since this call. ``pause(seconds)`` passes the
+        time between checks (it must let the node's subscriptions and clients run:
+        `time.sleep` when another thread spins the node, a spin of the node otherwise);
+        ``alive`` is asked between checks and ends the wait when False.
+        `RecordingNotReady` names what is still not recorded."""
         deadline = time.monotonic() + timeout
+        after, asked = (math.nan, None) if refresh else (-math.inf, None)
         while True:
-            gaps = self.gaps()
+            if refresh and asked is None and self._refresh.service_is_ready():
+                asked = self._refresh.call_async(Trigger.Request())
+            if asked is not None and asked.done() and math.isnan(after):
+                answer = asked.result()
+                after = float(answer.message) if answer is not None and answer.success \
+                    else -math.inf
+            gaps = self.gaps(after)
             if gaps.ready:
                 return gaps
             if time.monotonic() > deadline or not alive():
                 raise RecordingNotReady(
                     f"the recorder {self.fqn} does not record {', '.join(gaps.missing)} after "
-                    f"{timeout:g} s although they have publishers; motion is not started "
+                    f"{timeout:g} s (topics with publishers, or the adapter's parameters as "
+                    "configured); motion is not started "
                     "(see the recorder's log)")
             pause(0.05)
 
     def close(self) -> None:
         """Drop the subscription."""
         self._node.destroy_subscription(self._sub)
+        self._node.destroy_client(self._refresh)
