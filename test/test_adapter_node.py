@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 import rclpy
 from lifecycle_msgs.msg import Transition
+from lifecycle_msgs.srv import ChangeState
 from std_msgs.msg import Float64MultiArray
 
 import adapter_harness as h
@@ -206,4 +207,27 @@ def test_reconfigure_and_activation_refused_outside_the_position_range(cell):
     assert cell.transition(Transition.TRANSITION_ACTIVATE)
     cell.wait_mode("following")
     check = h.check_stream(cell.samples_since(cell.now() - 1.0))
+    assert check.ok, check.describe()
+
+
+def test_a_transition_not_valid_in_the_current_state_is_refused_and_the_arm_goes_on(cell):
+    # configure, cleanup and activate are not transitions of 'active': each is answered
+    # "refused" (the installed rclpy would raise in the callback and end the process)
+    assert cell.state() == "active"
+    n_logs = len(cell.probe.logs)
+    t0 = cell.now()
+    for transition in (Transition.TRANSITION_CONFIGURE, Transition.TRANSITION_CLEANUP,
+                       Transition.TRANSITION_ACTIVATE):
+        assert not cell.transition(transition)
+    req = ChangeState.Request()
+    req.transition.label = "configure"
+    assert not cell.call(ChangeState, "/adapter/change_state", req).success
+    assert cell.state() == "active"
+    logs = adapter_logs(cell, n_logs)
+    assert any("change_state refused" in m and "not valid in state 'active'" in m
+               for m in logs), logs
+    time.sleep(0.5)   # the stream went on, continuous and within the limits
+    after = cell.samples_since(t0)
+    assert len(after) > 100
+    check = h.check_stream(after)
     assert check.ok, check.describe()

@@ -55,6 +55,7 @@ from . import common
 from ..io.adapter_inputs import LatestInputs
 from ..io.param_specs import ADAPTER
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, refuse_undeclared
+from .lifecycle_guard import guard_change_state
 from .driver_outputs import DriverOutput, fill_setpoint, output_type, setpoint_message
 from .stream_thread import StreamThread
 from .threads import make_executor, prepare_process, set_thread_priority
@@ -68,6 +69,7 @@ class AdapterNode(LifecycleNode):
 
     def __init__(self, name: str = "adapter", **kwargs: Any) -> None:
         super().__init__(name, **kwargs)
+        guard_change_state(self, lambda: self._state_machine.current_state[1])
         self._timeline: StreamTimeline | None = None
         self._anchor_timeline()
         self._declare_parameters()
