@@ -304,8 +304,8 @@ class AdapterNode(LifecycleNode):
         rest_from: float | None = None  # the plan is at rest from this time on
         while time.monotonic() < deadline:
             if session.mode == "stopped" and session.cycle.at_rest:
-                if rest_from is None:
-                    rest_from = session.next_decision_time
+                if rest_from is None:   # in the stream's time: the plan's plus the re-timing lag
+                    rest_from = session.next_decision_time + session.stream_lag
                 ticks = self._ticks  # the plan runs ahead: wait until the stream got there
                 if ticks is None or ticks.time_of(ticks.last_index) >= rest_from - 1e-9:
                     return True
