@@ -136,8 +136,17 @@ def test_cut_link_stops_adapter_and_driver_holds_then_reset_runs_again(hosts, tm
         assert a.ask("trigger", name="reference_server/start")["ok"]
         time.sleep(2.0)
         follow(a)                     # after a stop of the loaded start-up, if there was one
-        before_a, before_b = a.ask("stats"), b.ask("stats")
-        assert before_a["counts"]["joint_states"] > 100 and before_b["counts"]["commands"] > 100
+        # both ways carry traffic before the cut (counted from the probes; a reset in
+        # follow() may have restarted the stream just now, so wait for the counts)
+        end = time.monotonic() + 10.0
+        while True:
+            before_a, before_b = a.ask("stats"), b.ask("stats")
+            flowing = (before_a["counts"]["joint_states"] > 100
+                       and before_b["counts"]["commands"] > 100)
+            if flowing or time.monotonic() > end:
+                break
+            time.sleep(0.2)
+        assert flowing, (before_a["counts"], before_b["counts"])
         assert before_a["mode"] == "following"
         # ---------------------------------------------------------------- the cut
         hosts.link(up=False)
