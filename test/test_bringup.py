@@ -65,18 +65,12 @@ def cell_params(tmp_path: Path, rate: float = 250.0) -> Path:
     return write(tmp_path, "params.yaml", yaml.safe_dump(data))
 
 
-class Listener:
-    """An independent subscriber to `setpoints` in the test process."""
+class ProbeNode:
+    """A node of the test process that watches a bringup child process."""
 
-    def __init__(self) -> None:
+    def __init__(self, name: str) -> None:
         rclpy.init()
-        self.node = Node("bringup_test_listener")
-        self.samples: list[tuple[float, list[float]]] = []
-        self.node.create_subscription(JointTrajectory, "setpoints", self._on, 50)
-
-    def _on(self, msg: JointTrajectory) -> None:
-        st = msg.header.stamp
-        self.samples.append((st.sec + st.nanosec * 1e-9, list(msg.points[0].velocities)))
+        self.node = Node(name)
 
     def spin_until(self, cond, timeout: float, proc: subprocess.Popen) -> bool:
         end = time.monotonic() + timeout
@@ -89,6 +83,19 @@ class Listener:
     def close(self) -> None:
         self.node.destroy_node()
         rclpy.shutdown()
+
+
+class Listener(ProbeNode):
+    """An independent subscriber to `setpoints` in the test process."""
+
+    def __init__(self) -> None:
+        super().__init__("bringup_test_listener")
+        self.samples: list[tuple[float, list[float]]] = []
+        self.node.create_subscription(JointTrajectory, "setpoints", self._on, 50)
+
+    def _on(self, msg: JointTrajectory) -> None:
+        st = msg.header.stamp
+        self.samples.append((st.sec + st.nanosec * 1e-9, list(msg.points[0].velocities)))
 
 
 @pytest.mark.ros

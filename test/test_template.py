@@ -8,17 +8,15 @@ import os
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import pytest
-import rclpy
 import yaml
 from diagnostic_msgs.msg import DiagnosticArray
-from rclpy.node import Node
 
 from adaptive_streamer.io.param_specs import check_params_file
 from adaptive_streamer.share import demo_file
+from test_bringup import ProbeNode
 
 ROOT = Path(__file__).resolve().parents[1]
 pytestmark = pytest.mark.ros
@@ -53,15 +51,14 @@ def fill_in_template(folder: Path, template: str) -> Path:
     return path
 
 
-class AdapterStatus:
+class AdapterStatus(ProbeNode):
     """The adapter's values on /diagnostics, read in the test process: only an adapter that
     runs ``card`` counts (another cell on the same DDS domain may publish an adapter's
     status too)."""
 
     def __init__(self, card: Path) -> None:
+        super().__init__("template_test_listener")
         self.card = str(card)
-        rclpy.init()
-        self.node = Node("template_test_listener")
         self.values: dict[str, str] = {}
         self.node.create_subscription(DiagnosticArray, "/diagnostics", self._on, 50)
 
@@ -70,18 +67,6 @@ class AdapterStatus:
             values = {kv.key: kv.value for kv in st.values}
             if st.name == "adapter" and values.get("policy_active") == self.card:
                 self.values = values
-
-    def spin_until(self, cond, timeout: float, proc: subprocess.Popen) -> bool:
-        end = time.monotonic() + timeout
-        while time.monotonic() < end and proc.poll() is None:
-            rclpy.spin_once(self.node, timeout_sec=0.1)
-            if cond():
-                return True
-        return cond()
-
-    def close(self) -> None:
-        self.node.destroy_node()
-        rclpy.shutdown()
 
 
 @pytest.mark.parametrize("template", sorted(TEMPLATES))
