@@ -132,10 +132,12 @@ def write_tracking_onnx(folder: Path, name: str, fault_input: bool = False,
     (value, validity flag); the model adds ``1 / sqrt(1 - f) - 1`` (0 at f = 0, +inf at
     f = 1, NaN at f = 2) and then returns ``n + k`` values, ``k = clip(floor(f - 2), 0, 2)``
     (f = 3: one value too many; f = 4: a reshape onnxruntime must refuse -> an exception).
-    ``slow_seconds`` > 0: a loop of 2048x2048 tanh layers is added (a negligible 1e-30 of its
-    mean goes into the output) with the trip count calibrated here so one run takes about
-    that long.
+    ``slow_seconds`` > 0 (with ``fault_input``): a loop of tanh layers is added (a negligible
+    1e-30 of its mean goes into the output) that runs only while ``fault`` >= 5, with the
+    trip count calibrated here so that one such run takes about ``slow_seconds``: the card
+    loads (and passes its probe run) fast, and the test makes it slow by the feedback.
     """
+    assert fault_input or slow_seconds == 0.0, "the slow loop is gated by the fault input"
     n = N
     W = tracking_matrix()
     observation = list(TRACKING_OBSERVATION)
@@ -151,8 +153,13 @@ def write_tracking_onnx(folder: Path, name: str, fault_input: bool = False,
     if slow_seconds > 0.0:
         last = _add_slow_loop(nodes, inits, size, last)
     if fault_input:
+        # the fault value; with the slow loop, SLOW_FAULT and above count as 0 here (slow only)
+        gated = ([helper.make_node("Sub", ["c1", "gc"], ["ng"]),
+                  helper.make_node("Mul", ["f_raw", "ng"], ["f"])] if slow_seconds > 0.0
+                 else [helper.make_node("Identity", ["f_raw"], ["f"])])
         nodes += [
-            helper.make_node("Slice", ["obs", "f_at", "f_end", "one_axis"], ["f"]),
+            helper.make_node("Slice", ["obs", "f_at", "f_end", "one_axis"], ["f_raw"]),
+            *gated,
             helper.make_node("Sub", ["c1", "f"], ["omf"]),
             helper.make_node("Sqrt", ["omf"], ["sq"]),
             helper.make_node("Reciprocal", ["sq"], ["rs"]),
@@ -196,11 +203,28 @@ def write_tracking_onnx(folder: Path, name: str, fault_input: bool = False,
                       action="acceleration", onnx={"input": "obs", "output": "action"})
 
 
-_SLOW_WIDTH = 2048
+_SLOW_WIDTH = 512
+SLOW_FAULT = 5.0   # the fault feature's value that makes the slow card slow
 
 
 def _add_slow_loop(nodes: list, inits: list, size: int, last: str) -> str:
-    """Append ``h = tanh(h @ B)`` repeated ``trips`` times; returns the output name."""
+    """Append ``h = tanh(h @ B)`` repeated ``trips`` times while the fault feature (the
+    observation's last-but-one value) is at least `SLOW_FAULT`, none otherwise; returns the
+    output name."""
+    nodes += [helper.make_node("Slice", ["obs", "gate_at", "gate_end", "gate_axis"], ["gf"]),
+              helper.make_node("Sub", ["gf", "gate_off"], ["gm"]),
+              helper.make_node("Floor", ["gm"], ["gfl"]),
+              helper.make_node("Clip", ["gfl", "gate_lo", "gate_hi"], ["gc"]),
+              helper.make_node("Cast", ["gc"], ["gi"], to=TensorProto.INT64),
+              helper.make_node("Reshape", ["gi", "gate_scalar"], ["gs"]),
+              helper.make_node("Mul", ["trips", "gs"], ["trips_on"])]
+    inits += [numpy_helper.from_array(np.array([size - 2], np.int64), "gate_at"),
+              numpy_helper.from_array(np.array([size - 1], np.int64), "gate_end"),
+              numpy_helper.from_array(np.array([1], np.int64), "gate_axis"),
+              numpy_helper.from_array(np.array(SLOW_FAULT - 1.0, np.float32), "gate_off"),
+              numpy_helper.from_array(np.array(0.0, np.float32), "gate_lo"),
+              numpy_helper.from_array(np.array(1.0, np.float32), "gate_hi"),
+              numpy_helper.from_array(np.zeros(0, np.int64), "gate_scalar")]
     rng = np.random.default_rng(1)
     m = _SLOW_WIDTH
     body = helper.make_graph(
@@ -214,7 +238,7 @@ def _add_slow_loop(nodes: list, inits: list, size: int, last: str) -> str:
         [helper.make_tensor_value_info("cond_out", TensorProto.BOOL, []),
          helper.make_tensor_value_info("h_out", TensorProto.FLOAT, [1, m])])
     nodes += [helper.make_node("MatMul", ["obs", "Win"], ["h0"]),
-              helper.make_node("Loop", ["trips", "cond", "h0"], ["h_end"], body=body),
+              helper.make_node("Loop", ["trips_on", "cond", "h0"], ["h_end"], body=body),
               helper.make_node("ReduceMean", ["h_end"], ["hm"], keepdims=1),
               helper.make_node("Mul", ["hm", "tiny"], ["ht"]),
               helper.make_node("Add", [last, "ht"], ["u_slow"])]
@@ -240,6 +264,7 @@ def _calibrate_slow(model: onnx.ModelProto, path: Path, size: int, seconds: floa
         sess = ort.InferenceSession(model.SerializeToString(), so,
                                     providers=["CPUExecutionProvider"])
         x = np.zeros((1, size), np.float32)
+        x[0, size - 2] = SLOW_FAULT
         sess.run(None, {"obs": x})
         times = []
         for _ in range(3):

@@ -15,6 +15,7 @@ import pytest
 import rclpy
 from lifecycle_msgs.msg import Transition
 from lifecycle_msgs.srv import ChangeState
+from rclpy.parameter import Parameter
 from std_msgs.msg import Float64MultiArray
 
 import adapter_harness as h
@@ -141,7 +142,11 @@ def test_limit_scale_takes_effect_smoothly_and_is_respected(cell):
     cell.wait_diag(lambda v: v.get("limit_scale") == "0.1", "limit_scale 0.1 on /diagnostics")
     time.sleep(2.0)
     t_back = cell.now()
-    assert cell.set_params(limit_scale=1.0)[0].successful
+    # raising it while active is refused (a faster arm needs a new configure, which runs
+    # every check again); the reason says how
+    res = cell.set_params(limit_scale=1.0)[0]
+    assert not res.successful and "can only be lowered" in res.reason, res.reason
+    assert "clean up" in res.reason and cell.get_param("limit_scale") == 0.1
     time.sleep(1.0)
     everything = h.check_stream(cell.samples_since(t_set - 0.5))
     assert everything.ok, everything.describe()
@@ -153,6 +158,14 @@ def test_limit_scale_takes_effect_smoothly_and_is_respected(cell):
     assert check.peak_ratio["velocity"] > 0.9, "the scaled limit never bound: test too weak"
     print("scaled:", check.describe())
     assert cell.mode() == "following"
+    # the way back to full speed: deactivate (a controlled stop), clean up, set, configure
+    for t in (Transition.TRANSITION_DEACTIVATE, Transition.TRANSITION_CLEANUP):
+        assert cell.transition(t)
+    assert cell.set_params(limit_scale=1.0)[0].successful
+    for t in (Transition.TRANSITION_CONFIGURE, Transition.TRANSITION_ACTIVATE):
+        assert cell.transition(t)
+    cell.wait_mode("following")
+    cell.wait_diag(lambda v: float(v.get("limit_scale", 0)) == 1.0, "limit_scale 1 on /diagnostics")
 
 
 def test_deactivate_mid_motion_stops_smoothly_then_deactivates_publishers(cell):
@@ -230,4 +243,47 @@ def test_a_transition_not_valid_in_the_current_state_is_refused_and_the_arm_goes
     after = cell.samples_since(t0)
     assert len(after) > 100
     check = h.check_stream(after)
+    assert check.ok, check.describe()
+
+
+def test_configuration_is_locked_while_configured_and_thresholds_only_tighten(cell):
+    cell.wait_mode("following")
+    t0 = cell.now()
+    # configure-time parameters: refused with the way to change them, value unchanged
+    for name, value in (("limits_file", "/tmp/other_limits.yaml"), ("stream_rate", 500.0),
+                        ("stop_timeout", 0.5), ("decision_period", 0.1),
+                        ("watchdog__command_latency", 0.5)):
+        before = cell.get_param(name.replace("__", "."))
+        res = cell.set_params(**{name: value})[0]
+        assert not res.successful, name
+        assert name.replace("__", ".") in res.reason and "read at configure" in res.reason
+        assert "clean up" in res.reason and "active" in res.reason, res.reason
+        assert cell.get_param(name.replace("__", ".")) == before
+    # an atomic change is judged as a whole: one refused entry keeps the other out too
+    fut = cell.probe.params.set_parameters_atomically(
+        [Parameter("limit_scale", value=0.5), Parameter("stream_rate", value=500.0)])
+    h.wait_until(fut.done, "set_parameters_atomically")
+    res = fut.result().result
+    assert not res.successful and "stream_rate" in res.reason
+    assert cell.get_param("limit_scale") == 1.0
+    # loosening a threshold is refused; the range is in the ROS descriptor for any tool
+    res = cell.set_params(watchdog__following_error=0.5)[0]
+    assert not res.successful and "can only be lowered" in res.reason, res.reason
+    fut = cell.probe.params.describe_parameters(["limit_scale", "watchdog.max_overruns"])
+    h.wait_until(fut.done, "describe_parameters")
+    scale, overruns = fut.result().descriptors
+    assert (scale.floating_point_range[0].from_value, scale.floating_point_range[0].to_value) \
+        == (0.0, 1.0)
+    assert "only lowered" in scale.additional_constraints
+    assert overruns.integer_range[0].from_value == 1
+    # out of the descriptor's range: refused by rclpy before the adapter looks at it
+    assert not cell.set_params(limit_scale=-1.0)[0].successful
+    # tightening acts at once: a following-error threshold below the driver's lag stops the
+    # arm with a reason naming the new threshold, smoothly and within the limits
+    assert cell.set_params(watchdog__following_error=1e-6)[0].successful
+    vals = cell.wait_diag(lambda v: v.get("trip") == "following_error",
+                          "following_error trip after tightening")[3]
+    assert "exceeds following_error 1e-06 rad" in vals["trip_message"], vals["trip_message"]
+    cell.wait_rest()
+    check = h.check_stream(cell.samples_since(t0))
     assert check.ok, check.describe()

@@ -133,23 +133,22 @@ def test_tracker_onnx_linear_feedback_and_hold(cell, cards):
     cell.start_reference()
 
 
-def test_invalid_swap_is_set_back_and_the_old_policy_keeps_running(cell, cards):
+def test_invalid_swap_is_refused_in_the_answer_and_the_old_policy_keeps_running(cell, cards):
     _, c = cards
     assert cell.mode() == "following"
-    n_logs = len(cell.probe.logs)
+    before = int(cell.wait_diag(lambda v: "policy_swaps_failed" in v, "diagnostics")[3]
+                 ["policy_swaps_failed"])
     res = cell.set_params(policy=str(h.REPO / "no_such.card.yaml"))[0]
     assert not res.successful and "no_such.card.yaml" in res.reason
-    # a card that exists but does not fit (decision period): accepted as a parameter,
-    # refused by the loader off the stream path, then the parameter is set back
+    # a card that exists but does not fit (decision period): loaded and checked before the
+    # answer, whose reason says why; the parameter keeps its value
     res = cell.set_params(policy=str(c["wrong_period"]))[0]
-    assert res.successful
-    h.wait_until(lambda: cell.get_param("policy") == str(c["tracker"]),
-                 "policy parameter set back", timeout=15.0, poll=0.05)
+    assert not res.successful
+    assert "wrong_period" in res.reason and "decision_period" in res.reason, res.reason
+    assert "keeping" in res.reason and str(c["tracker"]) in res.reason, res.reason
+    assert cell.get_param("policy") == str(c["tracker"])
     assert cell.get_param("policy_active") == str(c["tracker"])
-    logs = [m for name, m in cell.probe.logs[n_logs:] if name == "adapter"]
-    assert any("wrong_period" in m and "refused" in m and "decision_period" in m
-               for m in logs), logs
-    d = cell.wait_diag(lambda v: int(v.get("policy_swaps_failed", 0)) >= 1,
+    d = cell.wait_diag(lambda v: int(v.get("policy_swaps_failed", 0)) >= before + 2,
                        "policy_swaps_failed on /diagnostics")
     assert d[3]["trip"] == "none"
     time.sleep(0.5)

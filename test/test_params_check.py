@@ -12,7 +12,7 @@ from rclpy.context import Context
 from adaptive_streamer.bringup import BringupError, read_params
 from adaptive_streamer.core.limits import JointLimits, LimitsError
 from adaptive_streamer.core.session import make_stages
-from adaptive_streamer.io.param_specs import (NODE_PARAMS, ParamsCheckError,
+from adaptive_streamer.io.param_specs import (ADAPTER, NODE_PARAMS, ParamsCheckError,
                                               check_params_file)
 from adaptive_streamer.nodes.adapter import AdapterNode
 from adaptive_streamer.nodes.common import NodeParamError
@@ -141,3 +141,25 @@ def test_a_node_refuses_an_empty_list_it_needs(tmp_path):
                                              "non-empty list of strings"):
         _node_with_params_file(SimDriver, path)
 
+
+
+@pytest.mark.parametrize("name,old,new,state,words", [
+    ("limits_file", "a.yaml", "b.yaml", "active", "read at configure and the adapter is active"),
+    ("stream_rate", 250.0, 500.0, "inactive", "read at configure and the adapter is inactive"),
+    ("limit_scale", 0.25, 1.0, "active", "can only be lowered while the adapter is active"),
+    ("watchdog.deviation_joint", 0.05, 1e9, "inactive", "0.05 -> 1e+09 loosens it"),
+    ("watchdog.overrun_window", 20, 5, "active", "read at configure"),
+])
+def test_runtime_changes_that_loosen_or_reconfigure_are_refused(name, old, new, state, words):
+    spec = ADAPTER[name]
+    assert words in spec.change_problem(old, new, state)
+    assert spec.change_problem(old, new, "unconfigured") is None   # the next configure checks it
+    assert spec.change_problem(old, old, state) is None
+
+
+@pytest.mark.parametrize("name,old,new", [
+    ("limit_scale", 1.0, 0.25), ("watchdog.following_error", 0.05, 0.01),
+    ("watchdog.max_overruns", 3, 1), ("policy", "a.yaml", "b.yaml"),
+])
+def test_runtime_changes_that_tighten_or_swap_are_allowed(name, old, new):
+    assert ADAPTER[name].change_problem(old, new, "active") is None

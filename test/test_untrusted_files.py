@@ -8,7 +8,7 @@ import yaml
 
 from adaptive_streamer.core.limits import JointLimits, LimitsError
 from adaptive_streamer.core.policies.card import CardError, load_card
-from adaptive_streamer.core.text_files import MAX_BYTES
+from adaptive_streamer.core.text_files import C_LOADER_MAX, MAX_BYTES, TextFileError, load_yaml
 from adaptive_streamer.io import run_info
 from adaptive_streamer.share import demo_file
 
@@ -74,3 +74,14 @@ def test_yaml_errors_name_the_line_not_the_contents(tmp_path):
         with pytest.raises(error) as exc:
             load(bad)
         assert "line 3" in str(exc.value) and SECRET not in str(exc.value), exc.value
+
+
+@pytest.mark.parametrize("padding", [0, C_LOADER_MAX])
+def test_both_yaml_loaders_give_the_same_values_and_positions(padding):
+    # short texts take libyaml's loader, long ones the Python loader: same result either way
+    head = "#" * padding + "\n"
+    text = head + "a: 1\nb: [2.5, yes, '3']\nc: {d: null}\n"
+    assert load_yaml(text, "t") == yaml.safe_load(text) == {"a": 1, "b": [2.5, True, "3"],
+                                                             "c": {"d": None}}
+    with pytest.raises(TextFileError, match="t: not valid YAML: line 4, column 1: "):
+        load_yaml(head + "a: 1\nb: [2.5, x: y\n", "t")

@@ -139,3 +139,19 @@ def test_reset_rules():
     w3.fire("overruns", 0.0, "x")
     w3.reset([])
     assert w3.overrun(True) is None
+
+
+def test_thresholds_only_tighten_while_running():
+    wd = Watchdog(WatchdogConfig(deviation_joint=0.05), ("a", "b"))
+    planned, ref = np.array([0.03, 0.0]), np.zeros(2)
+    assert wd.deviation(planned, ref, np.zeros(2, bool))[2] is None
+    wd.tighten("deviation_joint", 0.02)
+    assert "exceeds deviation_joint 0.02 rad" in wd.deviation(planned, ref, np.zeros(2, bool))[2]
+    with pytest.raises(WatchdogError, match="can only be lowered"):
+        wd.tighten("deviation_joint", 0.03)
+    with pytest.raises(WatchdogError, match="cannot change while running"):
+        wd.tighten("command_latency", 0.0)
+    with pytest.raises(WatchdogError, match="max_overruns"):
+        wd.tighten("max_overruns", 0)
+    wd.tighten("max_overruns", 1)
+    assert wd.overrun(True) is not None   # one late decision is now too many

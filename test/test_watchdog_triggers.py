@@ -201,7 +201,10 @@ def test_overruns_with_a_slow_policy(cell, cards):
                  ["late_decisions"])
 
     def inject() -> None:  # ~0.1 s per decision at a 0.05 s period
-        assert cell.set_params(policy=str(c["slow"]))[0].successful
+        swapped = cell.set_params(policy=str(c["slow"]))[0]   # loads fast, runs fast ...
+        assert swapped.successful, swapped.reason
+        cell.probe.feedback = {"fault": h.SLOW_FAULT}           # ... until the feedback says
+
     vals = trip(cell, "overruns", "late decisions", inject)
     late = int(vals["late_decisions"]) - before
     assert late >= 3, vals   # watchdog.max_overruns (default 3)
@@ -209,6 +212,7 @@ def test_overruns_with_a_slow_policy(cell, cards):
     # no gap in the stamps longer than a few ticks while the slow policy ran
     slow = cell.samples_since(cell.now() - 3.0)
     assert h.check_stream(slow).ok
+    cell.probe.feedback = {"fault": 0.0}
     assert cell.set_params(policy=str(c["fault"]))[0].successful
     h.wait_until(lambda: cell.get_param("policy_active") == str(c["fault"]), "fast policy back")
     recover(cell)

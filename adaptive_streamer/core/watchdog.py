@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import math
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -43,6 +43,12 @@ KINDS = ("deviation", "following_error", "joint_states_stale", "feedback_stale",
 EVENTS_KEPT = 1000   # watchdog events kept (the latest); `Watchdog.total_events` counts all
 PERSISTENT = ("following_error", "joint_states_stale", "feedback_stale", "reference_stale",
               "external_stop")
+
+
+# thresholds that stop sooner when lowered (`Watchdog.tighten` changes them while running)
+TIGHTER_WHEN_LOWER = ("deviation_joint", "deviation_norm", "following_error",
+                      "joint_states_timeout", "feedback_timeout", "reference_timeout",
+                      "max_overruns")
 
 
 class WatchdogError(ValueError):
@@ -117,6 +123,22 @@ class Watchdog:
         self.stop_requested: str | None = None
         self._overruns: deque[bool] = deque(maxlen=int(config.overrun_window))
         self._deviation_joint = np.full(len(joint_names), float(config.deviation_joint))
+
+    def tighten(self, name: str, value: float) -> None:
+        """Lower the threshold ``name`` (one of `TIGHTER_WHEN_LOWER`) while running; takes
+        effect at the next check. Raises `WatchdogError` for another name, a higher value
+        or one the configuration refuses."""
+        if name not in TIGHTER_WHEN_LOWER:
+            raise WatchdogError(f"watchdog parameter '{name}' cannot change while running; "
+                                f"the ones that can: {', '.join(TIGHTER_WHEN_LOWER)}")
+        old = getattr(self.config, name)
+        if not value <= old:
+            raise WatchdogError(f"watchdog parameter '{name}' can only be lowered while "
+                                f"running ({old:g} -> {value:g})")
+        config = replace(self.config, **{name: type(old)(value)})
+        if name == "deviation_joint":
+            self._deviation_joint = np.full(len(self.joint_names), float(value))
+        self.config = config
 
     # ------------------------------------------------------------------ trips
     @property

@@ -29,6 +29,7 @@ import yaml
 
 from ..core.adapter_setup import DEFAULTS, WATCHDOG_PARAMS
 from ..core.playback import END_MODES, MAX_OVERRIDE, MIN_OVERRIDE
+from ..core.watchdog import TIGHTER_WHEN_LOWER
 from ..share import expand
 
 # parameters rclpy declares on every node, and prefixes rclpy itself reads
@@ -55,6 +56,15 @@ class ParamKind(Enum):
 LIST_KINDS = (ParamKind.STRINGS, ParamKind.NUMBERS)
 
 
+class Change(Enum):
+    """When a parameter of the adapter may change once the node runs (the adapter enforces
+    it in its set-parameters answer; see `Param.change_problem`)."""
+
+    AT_CONFIGURE = "read at configure: set it while unconfigured"
+    LIVE = "applied in any state"
+    LOWER_ONLY = "while configured only lowered (lower is safer)"
+
+
 @dataclass(frozen=True)
 class Param:
     """One parameter: ``low``/``high`` bound numbers (``*_open``: the bound is excluded);
@@ -73,6 +83,7 @@ class Param:
     empty_ok: bool = True
     read_only: bool = False
     dynamic_typing: bool = False
+    change: Change = Change.AT_CONFIGURE
 
     def expected(self) -> str:
         """What a valid value is, in words (e.g. "a number in (0, 1]")."""
@@ -114,6 +125,24 @@ class Param:
                 if not self._in_range(float(item)):
                     return f"is {value!r}; expected {self.expected()}"
         return None
+
+    def change_problem(self, old: Any, new: Any, state: str) -> str | None:
+        """Why changing the value from ``old`` to ``new`` is refused in the lifecycle
+        ``state`` (None when it is allowed): a configure-time parameter only changes while
+        unconfigured; a `Change.LOWER_ONLY` one only goes down while configured (raising a
+        speed scale or loosening a threshold while the arm may move needs a cleanup and a
+        new configure, which runs every check again)."""
+        if state == "unconfigured" or self.change is Change.LIVE or new == old:
+            return None
+        if self.change is Change.LOWER_ONLY and isinstance(new, (int, float)) \
+                and isinstance(old, (int, float)):
+            if new < old:
+                return None
+            return (f"can only be lowered while the adapter is {state} ({old:g} -> {new:g} "
+                    f"loosens it); to raise it, deactivate and clean up, set it, and "
+                    f"configure again")
+        return (f"is read at configure and the adapter is {state}: deactivate and clean up "
+                f"first, then set it (the next configure checks it)")
 
     def _type_ok(self, value: Any) -> bool:
         def number(x: Any) -> bool:
@@ -277,17 +306,20 @@ _WATCHDOG_HELP = {
 
 def _watchdog(key: str) -> Param:
     default = DEFAULTS[f"watchdog.{key}"]
+    change = Change.LOWER_ONLY if key in TIGHTER_WHEN_LOWER else Change.AT_CONFIGURE
     if key in ("max_overruns", "overrun_window"):
-        return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1)
+        return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1, change=change)
     if key in ("command_latency", "feedback_frozen"):
-        return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0)
-    return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], **POSITIVE)
+        return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0, change=change)
+    return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], change=change,
+              **POSITIVE)
 
 
 ADAPTER = NodeParams("adapter", (
-    _p("policy", _S, DEFAULTS["policy"], "path of the policy card; setting it swaps the policy"),
+    _p("policy", _S, DEFAULTS["policy"], "path of the policy card; setting it swaps the policy",
+       change=Change.LIVE),
     _p("shadow_policy", _S, DEFAULTS["shadow_policy"],
-       "optional policy card evaluated alongside, never commanded"),
+       "optional policy card evaluated alongside, never commanded", change=Change.LIVE),
     _p("policy_active", _S, "", "read-only: the policy card that really runs"),
     _p("limits_file", _S, DEFAULTS["limits_file"],
        "limits YAML or URDF (empty: robot_description topic)"),
@@ -301,7 +333,8 @@ ADAPTER = NodeParams("adapter", (
     _p("horizon", _I, DEFAULTS["horizon"], "reference points per decision (read at configure)",
        low=1),
     _p("limit_scale", _N, DEFAULTS["limit_scale"],
-       "scale of velocity/acceleration/jerk limits", low=0.0, low_open=True, high=1.0),
+       "scale of velocity/acceleration/jerk limits", low=0.0, low_open=True, high=1.0,
+       change=Change.LOWER_ONLY),
     _p("features", _SS, DEFAULTS["features"],
        "feedback features to read (empty: what the policy needs)"),
     _p("outputs", _SS, DEFAULTS["outputs"], "driver output names (each configured as <name>.*)",

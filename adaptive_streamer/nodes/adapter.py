@@ -45,7 +45,6 @@ from adaptive_streamer.core.activation import check_activation, first_tick
 from adaptive_streamer.core.adapter_setup import DEFAULTS, build_session
 from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, session_summary,
                                                    session_values)
-from adaptive_streamer.core.policies import load_policy
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import StreamClock, StreamTimeline
@@ -56,12 +55,14 @@ from ..io.adapter_inputs import LatestInputs
 from ..io.param_specs import ADAPTER
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, refuse_undeclared
 from .lifecycle_guard import guard_change_state
+from .policy_swap import PolicyLoader
 from .driver_outputs import DriverOutput, fill_setpoint, output_type, setpoint_message
 from .stream_thread import StreamThread
 from .threads import make_executor, prepare_process, set_thread_priority
 
 LEVELS = {StatusLevel.OK: OK, StatusLevel.WARN: WARN, StatusLevel.ERROR: ERROR}
 JOINT_STATES_DEPTH = 100  # joint_states messages queued (0.2 s at 500 Hz)
+SWAP_BUDGET = 0.5         # while active, a card must load within this many decision periods
 
 
 class AdapterNode(LifecycleNode):
@@ -80,7 +81,6 @@ class AdapterNode(LifecycleNode):
         self._io_group = MutuallyExclusiveCallbackGroup()
         self.session: StreamingSession | None = None
         self._internal_set = threading.local()
-        self._policy_lock = threading.Lock()
         self._latest_inputs: LatestInputs | None = None
         self._stream_timer = None
         self._decide_gc = None
@@ -90,7 +90,10 @@ class AdapterNode(LifecycleNode):
                           "decision_errors": 0, "stream_errors": 0, "policy_swaps_failed": 0}
         self._timings = CycleTimings()
         self._status = "unconfigured"
+        self._loader = PolicyLoader(int(self.get_parameter("decision_priority").value))
+        self._policy_to_publish: str | None = None
         self.add_on_set_parameters_callback(self._on_set_parameters)
+        self.add_post_set_parameters_callback(self._after_set)
         self._diag = common.DiagnosticsReporter(self, "adapter", values=self._diag_values)
         self._robot_description: str | None = None
         self._js_merger: JointStateMerger | None = None
@@ -127,59 +130,85 @@ class AdapterNode(LifecycleNode):
             self._internal_set.on = False
 
     def _on_set_parameters(self, params: list[Parameter]) -> SetParametersResult:
-        internal = getattr(self._internal_set, "on", False)
+        """Judge a parameter change as a whole before it is applied: each value against its
+        table entry, and against the lifecycle state (`Param.change_problem`: configure-time
+        parameters only change while unconfigured, `limit_scale` and the watchdog thresholds
+        only go down while configured); a policy swap loads and checks the card first. The
+        refusal names the parameter and is the answer's reason; nothing is applied unless
+        everything is accepted."""
+        if getattr(self._internal_set, "on", False):
+            return SetParametersResult(successful=True)
+        state = self._state_machine.current_state[1]
+        swaps: list[tuple[str, str, Any]] = []
         for p in params:
-            if p.name == "policy_active" and not internal:
-                return SetParametersResult(successful=False,
-                                           reason="policy_active is read-only (set 'policy')")
+            if p.name == "policy_active":
+                return self._refuse("policy_active is read-only (set 'policy')")
             spec = ADAPTER.lookup(p.name, {})
-            problem = spec.problem(p.value) if spec is not None and not internal else None
+            if spec is None or not self.has_parameter(p.name):
+                continue   # rclpy's own, or being declared (`declare` checks it)
+            problem = spec.problem(p.value) or spec.change_problem(
+                self._param(p.name), p.value, state)
             if problem is not None:
-                return SetParametersResult(successful=False, reason=f"{p.name} {problem}")
-            if p.name == "limit_scale":
-                x = p.value
-                if self.session is not None:
-                    self.session.set_limit_scale(float(x))
-                    self.get_logger().info(f"limit_scale -> {x:g} (takes effect once the motion fits)")
-            if p.name in ("policy", "shadow_policy") and not internal:
-                path = p.value
-                if not isinstance(path, str):
-                    return SetParametersResult(successful=False, reason=f"{p.name} must be a path")
-                if path and not os.path.isfile(path):
-                    return SetParametersResult(successful=False,
-                                               reason=f"{p.name}: no such policy card file '{path}'")
-                if p.name == "policy" and not path and self.session is not None:
-                    return SetParametersResult(successful=False, reason="policy must name a card")
-                if self.session is not None:
-                    old = self._param(p.name)
-                    threading.Thread(target=self._load_policy, args=(p.name, path, old),
-                                     daemon=True).start()
+                return self._refuse(f"{p.name} {problem}")
+            if p.name in ("policy", "shadow_policy"):
+                refusal, policy = self._judge_swap(p.name, p.value, state)
+                if refusal:
+                    self._counters["policy_swaps_failed"] += 1
+                    return self._refuse(f"{p.name} '{p.value}' refused, keeping "
+                                        f"'{self._param(p.name)}': {refusal}")
+                swaps.append((p.name, p.value, policy))
+        self._apply_changes(params, swaps)
         return SetParametersResult(successful=True)
 
-    def _load_policy(self, which: str, path: str, old: str) -> None:
-        """Load and validate a card off the streaming path; swap at a decision boundary.
+    def _refuse(self, reason: str) -> SetParametersResult:
+        self.get_logger().warning(f"set_parameters refused: {reason}")
+        return SetParametersResult(successful=False, reason=reason)
 
-        Runs in its own thread at the decision thread's priority, so that while it holds
-        the interpreter it is not preempted by other processes (the stream thread would
-        wait for it)."""
-        set_thread_priority(int(self.get_parameter("decision_priority").value))
-        with self._policy_lock:
-            try:
-                policy = load_policy(path, self._running) if path else None
-            except Exception as exc:
-                self._counters["policy_swaps_failed"] += 1
-                self.get_logger().error(f"{which} '{path}' refused, keeping '{old}': {exc}")
-                self._set_internal(which, old)
-                return
-            session = self.session
-            if session is None:
-                return
+    def _judge_swap(self, which: str, path: str, state: str) -> tuple[str, Any]:
+        """(refusal, policy) for setting ``which`` to ``path``: unconfigured, the file must
+        exist (configure loads it); configured, the card is loaded and checked against the
+        running configuration, within the decision cycle's patience while active."""
+        if path and not os.path.isfile(path):
+            return f"no such policy card file '{path}'", None
+        session = self.session
+        if session is None:
+            return "", None
+        if not path:
+            return ("policy must name a card", None) if which == "policy" else ("", None)
+        budget = SWAP_BUDGET * session.period if state == "active" else None
+        verdict = self._loader.load(path, self._running, budget)
+        if verdict.accepted:
+            self.get_logger().info(f"{which} '{path}' loaded in {verdict.seconds * 1e3:.1f} ms")
+        return verdict.refusal, verdict.policy
+
+    def _apply_changes(self, params: list[Parameter],
+                       swaps: list[tuple[str, str, Any]]) -> None:
+        """Apply accepted changes that act on a running session (called in the executor
+        thread, which also runs the decisions, so a swap lands between two decisions)."""
+        session = self.session
+        if session is None:
+            return
+        for p in params:
+            if p.name == "limit_scale":
+                session.set_limit_scale(float(p.value))
+                self.get_logger().info(f"limit_scale -> {p.value:g} (takes effect once the "
+                                       f"motion fits)")
+            elif p.name.startswith("watchdog.") and p.value != self._param(p.name):
+                session.watchdog.tighten(p.name.removeprefix("watchdog."), p.value)
+                self.get_logger().info(f"{p.name} -> {p.value:g} (from the next check)")
+        for which, path, policy in swaps:
             if which == "policy":
                 session.swap_policy(policy)
-                self._set_internal("policy_active", path)
+                self._policy_to_publish = path
             else:
                 session.shadow_policy, session.shadow = policy, None
-            self.get_logger().info(f"{which} -> '{path}' (loaded, switching at the next decision)")
+            self.get_logger().info(f"{which} -> '{path}' (switching at the next decision)")
+
+    def _after_set(self, params: list[Parameter]) -> None:
+        """Once a swap's parameter is set: show the card that really runs."""
+        path, self._policy_to_publish = self._policy_to_publish, None
+        if path is not None:
+            self._set_internal("policy_active", path)
 
     # ------------------------------------------------------------------ lifecycle
     def _autostart(self) -> None:

@@ -4,15 +4,17 @@ Nothing here does motion math; it only moves values between ROS and the core.
 """
 from __future__ import annotations
 
+import math
 import signal
 import sys
 from typing import Any, Callable, Iterable, Sequence
 
 import rclpy
 from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
-from rcl_interfaces.msg import ParameterDescriptor
+from rcl_interfaces.msg import FloatingPointRange, IntegerRange, ParameterDescriptor
 from rclpy.executors import ExternalShutdownException, Executor, SingleThreadedExecutor
 from rclpy.exceptions import InvalidParameterTypeException
+from rclpy.lifecycle import LifecycleNode
 from rclpy.node import Node
 from rclpy.parameter import Parameter
 from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy,
@@ -54,6 +56,7 @@ class NodeParamError(ValueError):
 
 
 _UNSET = object()
+INT64_MIN, INT64_MAX = -(1 << 63), (1 << 63) - 1
 _ROS_TYPES = {ParamKind.BOOL: Parameter.Type.BOOL, ParamKind.INTEGER: Parameter.Type.INTEGER,
               ParamKind.NUMBER: Parameter.Type.DOUBLE, ParamKind.STRING: Parameter.Type.STRING,
               ParamKind.STRINGS: Parameter.Type.STRING_ARRAY,
@@ -64,6 +67,29 @@ def _overrides(node: Node) -> dict[str, Parameter]:
     """The node's parameter overrides (params files and ``-p`` arguments), by name; rclpy
     keeps them on the node and has no public accessor."""
     return node._parameter_overrides  # noqa: SLF001
+
+
+def descriptor(spec: Param, lifecycle: bool = False) -> ParameterDescriptor:
+    """The ROS parameter descriptor of ``spec``: description, the allowed values in words
+    (for a ``lifecycle`` node also when it may change, `Param.change`), read-only, and
+    the range of a number or integer, so that parameter tools show it and rclpy refuses a
+    value outside it. ROS ranges are closed: an open bound (``(0, 1]``) is given as the
+    closed one and the node's own check refuses the bound itself."""
+    constraints = spec.expected() + (f"; {spec.change.value}" if lifecycle else "")
+    desc = ParameterDescriptor(description=spec.description, read_only=spec.read_only,
+                               dynamic_typing=spec.dynamic_typing,
+                               additional_constraints=constraints)
+    if spec.low is None and spec.high is None:
+        return desc
+    if spec.kind is ParamKind.NUMBER:
+        desc.floating_point_range = [FloatingPointRange(
+            from_value=-math.inf if spec.low is None else float(spec.low),
+            to_value=math.inf if spec.high is None else float(spec.high), step=0.0)]
+    elif spec.kind is ParamKind.INTEGER:
+        desc.integer_range = [IntegerRange(
+            from_value=INT64_MIN if spec.low is None else int(math.ceil(spec.low)),
+            to_value=INT64_MAX if spec.high is None else int(math.floor(spec.high)), step=0)]
+    return desc
 
 
 def declare(node: Node, spec: Param, default: Any = _UNSET) -> Any:
@@ -77,9 +103,12 @@ def declare(node: Node, spec: Param, default: Any = _UNSET) -> Any:
     value = spec.default if default is _UNSET else default
     if value is None and not spec.dynamic_typing:
         value = _ROS_TYPES[spec.kind]
-    desc = ParameterDescriptor(description=spec.description, read_only=spec.read_only,
-                               dynamic_typing=spec.dynamic_typing)
+    desc = descriptor(spec, isinstance(node, LifecycleNode))
     override = _overrides(node).get(spec.name)
+    if override is not None and override.type_ != Parameter.Type.NOT_SET:
+        problem = spec.problem(override.value)   # before rclpy's own range check
+        if problem is not None:
+            raise error(f"parameter '{spec.name}' {problem}")
     if override is not None and override.type_ == Parameter.Type.NOT_SET:
         if spec.kind not in LIST_KINDS or not spec.empty_ok:
             raise error(f"parameter '{spec.name}' is empty; expected "
