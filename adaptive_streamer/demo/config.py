@@ -112,6 +112,30 @@ def _retarget(card: Path, kind: str, limits_file: Path, joints: tuple[str, ...],
     return out
 
 
+def _yaml_key_line(path: Path, key: str) -> int | None:
+    """The line (1-based) of the top-level ``key`` of the YAML file ``path`` (None: not a
+    YAML mapping that has it)."""
+    try:
+        node = yaml.compose(path.read_text())
+    except (OSError, yaml.YAMLError):
+        return None
+    if not isinstance(node, yaml.MappingNode):
+        return None
+    return next((k.start_mark.line + 1 for k, _ in node.value
+                 if isinstance(k, yaml.ScalarNode) and k.value == key), None)
+
+
+def _check_joints(limits_file: Path, limits: JointLimits, joints: tuple[str, ...]) -> None:
+    """`DemoError` naming ``limits_file`` (and the line of its ``joints:``) when it lacks a
+    joint of the demo's arm."""
+    absent = [j for j in joints if j not in limits.names]
+    if absent:
+        line = _yaml_key_line(limits_file, "joints")
+        where = f"{limits_file}:{line}" if line is not None else str(limits_file)
+        raise DemoError(f"{where}: joints: no limits for {absent} of the demo arm's joints "
+                        f"{list(joints)} (the file gives {list(limits.names)})")
+
+
 def _select_output(params: dict[str, Any], output: str) -> None:
     """Set the adapter's outputs and the driver's interface for ``--output`` (in place)."""
     if output not in OUTPUT_PAIRS:
@@ -145,14 +169,21 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
         limits = JointLimits.from_file(limits_file)
     except LimitsError as exc:
         raise DemoError(str(exc)) from None
+    joints = tuple(params["sim_driver"]["joints"])
+    if args.limits:
+        _check_joints(limits_file, limits, joints)
     card, label = _card_for(args.policy, args.limits is not None, notes)
-    if args.limits or label == "hold":
-        card = _retarget(card, label, limits_file, tuple(params["sim_driver"]["joints"]), period,
-                         workdir)
+    made = args.limits is not None or label == "hold"
+    if made:
+        card = _retarget(card, label, limits_file, joints, period, workdir)
     try:
         load_card(card)
     except PolicyError as exc:
-        raise DemoError(str(exc)) from None
+        if not made:
+            raise DemoError(str(exc)) from None
+        # the card is the demo's own, made in its temporary folder: name what the user gave
+        raise DemoError(str(exc).replace(str(card), f"the demo's {label} card for "
+                                         f"{limits_file}")) from None
     adapter["policy"] = str(card)
     adapter["limits_file"] = str(limits_file)
     ref["limits_file"] = str(limits_file)
@@ -161,7 +192,8 @@ def build_config(args: argparse.Namespace, workdir: Path) -> DemoConfig:
         played, factor, report = ensure_feasible(reference, limits, slow_down=True,
                                                  fraction=SLOW_DOWN_FRACTION)
     except (ReferenceFileError, FeasibilityError, LimitsError) as exc:
-        raise DemoError(f"the demo reference does not fit the limits: {exc}") from None
+        raise DemoError(f"the demo reference does not fit the limits of {limits_file}: "
+                        f"{exc}") from None
     if factor > 1.0:
         ref["slow_down"] = True
         ref["limit_fraction"] = SLOW_DOWN_FRACTION

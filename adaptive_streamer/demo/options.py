@@ -103,7 +103,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--record", default=None, metavar="DIR",
                         help="record every stack topic to a rosbag2 (MCAP) bag in DIR")
     parser.add_argument("--report", default="demo_report", metavar="DIR",
-                        help="folder for the plots and summary (default: demo_report)")
+                        help="folder for the plots and summary, and the logs of a failed run "
+                             "(default: demo_report)")
     parser.add_argument("--inject", action="append", default=[], metavar="FAULT@SECONDS",
                         help="inject a fault: " + "; ".join(
                             f"{k}: {v}" + (f" (written {k}:SECONDS@T)" if k in LENGTH_FAULTS

@@ -129,15 +129,23 @@ def plot_timing(series: Series, rate: float, out: Path) -> Path:
 def summary_json(summary: DemoSummary) -> dict:
     """The headline figures as plain data (summary.json)."""
     st = summary.stream
+    outcome = summary.outcome
     return {"policy": summary.policy, "seed": summary.seed,
+            "pass_window": list(summary.pass_window),
             "lateral_rms_mm": summary.adapted.rms, "lateral_max_mm": summary.adapted.max,
+            "lateral_samples": summary.adapted.samples,
             "reference_only_rms_mm": summary.reference_only.rms,
             "reference_only_max_mm": summary.reference_only.max,
+            "reference_only_samples": summary.reference_only.samples,
             "setpoints": st.samples, "violations": st.total_violations,
             "violations_by_kind": st.violations,
-            "watchdog_events": [{"time": t, "kind": k, "message": m} for t, k, m in summary.events],
+            "watchdog_events": [{"time": e.time, "kind": e.kind, "message": e.reason}
+                                for e in summary.events],
             "decision_ms": summary.decision_ms, "period_ms": summary.period,
-            "faults": [asdict(f) for f in summary.faults]}
+            "faults": [asdict(f) for f in summary.faults],
+            "outcome": None if outcome is None else
+            {"verdict": outcome.verdict.value, "line": outcome.line,
+             "exit_code": outcome.exit_code}}
 
 
 def write_summary(summary: DemoSummary, limits: JointLimits, plots: list[Path], out: Path,

@@ -41,16 +41,22 @@ CELL_NODES = ["reference_server", "edge_sensor", "sensor_bridge"]
 STARTUP_TIMEOUT = 30.0
 SETTLE = 0.5       # seconds at rest after the pass before ending
 REST_VELOCITY = 1e-4
+LOGS_DIR = "logs"  # the report's folder for the logs of a failed run
 
 
 def run_demo(args: argparse.Namespace) -> int:
-    """Run the demo; returns 0 when the pass ran with zero limit violations."""
+    """Run the demo; returns 0 when the run passed (`adaptive_streamer.demo.outcome`: no
+    limit violations, every injected fault led to its expected stop, no stop that was not
+    injected), 1 otherwise. When the run fails (that, a `DemoError` once the processes
+    started, or any other exception) the processes' logs are copied to the report folder's
+    `LOGS_DIR` and their path is printed."""
     print(CAUTIONS, flush=True)
     try:
         injections = sorted((parse_injection(s) for s in args.inject), key=lambda i: i.at)
     except OptionError as exc:
         raise DemoError(str(exc)) from None
     workdir = Path(tempfile.mkdtemp(prefix="adaptive_streamer_demo_"))
+    passed = False
     try:
         cfg = build_config(args, workdir)
         for note in cfg.notes:
@@ -61,9 +67,31 @@ def run_demo(args: argparse.Namespace) -> int:
             name = f.fault + (f":{f.length:g}" if math.isfinite(f.length) else "")
             print(f"fault to inject at +{f.at:g} s: {name} ({describe(f.fault, f.length)}); "
                   f"expected stop: {f.expected}{'; ' + f.note if f.note else ''}", flush=True)
-        return _run(cfg, args, faults, params_file, workdir)
+        code = _run(cfg, args, faults, params_file, workdir)
+        passed = code == 0
+        return code
     finally:
+        if not passed:
+            kept = _keep_logs(workdir, Path(args.report))
+            if kept is not None:
+                print(f"logs of the failed run: {kept}", file=sys.stderr, flush=True)
         shutil.rmtree(workdir, ignore_errors=True)
+
+
+def _keep_logs(workdir: Path, report: Path) -> Path | None:
+    """Copy the processes' logs (``workdir/logs``) to ``report/LOGS_DIR`` (replacing an
+    earlier run's); the folder, or None when no process had started."""
+    logs = workdir / "logs"
+    if not logs.is_dir() or not any(logs.iterdir()):
+        return None
+    dest = report / LOGS_DIR
+    try:
+        shutil.rmtree(dest, ignore_errors=True)
+        shutil.copytree(logs, dest)
+    except OSError as exc:
+        print(f"warning: could not copy the logs to {dest}: {exc}", file=sys.stderr)
+        return None
+    return dest.resolve()
 
 
 def _plan(cfg: DemoConfig, args: argparse.Namespace, injections: list,
@@ -111,7 +139,7 @@ def _run(cfg: DemoConfig, args: argparse.Namespace, faults: list[PlannedFault],
             procs.start(NodeEntry(group[0], "", {}), params_file, group=group,
                         remaps=RELAY_REMAP if relay and name == "cell" else None,
                         stdout=(logs / f"{name}.log").open("w"), stderr=subprocess.STDOUT)
-        _bring_up_adapter(monitor, procs, watch)
+        _bring_up_adapter(monitor, procs, watch, logs / "adapter.log")
         monitor.recording = True
         if not monitor.wait_for("following", lambda: monitor.last_mode() == "following",
                                 STARTUP_TIMEOUT):
@@ -179,15 +207,17 @@ def _start_recorder(procs: Processes, out: str, workdir: Path, logs: Path) -> Pa
     return bag
 
 
-def _bring_up_adapter(monitor, procs: Processes, watch: RecordingWatch | None) -> None:
+def _bring_up_adapter(monitor, procs: Processes, watch: RecordingWatch | None,
+                      log: Path) -> None:
     """Configure the adapter, wait (with ``--record``: ``watch``) until the recorder records
-    every published topic, then activate it: motion starts there."""
+    every published topic, then activate it: motion starts there. A refusal quotes the end
+    of the adapter's ``log``."""
     adapter = monitor.adapter
     if not monitor.wait_for("joint_states", lambda: adapter.wait(0.2) and _alive(procs),
                             STARTUP_TIMEOUT):
         raise DemoError("the adapter's lifecycle services did not appear")
     if not adapter.configure():
-        raise DemoError("the adapter refused to configure (see its log)")
+        raise DemoError(f"the adapter refused to configure: {_tail(log)}")
     if watch is not None:
         try:
             watch.wait(STARTUP_TIMEOUT, alive=lambda: _alive(procs))
@@ -196,7 +226,8 @@ def _bring_up_adapter(monitor, procs: Processes, watch: RecordingWatch | None) -
     deadline = time.monotonic() + STARTUP_TIMEOUT
     while not adapter.activate():
         if time.monotonic() > deadline or not _alive(procs):
-            raise DemoError("the adapter refused to activate (no fresh joint_states?)")
+            raise DemoError("the adapter refused to activate (no fresh joint_states?): "
+                            f"{_tail(log)}")
         monitor.spin_for(0.5)
 
 
@@ -316,43 +347,66 @@ def _inject(monitor, rec: InjectionRecord, mode: str, now: float,
 
 
 def _reference_only(cfg: DemoConfig, length: float) -> tuple[np.ndarray, np.ndarray]:
-    """(times from the pass start, lateral error [m]) of the first ``length`` seconds of the
-    same pass without adaptation (the tracker), by the offline closed loop: the same core
-    code as the live adapter, the same seed, limits and reference, no DDS."""
+    """(times from the pass start, lateral error [m]) of at least the first ``length``
+    seconds of the same pass without adaptation (the tracker), by the offline closed loop:
+    the same core code as the live adapter, the same seed, limits and reference, no DDS."""
     from ..sim.closed_loop import CellSettings, run_closed_loop
     settings = CellSettings()
     duration = None if length >= cfg.reference_duration else \
         settings.start_delay + length + settings.decision_period
     res = run_closed_loop("tracker", seed=cfg.seed, limits=cfg.limits, reference=cfg.reference,
                           settings=settings, duration=duration)
-    keep = res.pass_times <= length
-    return res.pass_times[keep], res.pass_lateral_error[keep]
+    return res.pass_times, res.pass_lateral_error
 
 
 def _report(cfg: DemoConfig, monitor, args: argparse.Namespace, t_start: float,
             t_end: float, records: list[InjectionRecord], status: dict[str, str]) -> int:
+    """Compute the figures, judge the run (`adaptive_streamer.demo.outcome`), write the
+    report and print the summary; the exit code."""
     from .faults import outcomes
+    from .outcome import judge
     from .report import write_summary
-    from .summary import Series, summarise
+    from .summary import Series, format_summary, summarise
 
     series = Series.of(monitor.data, len(cfg.limits))
     scenario = load_scenario(cfg.params["edge_sensor"]["scenario"])
     panel = scenario.panel(cfg.seed)
     window = (t_start, min(t_end, t_start + cfg.reference_duration))
     t_ref, e_ref = _reference_only(cfg, window[1] - window[0])
-    summary = summarise(series, cfg.limits, panel, cfg.stream_rate, window, e_ref,
-                        cfg.policy_label, cfg.seed, monitor.adapter_status(), cfg.notes,
-                        outcomes(records, status, series.sp_t, series.sp_v, series.followed,
-                                 cfg.limits))
+    # the latched trip as it was before deactivating, the counters as they are now
+    diag = {**monitor.adapter_status(),
+            **{k: v for k, v in status.items() if k.startswith("trip")}}
+    faults = outcomes(records, status, series.sp_t, series.sp_v, series.followed, cfg.limits)
+    summary = summarise(series, cfg.limits, panel, cfg.stream_rate, window, (t_ref, e_ref),
+                        cfg.policy_label, cfg.seed, diag, _deviation_limits(cfg), cfg.notes,
+                        faults)
+    summary.outcome = judge(summary.stream.total_violations, summary.events,
+                            status.get("trip", "none"), _float(status.get("trip_time")),
+                            faults, t_start)
     out = Path(args.report)
     out.mkdir(parents=True, exist_ok=True)
-    plots = [] if args.no_plots else _plots(cfg, series, panel, window, t_ref, e_ref, out)
+    in_window = t_ref <= window[1] - window[0]
+    plots = [] if args.no_plots else _plots(cfg, series, panel, window, t_ref[in_window],
+                                            e_ref[in_window], out)
     md, html_path = write_summary(summary, cfg.limits, plots, out, CAUTIONS)
-    from .summary import format_summary
     print()
     print(format_summary(summary, cfg.limits))
     print(f"report: {md} ({html_path.name}, {len(plots)} plots)")
-    return 0 if summary.stream.total_violations == 0 else 1
+    return summary.outcome.exit_code
+
+
+def _deviation_limits(cfg: DemoConfig) -> tuple[float, float]:
+    """The adapter's watchdog (deviation_joint, deviation_norm) [rad] (NaN: not given)."""
+    wd = cfg.params["adapter"].get("watchdog", {})
+    return (float(wd.get("deviation_joint", math.nan)),
+            float(wd.get("deviation_norm", math.nan)))
+
+
+def _float(text: str | None) -> float:
+    try:
+        return float(text) if text is not None else math.nan
+    except ValueError:
+        return math.nan
 
 
 def _plots(cfg: DemoConfig, series, panel, window: tuple[float, float], t_ref: np.ndarray,
@@ -363,10 +417,8 @@ def _plots(cfg: DemoConfig, series, panel, window: tuple[float, float], t_ref: n
     from ..sim.metrics import lateral_error
 
     t_start = window[0]
-    wd = cfg.params["adapter"].get("watchdog", {})
     plots = plot_joints(series, cfg.limits, out, t_start)
-    plots.append(plot_deviation(series, (float(wd.get("deviation_joint", math.nan)),
-                                         float(wd.get("deviation_norm", math.nan))), out, t_start))
+    plots.append(plot_deviation(series, _deviation_limits(cfg), out, t_start))
     in_pass = (series.js_t >= window[0]) & (series.js_t <= window[1])
     plots.append(plot_lateral(series.js_t[in_pass] - t_start,
                               lateral_error(series.js_q[in_pass], panel) if in_pass.any()

@@ -14,11 +14,12 @@ from ..core.stream_metrics import StreamReport, check_stream, period_stats, time
 from .faults import FaultOutcome
 from .followed import FollowedCheck, FollowedMotion, check_followed, followed_motion
 from .monitor import Recorded
+from .outcome import RunOutcome, WatchdogEvent, watchdog_events
 
 
 @dataclass
 class ErrorFigures:
-    """Lateral placement error over the pass [mm]."""
+    """Lateral placement error over a window of the pass [mm]."""
 
     rms: float
     max: float
@@ -44,12 +45,13 @@ class DemoSummary:
     stream: StreamReport
     period: dict[str, float]
     decision_ms: dict[str, float]
-    events: list[tuple[float, str, str]]
+    events: list[WatchdogEvent]
     notes: list[str] = field(default_factory=list)
     adapter_diag: dict[str, str] = field(default_factory=dict)
     pass_window: tuple[float, float] = (math.nan, math.nan)
     faults: list[FaultOutcome] = field(default_factory=list)
     followed: FollowedCheck | None = None
+    outcome: RunOutcome | None = None
 
     @property
     def improvement(self) -> float:
@@ -103,14 +105,22 @@ def _followed(rows: list[tuple[int, list, list, list]], n: int) -> FollowedMotio
 
 
 def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
-              pass_window: tuple[float, float], reference_only_err: np.ndarray,
-              policy: str, seed: int, adapter_diag: dict[str, str],
+              pass_window: tuple[float, float],
+              reference_only: tuple[np.ndarray, np.ndarray], policy: str, seed: int,
+              adapter_diag: dict[str, str], deviation_limits: tuple[float, float],
               notes: list[str], faults: list[FaultOutcome] | None = None) -> DemoSummary:
-    """The demo's figures."""
+    """The demo's figures. The adapted lateral error is that of the measured joint_states
+    stamped within ``pass_window`` (ROS times [s]); the reference-only one, given as (times
+    from the pass start [s], errors [m]) of the pass without adaptation, is cut here to the
+    same window, so both figures cover the same part of the pass (an early stop or
+    ``--duration`` included). ``deviation_limits``: the watchdog's (``deviation_joint``,
+    ``deviation_norm``) [rad], for the events' reasons (`watchdog_events`)."""
     t0, t1 = pass_window
     in_pass = (series.js_t >= t0) & (series.js_t <= t1)
     adapted = ErrorFigures.of(lateral_error(series.js_q[in_pass], panel)) if in_pass.any() \
         else ErrorFigures.of(np.zeros(0))
+    t_ref, e_ref = reference_only
+    ref_in = (t_ref >= 0.0) & (t_ref <= t1 - t0)
     # the plan's segment boundaries lie on float64 absolute ROS times: allow their spacing
     stream = check_stream(series.sp_t, series.sp_p, series.sp_v, series.sp_a, limits, rate,
                           time_resolution=time_resolution_of(series.sp_t))
@@ -118,12 +128,9 @@ def summarise(series: Series, limits: JointLimits, panel: Panel, rate: float,
     decision_ms = {"policy_p50": _pct(pt, 50), "policy_p99": _pct(pt, 99),
                    "cycle_p50": _num(adapter_diag.get("decision_ms_p50")),
                    "cycle_p99": _num(adapter_diag.get("decision_ms_p99"))}
-    events = [(d.time, d.verdict, d.message) for d in series.decisions if d.verdict != "ok"]
-    if adapter_diag.get("trip", "none") != "none" and not events:
-        events.append((_num(adapter_diag.get("trip_time")), adapter_diag["trip"],
-                       adapter_diag.get("trip_message", "")))
+    events = watchdog_events(series.decisions, adapter_diag, deviation_limits)
     followed = check_followed(series.followed, limits) if series.followed.ticks else None
-    return DemoSummary(policy, seed, adapted, ErrorFigures.of(reference_only_err), stream,
+    return DemoSummary(policy, seed, adapted, ErrorFigures.of(e_ref[ref_in]), stream,
                        period_stats(series.sp_arrival, rate), decision_ms, events, notes,
                        adapter_diag, pass_window, list(faults or []), followed)
 
@@ -142,7 +149,9 @@ def _num(text: str | None) -> float:
 def format_summary(s: DemoSummary, limits: JointLimits) -> str:
     """The plain-text summary printed at the end of the demo."""
     lines = [f"policy: {s.policy}   seed: {s.seed}"]
-    lines.append(f"lateral placement error  adapted: RMS {s.adapted.rms:.2f} mm, max "
+    t0, t1 = s.pass_window
+    lines.append(f"lateral placement error over +0.0 to +{t1 - t0:.1f} s of the pass  "
+                 f"adapted: RMS {s.adapted.rms:.2f} mm, max "
                  f"{s.adapted.max:.2f} mm   reference only: RMS {s.reference_only.rms:.2f} mm, "
                  f"max {s.reference_only.max:.2f} mm   (adapted/reference-only RMS "
                  f"{s.improvement:.2f})")
@@ -169,8 +178,9 @@ def format_summary(s: DemoSummary, limits: JointLimits) -> str:
                  f"monitor: p50 {s.period['p50_ms']:.3f} ms, p99 {s.period['p99_ms']:.3f} ms")
     if s.events:
         lines.append("watchdog events:")
-        for t, kind, msg in s.events:
-            lines.append(f"  {kind} at {t - s.pass_window[0]:+.2f} s from the pass start: {msg}")
+        for e in s.events:
+            lines.append(f"  {e.kind} at {e.time - s.pass_window[0]:+.2f} s from the pass "
+                         f"start: {e.reason}")
     else:
         lines.append("watchdog events: none")
     if s.faults:
@@ -178,6 +188,8 @@ def format_summary(s: DemoSummary, limits: JointLimits) -> str:
         lines.extend(f"  {f.text()}" for f in s.faults)
     for note in s.notes:
         lines.append(f"note: {note}")
+    if s.outcome is not None:
+        lines.append(s.outcome.line)
     return "\n".join(lines)
 
 
