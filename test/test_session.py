@@ -46,6 +46,7 @@ class Emulator:
         self.segments: dict[float, Segment] = {}
         self.js_offset = np.zeros(N)
         self.js_age = 0.0
+        self.js_clock = 0.0
         self.window_age = 0.0
         self.truncate = False
 
@@ -54,10 +55,13 @@ class Emulator:
         if self.truncate:
             w = w._replace(times=w.times[:1], positions=w.positions[:1],
                            velocities=w.velocities[:1], accelerations=w.accelerations[:1])
-        cmd = self.s.commanded_at(now - LATENCY)  # an ideal driver, LATENCY behind
+        # an ideal driver, LATENCY behind; its latest message was sent js_age ago, stamped
+        # on its own clock (js_clock ahead of this one)
+        sent = now - self.js_age
+        cmd = self.s.commanded_at(sent - LATENCY)
         pos = (cmd.position if cmd is not None else P0) + self.js_offset
-        return SessionInputs(w, now - self.window_age, None, None, pos, now,
-                             now - self.js_age)
+        return SessionInputs(w, now - self.window_age, None, None, pos, sent + self.js_clock,
+                             sent)
 
     def tick(self, decide: bool = True) -> tuple[MotionState, str | None]:
         t = self.clock.time_of(self.i)
@@ -139,6 +143,24 @@ def test_following_error_uses_the_command_latency_earlier():
     now = emu.clock.time_of(emu.i)
     faults = emu.s.input_faults(now, emu.inputs(now), False)
     assert [k for k, _ in faults] == ["following_error"]
+
+
+@pytest.mark.parametrize("offset", [-0.5, 0.5, 0.03])
+def test_following_error_is_checked_with_a_driver_clock_offset(offset):
+    """A driver whose clock is off by ±0.5 s (not synchronised) stamps joint_states outside
+    the kept plan; the check maps the stamps onto this clock (smallest arrival - stamp) and
+    keeps checking. 30 ms counts as synchronised clocks: the stamps are used as they are."""
+    emu = Emulator(session(following_error=0.05))
+    emu.js_clock = offset
+    emu.run(1.5)
+    # every decision compared (but the first, at the plan's start: nothing commanded before)
+    assert emu.s.watchdog.trip is None and emu.s.following_unchecked <= 1
+    assert emu.s.driver_clock.estimate == pytest.approx(-offset, abs=1e-6)
+    assert emu.s.driver_clock.correction == (0.0 if abs(offset) < 0.05 else -offset)
+    emu.js_offset[3] = 0.1   # (30 ms of unsynchronised stamps shift the comparison a little)
+    emu.run(2 * T)
+    trip = emu.s.watchdog.trip
+    assert trip is not None and trip.kind == "following_error" and "'j4'" in trip.message
 
 
 @pytest.mark.parametrize("setup, kind, words", [

@@ -97,6 +97,25 @@ def test_following_error_against_the_command_latency_earlier():
         mon.joint_state(10.2, np.zeros(3))
 
 
+def test_following_error_with_a_driver_clock_half_a_second_behind():
+    # the driver stamps on its own clock, 0.5 s behind this one (not synchronised): its
+    # stamps fall before the kept setpoints; with the arrival times the monitor maps them
+    # onto this clock and judges every message
+    cfg = WatchdogConfig(following_error=0.05, command_latency=0.012)
+    mon = StreamMonitor(LIM2, cfg, history=100)
+    speed = np.array([0.5, -0.25])
+    for i in range(100):
+        t = 10.0 + i * 0.004
+        mon.setpoint(t, ms(p=speed * (t - 10.0), v=speed))
+    for arrival in (10.2, 10.24, 10.3):
+        measured = speed * (arrival - 0.002 - 0.012 - 10.0)   # taken 2 ms before arrival
+        assert mon.joint_state(arrival - 0.002 - 0.5, measured, arrival=arrival) is None
+    assert mon.stats.judged == 3 and mon.driver_clock.correction == pytest.approx(0.502)
+    r = mon.joint_state(10.35 - 0.002 - 0.5, speed * (10.35 - 0.014 - 10.0) + [0.06, 0.0],
+                        arrival=10.35)
+    assert r is not None and "'a'" in r
+
+
 # ---------------------------------------------------------------------------- node
 @pytest.fixture(scope="module")
 def cell(tmp_path_factory):

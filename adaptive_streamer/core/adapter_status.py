@@ -68,7 +68,9 @@ def session_values(session: StreamingSession, timings: CycleTimings,
         ("trip", "none" if trip is None else trip.kind),
         ("trip_message", "" if trip is None else trip.message),
         ("trip_time", math.nan if trip is None else trip.time)]
-    vals += [("watchdog_events", session.watchdog.total_events)]
+    vals += [("watchdog_events", session.watchdog.total_events),
+             ("joint_states_clock_offset", session.driver_clock.estimate),
+             ("following_unchecked", session.following_unchecked)]
     vals += [(f"count.{k}", v) for k, v in session.watchdog.counts.items() if v]
     if session.shadow_policy is not None:
         st = session.shadow_stats

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .clock_offset import DriverClock
 from .guard import SetpointGuard
 from .limits import JointLimits
 from .segment import MotionState
@@ -64,6 +65,7 @@ class StreamMonitor:
         self._times: deque[float] = deque(maxlen=history)
         self._positions: deque[np.ndarray] = deque(maxlen=history)
         self._n = len(limits)
+        self.driver_clock = DriverClock()
 
     def setpoint(self, t: float, sp: MotionState) -> str | None:
         """Check one setpoint at nominal time ``t``; the reason when it fails (counted)."""
@@ -81,18 +83,24 @@ class StreamMonitor:
         return reason
 
     def joint_state(self, stamp: float, positions: np.ndarray,
-                    present: np.ndarray | None = None) -> str | None:
+                    present: np.ndarray | None = None,
+                    arrival: float | None = None) -> str | None:
         """Compare measured ``positions`` taken at ``stamp`` with the command
         ``command_latency`` earlier; the reason when over ``following_error`` (counted).
 
         ``present`` (bool per joint) limits the comparison to the joints a message carried
-        (a driver may send the joints in several messages)."""
+        (a driver may send the joints in several messages). ``arrival`` (this computer's
+        clock) feeds the driver-clock estimate (`adaptive_streamer.core.clock_offset`):
+        stamps from an unsynchronised driver clock are mapped onto this one."""
         positions = np.asarray(positions, float)
         if positions.shape != (self._n,):
             raise MonitorError(f"joint state must hold {self._n} positions (joints "
                                f"{list(self.limits.names)}), got shape {positions.shape}")
         self.stats.joint_states += 1
-        commanded = self.commanded_at(stamp - self.config.command_latency)
+        if arrival is not None:
+            self.driver_clock.update(arrival, stamp)
+        commanded = self.commanded_at(stamp + self.driver_clock.correction
+                                      - self.config.command_latency)
         if commanded is None:
             return None
         self.stats.judged += 1

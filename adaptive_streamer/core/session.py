@@ -49,6 +49,7 @@ from typing import Callable
 import numpy as np
 
 from .alignment import AlignmentError, align, validate_window
+from .clock_offset import DriverClock
 from .cycle import CycleConfig, Decision, DecisionCycle
 from .feedback import FeatureVector
 from .guard import SetpointGuard
@@ -144,6 +145,9 @@ class StreamingSession:
         self._last_t: float | None = None     # stream time of the last setpoint passed
         self._sent_clock: float | None = None  # monotonic time it left [s]
         self.retimes = 0
+        self.driver_clock = DriverClock()      # joint_states stamps -> this clock
+        self.following_unchecked = 0           # following checks without a command to
+        #                                        compare with (stamp outside the kept plan)
 
     def enable_plan_ahead(self, lead: float) -> None:
         """Build a plan message after every commit (`last_plan`) and, with a clock given to
@@ -377,8 +381,13 @@ class StreamingSession:
             feedback_needed=needs_feedback)
         faults = self.watchdog.stale_inputs(ages)
         if inputs.joint_positions is not None and inputs.joint_stamp is not None:
-            cmd = self._commanded_before(inputs.joint_stamp)
-            if cmd is not None:
+            stamp = inputs.joint_stamp
+            if inputs.joint_received is not None:
+                self.driver_clock.update(inputs.joint_received, float(np.max(stamp)))
+            cmd = self._commanded_before(np.asarray(stamp, float) + self.driver_clock.correction)
+            if cmd is None:
+                self.following_unchecked += 1
+            else:
                 _, reason = self.watchdog.following(inputs.joint_positions, cmd)
                 if reason is not None:
                     faults.append(("following_error", reason))

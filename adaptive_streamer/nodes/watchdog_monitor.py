@@ -38,8 +38,8 @@ from adaptive_streamer.core.watchdog import WatchdogConfig, WatchdogError
 from adaptive_streamer.io.joint_states import JointStateError, joint_positions
 
 from ..io.param_specs import WATCHDOG
-from .common import (ERROR, OK, DiagnosticsReporter, SetupNode, declare, qos_by_name,
-                     reliable_qos, run_nodes)
+from .common import (ERROR, OK, DiagnosticsReporter, SetupNode, declare, now_sec,
+                     qos_by_name, reliable_qos, run_nodes)
 from ..io.stamps import stamp_to_sec
 
 STOP_INTERVAL_S = 1.0
@@ -132,7 +132,8 @@ class WatchdogMonitor(SetupNode):
             return
         if not got.present.any():  # e.g. a message of the gripper alone
             return
-        reason = self.monitor.joint_state(got.stamp, got.position, got.present)
+        reason = self.monitor.joint_state(got.stamp, got.position, got.present,
+                                          arrival=now_sec(self))
         if reason is not None:
             self._violation(f"following: {reason}")
 
@@ -169,6 +170,7 @@ class WatchdogMonitor(SetupNode):
                 ("last_setpoint_violation", s.last_setpoint_violation or "none"),
                 ("joint_states_checked", s.joint_states),
                 ("joint_states_judged", s.judged),
+                ("joint_states_clock_offset", self.monitor.driver_clock.estimate),
                 ("following_violations", s.following_violations),
                 ("following_error_max", s.following_error_max),
                 ("last_following_violation", s.last_following_violation or "none"),
