@@ -31,6 +31,7 @@ stream_fault        an error in the stream thread's loop or   (always on)
 from __future__ import annotations
 
 import math
+import threading
 from collections import deque
 from dataclasses import dataclass, field, replace
 from typing import Any
@@ -123,6 +124,7 @@ class Watchdog:
         self.stop_requested: str | None = None
         self._overruns: deque[bool] = deque(maxlen=int(config.overrun_window))
         self._deviation_joint = np.full(len(joint_names), float(config.deviation_joint))
+        self._lock = threading.Lock()   # fire and reset: latch, counts and events together
 
     def tighten(self, name: str, value: float) -> None:
         """Lower the threshold ``name`` (one of `TIGHTER_WHEN_LOWER`) while running; takes
@@ -151,13 +153,14 @@ class Watchdog:
         if kind not in KINDS:
             raise WatchdogError(f"unknown trigger '{kind}'")
         event = Trip(kind, time, message, values)
-        self.counts[kind] += 1
-        self.events.append(event)
-        if len(self.events) > EVENTS_KEPT:
-            del self.events[0]
-        self.total_events += 1
-        if self.trip is None:
-            self.trip = event
+        with self._lock:   # the stream thread and the decision thread both fire
+            self.counts[kind] += 1
+            self.events.append(event)
+            if len(self.events) > EVENTS_KEPT:
+                del self.events[0]
+            self.total_events += 1
+            if self.trip is None:
+                self.trip = event
         return event
 
     # ------------------------------------------------------------------ checks
@@ -236,9 +239,10 @@ class Watchdog:
         if persisting:
             why = "; ".join(reason for _, reason in persisting)
             return False, f"reset refused: {why}"
-        was = self.trip
-        self.trip = None
-        self._overruns.clear()
+        with self._lock:
+            was = self.trip
+            self.trip = None
+            self._overruns.clear()
         if was is None:
             return True, "nothing to reset"
         return True, f"reset after {was.kind}: {was.message}"
