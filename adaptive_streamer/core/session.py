@@ -381,10 +381,14 @@ class StreamingSession:
             feedback_needed=needs_feedback)
         faults = self.watchdog.stale_inputs(ages)
         if inputs.joint_positions is not None and inputs.joint_stamp is not None:
-            stamp = inputs.joint_stamp
+            stamps = np.asarray(inputs.joint_stamp, float)
+            latest = float(stamps.max())
             if inputs.joint_received is not None:
-                self.driver_clock.update(inputs.joint_received, float(np.max(stamp)))
-            cmd = self._commanded_before(np.asarray(stamp, float) + self.driver_clock.correction)
+                self.driver_clock.update(inputs.joint_received, latest)
+            shift = self.driver_clock.correction
+            # one message for all joints (the usual case): one look-up
+            cmd = self._commanded_before(latest + shift if latest == stamps.min()
+                                         else stamps + shift)
             if cmd is None:
                 self.following_unchecked += 1
             else:
