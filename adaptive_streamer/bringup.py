@@ -382,6 +382,8 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
                if not e.params.get("autostart", False)]
     watch = RecordingWatch(node, entries[-1].fqn) if record else None
     try:
+        names = NameWatch(node, [e.fqn for e in entries])
+        names.refuse_taken(lambda t: rclpy.spin_once(node, timeout_sec=t))
         logs = Path(tempfile.mkdtemp(prefix="adaptive_streamer_bringup_"))
         print(f"bringup: each node's output is also in {logs}", flush=True)
         for entry in entries:
@@ -411,6 +413,11 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
                           file=sys.stderr)
                 code = 1
                 break
+            twins = names.twins()
+            if twins:
+                print(f"bringup: {twins}; stopping this cell", file=sys.stderr)
+                code = 1
+                break
             rclpy.spin_once(node, timeout_sec=0.2)
         for client in clients:  # bring the arm to rest while the driver still runs
             try:
@@ -434,6 +441,51 @@ def _run_processes(entries: list[NodeEntry], params_file: str, activate_timeout:
             signal.signal(s, h)
     print("bringup: stopped" + ("" if code == 0 and not notes else " (with errors)"), flush=True)
     return code or (1 if notes else 0)
+
+
+class NameWatch:
+    """The cell's node names against the ROS graph: two nodes with one name on a domain
+    take each other's topics and services (a second cell started with the same names would
+    command the first cell's driver), so bringup refuses to start when one of its names is
+    taken, and stops its cell when a second node with one of them appears later."""
+
+    DISCOVERY = 1.0      # [s] spent discovering the nodes already running before starting
+    PERIOD = 1.0         # [s] between checks of the graph while running
+
+    def __init__(self, node: Any, fqns: list[str]) -> None:
+        self.node = node
+        self.fqns = fqns
+        self._next = 0.0
+
+    def _running(self) -> list[str]:
+        return [(ns.rstrip("/") + "/" + name) for name, ns in
+                self.node.get_node_names_and_namespaces()]
+
+    def refuse_taken(self, spin: Any) -> None:
+        """Discover the graph for `DISCOVERY` seconds; raise `BringupError` naming the
+        cell's names that are already in use."""
+        end = time.monotonic() + self.DISCOVERY
+        while time.monotonic() < end:
+            spin(0.05)
+        taken = sorted(set(self.fqns) & set(self._running()))
+        if taken:
+            raise BringupError(
+                f"node name(s) {', '.join(taken)} already in use on ROS_DOMAIN_ID "
+                f"{os.environ.get('ROS_DOMAIN_ID', '0')}: two nodes with one name share its "
+                "topics and services; stop the other cell, or give this one its own "
+                "namespace (params file keys '/ns/node') or its own ROS_DOMAIN_ID")
+
+    def twins(self) -> str:
+        """At most every `PERIOD`: a note naming the cell's nodes that now exist more than
+        once in the graph ('' when none, or not checked this time)."""
+        now = time.monotonic()
+        if now < self._next:
+            return ""
+        self._next = now + self.PERIOD
+        running = self._running()
+        twice = sorted(f for f in set(self.fqns) if running.count(f) > 1)
+        return (f"a second node named {', '.join(twice)} appeared on the ROS domain"
+                if twice else "")
 
 
 def _refuse_dead(procs: Processes, outputs: dict[str, ChildOutput]) -> None:

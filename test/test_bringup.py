@@ -148,6 +148,45 @@ def test_a_child_that_exits_during_startup_stops_bringup_at_once_with_its_last_l
     assert "Traceback" not in out.stdout + out.stderr
 
 
+@pytest.mark.ros
+def test_a_cell_whose_node_names_are_taken_is_refused_and_a_late_twin_stops_it(tmp_path):
+    params = cell_params(tmp_path)
+    cmd = [sys.executable, "-m", "adaptive_streamer.cli", "bringup", "--params", str(params)]
+    # a node named like one of the cell's before it starts: refused (or, when discovery
+    # was slower than bringup's look at the graph, stopped as soon as it is seen)
+    twin = ProbeNode("sim_driver")
+    try:
+        out = subprocess.run(cmd, capture_output=True, text=True, timeout=120,
+                             env=dict(os.environ, PYTHONUNBUFFERED="1"))
+    finally:
+        twin.close()
+    assert out.returncode == 1, out.stdout[-3000:] + out.stderr[-3000:]
+    assert ("node name(s) /sim_driver already in use on ROS_DOMAIN_ID" in out.stderr
+            or "a second node named /sim_driver appeared" in out.stderr), out.stderr[-3000:]
+    # a second node with a cell's name while the cell moves: a controlled stop, exit 1
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+                            env=dict(os.environ, PYTHONUNBUFFERED="1"))
+    listener = Listener()
+    late = None
+    try:
+        assert listener.spin_until(lambda: len(listener.samples) > 250, 60.0, proc), \
+            "no setpoint stream within 60 s"
+        late = Node("reference_server")
+        listener.spin_until(lambda: proc.poll() is not None, 40.0, proc)
+        out, _ = proc.communicate(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        if late is not None:
+            late.destroy_node()
+        listener.close()
+    assert proc.returncode == 1, out[-3000:]
+    assert "a second node named /reference_server appeared on the ROS domain; stopping " \
+           "this cell" in out, out[-3000:]
+    assert "deactivating /adapter (controlled stop)" in out, out[-3000:]
+    assert np.abs(np.array(listener.samples[-1][1])).max() < 1e-6   # brought to rest
+
+
 STAND_IN = """
 import signal, sys, time
 out, delay = sys.argv[1], float(sys.argv[2])
