@@ -12,7 +12,8 @@ import time
 from pathlib import Path
 
 HERE = Path(__file__).parent
-ORDER = ["limit_stage_speed", "policy_speed", "cycle_speed", "plan_speed", "replay_speed",
+ORDER = ["limit_stage_speed", "policy_speed", "card_load", "cycle_speed", "plan_speed",
+         "replay_speed",
          "batch_speed",
          "stream_timing",
          "limit_stage_acceptance", "env_speed"]

@@ -14,9 +14,10 @@ from typing import Any
 import yaml
 
 MAX_BYTES = 1 << 20   # 1 MiB: far above any card, limits or params file of the package
-# texts up to this size are parsed with libyaml's loader (about 8x faster, ~0.3 ms for a
-# policy card); it holds the interpreter for the whole parse (no switch to the stream
-# thread), so larger texts take the Python loader, which lets other threads in between
+# texts up to this size are parsed with libyaml's loader (2-5x faster for a policy card,
+# bench/card_load.py); its C part holds the interpreter in one piece (about 1.3 ms at this
+# size: no switch to the stream thread meanwhile), so larger texts take the Python
+# loader, which lets other threads in between
 C_LOADER_MAX = 8 << 10
 _C_LOADER = getattr(yaml, "CSafeLoader", None)
 
