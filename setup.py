@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """ament_python / pip setup for adaptive_streamer.
 
 Installs the Python package, the node executables (``lib/adaptive_streamer`` under colcon,

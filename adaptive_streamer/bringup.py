@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``adaptive-streamer bringup``: start the nodes of a ROS 2 params file, as a launch file would.
 
 Each top-level key of the params file names a node (``adapter``, ``/cell/adapter``...; the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``adaptive-streamer check-policy CARD_OR_MODEL``: validate a policy before it meets a robot.
 
 For a policy card: the card parses, fits its own joints/period/limits and its model (input

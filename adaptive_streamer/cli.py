@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The ``adaptive-streamer`` command.
 
     adaptive-streamer demo [--duration S] [--policy CARD|KIND] [--limits FILE] [--record DIR]

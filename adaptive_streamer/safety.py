@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Safety cautions printed by the demo and the bring-up (the README carries the same text)."""
 
 CAUTIONS = """\

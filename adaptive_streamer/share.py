@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Where the package's installed files (config/, launch/) are.
 
 Order: the ament index (a colcon or distro install), the source checkout this module runs

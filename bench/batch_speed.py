@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Batch replay throughput: cost of one (bag, policy) task and bags per hour per worker.
 
 One synthetic recording (`replay_speed.synthetic_recording`: 7 joints, the tracker,

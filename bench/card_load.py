@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Policy-card load time: what a policy swap costs before its parameter answer goes out.
 
 Loads the demo's cards (`load_policy`: parse, checks against the running configuration,

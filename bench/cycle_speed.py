@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Speed of one decision cycle for a 7-joint arm at a 50 ms decision period.
 
 Times, per decision, ``DecisionCycle.step`` (reference alignment, policy, limit stage,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Demo fault injection figures: each fault kind, with the demo's limits and with those
 limits' velocity, acceleration and jerk at 60 %, through the live demo
 (``adaptive-streamer demo --inject FAULT@AT --duration D --no-plots``); prints per run the

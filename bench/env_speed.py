@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Speed of the training environments: environment steps per second.
 
 Prints, for the batched kinematic cell (`VectorDemoCell`) at N = 1 and N = 64, the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Fuzzing at larger counts than `make test` runs, with the cases tried per input kind.
 
 The same targets as test/test_fuzz_files.py and test/test_fuzz_topics.py (in

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """How many ``joint_states`` messages the adapter's executor takes, per message stream.
 
 A driver process (test/tern_driver.py, the invented tern arm) sends the arm joints and

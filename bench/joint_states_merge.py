@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Cost of merging ``joint_states`` split over several messages, per decision.
 
 A driver publishes 6 arm joints + 2 gripper fingers in one message at 500 Hz and a wrist

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Acceptance run of the limit stage against external references, at larger counts than the tests.
 
 1. Exactness vs the LP reference (test/oracle_lp.py: scipy.optimize.linprog, HiGHS, with

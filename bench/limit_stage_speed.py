@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Speed of `LimitStage.admissible_range` for a 7-joint arm, next to ruckig in the same run.
 
 Prints the median and p90 time per call for three state sets: random viable states (uniform

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Cost of the plan-ahead output per decision, for a 7-joint arm at a 50 ms period.
 
 Times, per decision and in the same run:

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Speed of the policy layer for a 7-joint arm at a 50 ms decision period.
 
 Prints the median and p90 time per call in microseconds (``CALLS`` calls per round, every

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Replay throughput: decision cycles per second on 7 joints, tracker and ONNX 2x64 MLP.
 
 Each case writes a synthetic recording (invented data; ``CYCLES`` decision cycles at a

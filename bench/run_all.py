@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`make bench`: run every benchmark script in bench/ and print their figures.
 
 Each script prints its own figures (and the command that reproduces them); this runner

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`make soak`: the demo stack for a long run with random actions, faults and resets.
 
 What runs (real processes over DDS, as ``adaptive-streamer demo`` runs them): the cell

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Timing of the adapter's setpoint stream under load, measured from another process.
 
 Three processes on one machine:

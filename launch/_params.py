@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Shared by the launch files: expand ``$(share)`` in a params file (as bringup does)."""
 import os
 import tempfile

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo cell (simulated driver, edge sensor, bridge, reference, adapter) for distro users.
 
     ros2 launch adaptive_streamer demo.launch.py

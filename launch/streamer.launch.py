@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """reference_server, sensor_bridge and adapter, for a real driver (ROS 2 distro users).
 
     ros2 launch adaptive_streamer streamer.launch.py params_file:=/path/to/cell.yaml namespace:=cell

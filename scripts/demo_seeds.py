@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The README's demo claim: the live demo over 10 scenario seeds, and the median.
 
 Runs ``adaptive-streamer demo --seed K`` for K = 0..9 (each a full live pass over DDS),

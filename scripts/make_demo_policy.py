@@ -1,4 +1,5 @@
 #!/usr/bin/env python3
+# SPDX-License-Identifier: Apache-2.0
 """Build and check the demo's policy cards and the learned edge-following model.
 
 Writes into ``config/demo/`` (invented data for the demo):

@@ -1,4 +1,5 @@
 #!/usr/bin/env python3
+# SPDX-License-Identifier: Apache-2.0
 """Write the demo's joint-space reference (``config/demo/reference.csv``) from the scenario.
 
 The nominal pass of ``config/demo/scenario.yaml`` (straight, along the nominal edge, timed

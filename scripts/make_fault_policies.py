@@ -1,4 +1,5 @@
 #!/usr/bin/env python3
+# SPDX-License-Identifier: Apache-2.0
 """Build the demo's fault-injection policies (``config/demo/faults/``) from the edge model.
 
 Both wrap the learned edge follower (``config/demo/policy_edge.onnx``, built by

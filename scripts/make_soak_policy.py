@@ -1,4 +1,5 @@
 #!/usr/bin/env python3
+# SPDX-License-Identifier: Apache-2.0
 """Build the soak run's files in ``config/soak/`` (invented data, for the reliability bench).
 
 * ``reference.csv``: the demo pass (``config/demo/reference.csv``) there and back, so the

@@ -1,4 +1,5 @@
 #!/usr/bin/env python3
+# SPDX-License-Identifier: Apache-2.0
 """Step response of the demo's lateral loop: a panel placed 10 mm off nominal (no angle),
 the reference held at its start, the policy correcting; prints the overshoot, the largest
 error after 1 s and when the error last leaves +-0.5 mm (offline closed loop, simulated time).

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Shared helpers for the adapter and watchdog tests over real rclpy/DDS.
 
 * Files written to a test folder: a short periodic reference CSV for the demo arm, policy

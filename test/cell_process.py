@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The test cell's own process: reference_server, sim_driver and the fault relay.
 
 Run as ``python cell_process.py CONFIG.json`` by `adapter_harness.Cell`. A real cell runs the

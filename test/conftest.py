@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Test-session setup shared by every test.
 
 Each pytest process gets its own ROS_DOMAIN_ID (derived from the process id; a new one for

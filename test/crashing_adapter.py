@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The adapter in its own process, run as `adaptive_streamer.nodes.adapter.main` runs it, next
 to a node whose callback raises when a message arrives on ``crash`` (std_msgs/Empty): the
 error reaches `common.run_nodes`, which must still bring the arm to rest before exiting.

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Shared helpers of the reliability tests (fuzzing, network cut, soak) and bench/fuzz_report.py.
 
 * `Cases`: the cases tried per input kind and how each ended (accepted, refused with the

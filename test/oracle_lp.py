@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """External reference for the limit stage: the exact admissible interval as a linear program.
 
 Model (one joint, decision period ``T``): state ``(p, v, a)`` at a decision instant; the

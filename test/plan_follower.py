@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A follower of plan messages written for the tests, independent of the package's code.
 
 It implements the message semantics the plan output documents: a plan is knots (absolute

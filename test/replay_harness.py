@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A short live run of the real stack, recorded to a bag, for the record/replay tests.
 
 Processes (real nodes over DDS, wall-clock ROS time):

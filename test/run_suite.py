@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Run the whole test suite: the modules that talk over DDS (marked ``ros``) each in a pytest
 process of their own, every other module together in one. DDS modules that declare the same
 ``SUITE_GROUP = "name"`` share a process (the replay modules share one live recording).

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A test driver process for the invented "tern" arm (test/data/urdf/tern_arm_gripper.urdf).
 
 Publishes the robot description once at start (std_msgs/String, transient local), prints

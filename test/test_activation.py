@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The activate transition's checks (adaptive_streamer.core.activation, ROS-free): with a
 policy that reads feedback, activation waits for fresh feedback, and the refusal names the
 features; a policy without feedback features activates without any."""

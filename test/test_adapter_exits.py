@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Ways out of a moving adapter's process, checked from the driver's side over real DDS
 (and, first, ``~/stop`` on an adapter that is configured but not active: nothing moved).
 

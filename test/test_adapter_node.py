@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The adapter lifecycle node over real rclpy/DDS with the simulated cell.
 
 Configure refusals, activation refused while the arm moves or joint_states is stale,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Policies in the live adapter over real rclpy/DDS: every kind, swaps, the shadow policy.
 
 Kinds: tracker, linear_feedback (feedback published by the probe), onnx (a tracking law

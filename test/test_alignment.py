@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reference alignment (quintic Hermite between window points) against outside references.
 
 * Exactness: a quintic polynomial is reproduced exactly (position, velocity, acceleration),

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`adaptive-streamer bringup`: params-file parsing, a real multi-process bring-up of the demo
 cell with a tracking policy, the controlled stop on Ctrl-C, the one-process mode, and the
 stop order of the child processes (stand-in children: the adapter's exits before the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`adaptive-streamer check-policy`: the demo cards pass; broken cards and models fail with
 the reason in the table (real onnxruntime sessions on real .onnx files)."""
 import subprocess

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The driver-clock estimate: the smallest arrival - stamp over a sliding window (the
 one-way offset estimate, common practice), against a brute-force minimum."""
 import math

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The offline closed-loop run of the demo cell: determinism, the reference-only error against
 hand-derived geometry, the adaptation's effect, and the commanded stream within the limits."""
 import math

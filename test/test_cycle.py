@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The decision cycle (ROS-free): determinism, approach -> following, stop -> stopped at
 rest, late decisions, policy faults, deviation, swaps, limit transitions, decision records,
 and the braking property.

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`adaptive-streamer demo` end to end: the live cell over DDS, its report, and the recorded
 stream checked here, independently of the demo's own claim."""
 import json

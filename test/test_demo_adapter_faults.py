@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's adapter process faults without DDS: the ``--inject`` specs of ``adapter_stall``
 and ``adapter_crash`` (errors name the option and say what was expected), the count of late
 decisions a stall makes (checked against a decision-by-decision model written here), the

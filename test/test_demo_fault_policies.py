@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's fault policies built for a run (adaptive_streamer.demo.fault_policies), run
 with real onnxruntime: the tracker base reproduces the tracker's closed form, the NaN
 fault is NaN exactly while the reference moves, the slow fault is slow only then, and a

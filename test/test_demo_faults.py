@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`adaptive-streamer demo --inject FAULT@S`: every fault kind, with the demo's limits and
 with tighter ones (the demo then runs another policy and builds its fault policies for
 those limits), ends in the watchdog stop expected for it, and the summary says so; faults

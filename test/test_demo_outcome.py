@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's verdict on a run, without DDS: every watchdog event of the summary has a reason
 that says what exceeded what (the decision records carry no text: the reason comes from the
 adapter's latched trip, or from the record's own figures), and the exit code follows from

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's policy cards and ONNX models (config/demo/, config/demo/faults/): they load
 against the demo adapter, the models agree with onnx.reference, the feedback gains move the
 nozzle across the edge, and the fault models do what their cards say."""

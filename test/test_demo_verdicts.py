@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`adaptive-streamer demo` judged from outside: the figures compare like with like (the
 tracker, which adapts nothing, scores ~1 against the reference-only figure over a short
 ``--duration``, and the adapted figure is that of the recorded joint_states in the window

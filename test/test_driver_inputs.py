@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The adapter over DDS with inputs as real robots give them.
 
 * ``robot_description`` (std_msgs/String, transient local) published by a node that started

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """edge_sensor: a real rclpy node over DDS under sim time driven by the test's /clock.
 
 The test publishes joint states for known nozzle poses and checks the published reading

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Core of the task feedback (ROS-free): filters, the feature table and the feedback parser."""
 import math
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Fuzzing of every file a user gives the package (ROS-free), with hypothesis.
 
 Limits files (own YAML and URDF), params files (`adaptive_streamer.bringup.read_params`),

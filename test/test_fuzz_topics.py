@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Fuzzing of every input the network can give the live nodes, over real DDS (hypothesis).
 
 One live cell (`fuzz_harness.TopicFuzz`: reference_server, sim_driver, sensor_bridge and the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The clock going backwards under ``use_sim_time``, over real DDS.
 
 Its own small cell (`fuzz_harness.ClockFuzz`: reference_server, sim_driver and the adapter

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """JointStateMerger: joint_states split over several messages, as drivers send it.
 
 Messages are real ``sensor_msgs/JointState`` objects and their CDR bytes from rclpy's

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Launch the demo with launch_testing (ROS 2 distro only; skipped where it does not import).
 
 The package's own bring-up path is tested in test_bringup.py; this checks that the launch

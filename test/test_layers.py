@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The layer rule, read from the code's own imports (an AST walk, no extra tool).
 
 Each layer of ``adaptive_streamer`` may import only the layers named beside it in README's

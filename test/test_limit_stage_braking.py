@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Braking with the limit stage against ruckig's time-optimal stop.
 
 Reference: the ruckig library (PyPI), velocity control interface with target v = 0, a = 0

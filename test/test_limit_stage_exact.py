@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Exactness of the limit stage against the external LP reference (test/oracle_lp.py).
 
 Reference: scipy.optimize.linprog (HiGHS) with cutting planes, validated on its own in

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Safety of the limit stage under adversarial decision sequences.
 
 Every committed segment is checked with the reference's analytic segment checker

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """JointLimits: validation messages, the own YAML, URDF with a limits YAML beside it, subsets."""
 import math
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Lock-on, the pass's start condition (core, no ROS): it locks only after `hold` seconds of
 fresh readings within the tolerance, restarts on a bad reading or a gap, and fails after
 the timeout with the reason."""

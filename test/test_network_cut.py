@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A network cut between the adapter and the driver, in two network namespaces.
 
 The test makes two hosts (`fuzz_harness.NetHosts`: ``ip netns add``, one veth pair, a /30,

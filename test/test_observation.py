@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Observation layout: every block's values against hand-computed examples, buffer reuse,
 feedback lookup by name, and errors."""
 import math

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Validation of the external reference (test/oracle_lp.py) on its own, before it judges the stage.
 
 Checks against things outside the reference: numerical ODE integration (scipy solve_ivp) and

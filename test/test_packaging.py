@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The package installs like a ROS 2 ament_python package, and its launch files name only
 what it installs."""
 import ast

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Params files checked as a whole against the nodes' parameter tables (`io.param_specs`),
 before anything starts (``bringup``, ``preflight``, the demo's own files), and the adapter
 node refusing a params-file entry it does not declare (as ``ros2 run ... --params-file``

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The plan-ahead output (ROS-free): knots, the braking continuation, and the rule that what
 was last sent is the committed plan.
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The plan-ahead output over DDS, checked from outside: a demo run with ``--output plan`` is
 recorded, the plan messages are read back from the bag with their receive times by an
 independent reader (rosbags), and followed with the message semantics implemented in the

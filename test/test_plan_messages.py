@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Plan messages written straight into CDR bytes (`io.plan_messages.PlanEncoder`) are the
 message rclpy would serialise: checked against ``rclpy.serialization`` (the reference
 implementation of ROS 2 message serialisation) both ways, for several knot counts and a

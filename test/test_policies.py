@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The four policy kinds on real onnxruntime sessions over real .onnx files (built here with
 onnx.helper from numpy weights), checked against onnx.reference and closed-form results."""
 import math

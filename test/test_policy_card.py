@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Policy cards: parsing the committed cards, every validation error (naming file and
 field), default gains, and refusal of cards that do not fit the running configuration."""
 import math

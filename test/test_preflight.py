@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`adaptive-streamer preflight` over DDS: it passes on a running cell (the simulated driver,
 a real rclpy node in this process) and each problem injected on its own fails its own row.
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """README's reference tables list every command-line option (each subcommand's argparse
 options, as `--help` shows them) and every node parameter (the nodes' parameter tables,
 which the nodes declare from), so they cannot drift apart. The adapter node is built once

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The recorder node (a real child process over DDS) against independent bag readers.
 
 Publishers in this process (real rclpy nodes) feed the recorder started with

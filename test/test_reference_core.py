@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Core reference: spline, time parameterisation, feasibility, resampling, override, playback.
 
 External checks (sources named beside each):

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reference files: CSV, own YAML, rosbag2 (written here with rosbags and with
 rclpy.serialization), and every refusal with its message."""
 from __future__ import annotations

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """reference_server over real rclpy/DDS: window contents and timing against the core,
 smoothness of pause/resume/override on received windows, services, runtime parameters,
 the transient-local path, diagnostics, and refusal of bad files and parameters."""

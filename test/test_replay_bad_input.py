@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Bad input to replay: each case gives a clear error naming what is missing or wrong.
 
 Bags are made from a fresh live recording (real nodes) with topics dropped or rewritten,

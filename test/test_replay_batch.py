@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Batch replay: bags x policies -> one ranked table (CSV and Markdown), on worker processes.
 
 Inputs are a fresh live recording (real nodes) and a copy of it; the task metric of the

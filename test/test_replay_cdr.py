@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Replay's message reading against the reference (de)serialisers.
 
 The fast layout readers (`io.fast_cdr`, `io.messages`) must give exactly what the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Live replay: a recorded bag's inputs republished on DDS with /clock, for sim-time nodes.
 
 A real rclpy node with ``use_sim_time`` subscribes (raw) to what the player publishes; the

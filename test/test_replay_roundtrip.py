@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Record -> replay round trip on a fresh live recording (real nodes, DDS, real bag).
 
 The reference is the live adapter itself: replaying its bag with the same policy must

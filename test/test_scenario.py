@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo cell core: arm kinematics, panel geometry, line sensor, nominal pass, files."""
 import csv
 import math

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Constant-jerk segment math, checked against closed forms and dense sampling.
 
 Closed forms: Biagiotti & Melchiorri, Trajectory Planning for Automatic Machines and

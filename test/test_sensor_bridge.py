@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """sensor_bridge: real rclpy nodes over DDS, one single-threaded executor in the test process.
 
 A test node publishes real sensor messages; an independent subscriber on the same executor

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The streaming session (ROS-free), driven the way the adapter drives it: a stream of
 nominal ticks at 250 Hz sampling the committed plan, a decision at each new segment.
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """sim_driver: a real rclpy node over DDS under sim time driven by the test's /clock.
 
 The test node publishes commands and ``/clock`` one tick at a time, waiting for the driver

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The simulated driver plant: exact lag discretisation, delay, noise, timeout hold."""
 import math
 

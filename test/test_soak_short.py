@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The soak bench for 60 seconds (`make soak` runs it for 10 minutes).
 
 Runs ``bench/soak.py`` as its own process (the demo stack: cell and adapter processes, the

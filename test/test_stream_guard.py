@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The committed plan, the stream clock and the setpoint guard (ROS-free).
 
 * `CommandPlan.sample` against the constant-jerk closed forms written out here

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Checks of a received setpoint stream (core/stream_metrics.py)."""
 import numpy as np
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Stalls of and errors in the adapter's stream thread mid-motion, over real rclpy/DDS,
 checked from outside.
 

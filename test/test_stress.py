@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Thirty seconds of everything at once against the moving adapter, over real rclpy/DDS.
 
 In a seeded random order, about every 80 ms: policy swaps (valid ones and a card that does

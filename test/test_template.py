@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The real-driver templates (config/streamer.params.yaml, forward position commands, and
 config/streamer_plan.params.yaml, the plan output) are working files: filled in the way
 README's "Running against a real driver" says, with the demo's files, its sensor as the

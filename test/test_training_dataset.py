@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """`adaptive-streamer dataset`: training tables from a recorded live run.
 
 The bag is a real recording of the real stack over DDS (`replay_harness`). External checks:

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The training environment: its step is the deployed decision cycle on the demo cell.
 
 External checks: Gymnasium's own environment checker (`gymnasium.utils.env_checker`), a

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Export: numpy MLP weights + the environment's configuration -> ONNX model and card.
 
 External checks: `adaptive-streamer check-policy` (the command users run) passes the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The batched training cell: N cells in one step, the same decision math as one cell.
 
 External checks: a real onnxruntime session runs the demo's ONNX model as the agent; the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Files from untrusted places: a bag's run info cannot write outside the replay folder, a
 file set as a parameter is stored in a bag only when the adapter would load it, and card and
 limits files are size-capped and their errors never quote their contents."""

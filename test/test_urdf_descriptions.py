@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Limits from robot descriptions shaped like real ones (invented robots in test/data/urdf).
 
 Joint semantics checked here (URDF specification, wiki.ros.org/urdf/XML/joint, from

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Watchdog core: parameter checks, each trigger's condition and reason, latching and the
 reset rules (ROS-free).
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The outside watchdog: `StreamMonitor` (core) and the ``watchdog`` node over real DDS.
 
 Core: a plan at its jerk limit sampled at 250 Hz from epoch-sized times passes; limit and

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Every watchdog trigger of the live adapter over real rclpy/DDS.
 
 For each trigger the fault is injected through the probe (relayed inputs blocked, offset or

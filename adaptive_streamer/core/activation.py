@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Whether the adapter may start streaming now, and the first stream tick.
 
 The adapter's activate transition is refused, with the reason, unless ``joint_states`` is

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The adapter's streaming session, built from its parameter values (no ROS).
 
 `build_session` IS the adapter node's configure step (``nodes/adapter.py`` calls it with

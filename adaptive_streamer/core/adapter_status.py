@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What the adapter reports about its session on ``/diagnostics``: timing percentiles,
 counts, the trip, and the overall level with its message."""
 from __future__ import annotations

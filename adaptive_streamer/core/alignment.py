@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reference alignment: the reference window evaluated at the adapter's own decision times.
 
 A window (`adaptive_streamer.core.playback.Window`) holds H points at absolute times

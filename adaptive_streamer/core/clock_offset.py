@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The offset of a driver's clock from this computer's, estimated from its joint_states.
 
 A driver stamps ``joint_states`` on its own clock. When that clock is not synchronised with

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """One decision cycle — the same code for the live adapter and the offline replay.
 
 A cycle takes the planned state at the next decision instant (the end of the segment being

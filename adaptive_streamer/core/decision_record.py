@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Encoding of one `Decision` as a flat float64 vector (the ``~/decisions`` topic).
 
 The adapter publishes each decision as ``std_msgs/Float64MultiArray`` whose ``data`` is

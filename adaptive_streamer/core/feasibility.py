@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Feasibility of a reference against joint limits, and the optional slow-down.
 
 `check_feasibility` reports, per joint, the largest velocity, acceleration and jerk the

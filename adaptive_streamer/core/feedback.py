@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Task feedback: the feature table behind ``sensor_bridge`` and the parser the adapter uses.
 
 The ``feedback`` topic

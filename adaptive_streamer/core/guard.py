@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The last guard on every outgoing setpoint.
 
 Whatever produced it, a setpoint leaves only if it is finite, inside the position, velocity

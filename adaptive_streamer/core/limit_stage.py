@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The limit stage: the exact interval of admissible next accelerations, per joint.
 
 Discrete model (see `adaptive_streamer.core.segment`): from the state (p, v, a) at a

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Per-joint kinematic limits (REP 103 units: rad, rad/s, rad/s^2, rad/s^3).
 
 `JointLimits` holds, per joint, a position range (infinite for a continuous joint), and

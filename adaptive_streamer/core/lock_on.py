@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Lock-on: the start condition of a process pass (ROS-free).
 
 Before a pass starts, the task feedback must show that the correction has settled: every

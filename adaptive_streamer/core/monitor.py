@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Watching a setpoint stream from outside the adapter (the ``watchdog`` node's core).
 
 `StreamMonitor` receives what went out and what the driver measured, and applies the same

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The observation vector a learned policy reads, built from the policy inputs.
 
 An observation is a list of blocks concatenated, in order, into one float32 vector

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A smoothly ramped time-scaling factor s(t) (the speed override).
 
 Every change of the target starts a ramp of fixed duration D shaped by the quintic

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The plan-ahead output: the committed motion as knots for a trajectory-following driver.
 
 After every committed decision (the segment ``[t_k, t_k + T]``) the adapter sends its whole

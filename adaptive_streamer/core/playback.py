@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Playback of a reference on the real timeline: progress, speed override, pause/resume and
 the upcoming window of H points spaced by the decision period.
 

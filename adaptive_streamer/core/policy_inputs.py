@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What a policy sees at one decision instant (shared by the policies and the observation
 builder, so neither imports the other)."""
 from __future__ import annotations

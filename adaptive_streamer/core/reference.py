@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reference trajectories: named joints, strictly increasing times, positions, and the
 velocities, accelerations and jerks of one interpolant through them.
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reading references from files: CSV and the project's own YAML (rosbag2 topics are read
 by `adaptive_streamer.io.reference_bags`, which uses the same checks).
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Constant-jerk segments: the motion between two decision instants.
 
 Per joint the state at a decision instant is (p, v, a); the decision is the acceleration

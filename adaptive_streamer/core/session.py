@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A streaming session: the decision cycle, the committed plan, the guard and the watchdog.
 
 The adapter node (and the offline replay) drive one `StreamingSession`:

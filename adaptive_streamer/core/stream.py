@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The committed command plan and the stream clock.
 
 `CommandPlan` keeps the committed constant-jerk segments (start time, start state, decision)

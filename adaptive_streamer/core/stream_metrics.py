@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Checks and figures for a received setpoint stream (samples at their nominal stamps).
 
 Independent of how the stream was produced: given the samples (time, position, velocity,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reading the package's text inputs (policy cards, limits, references, params files) safely.
 
 * Size cap: a file over `MAX_BYTES` is refused before it is read, so a huge file named by a

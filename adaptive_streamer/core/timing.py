@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Time parameterisation of untimed joint waypoints.
 
 Method (named): a quintic interpolating spline through the waypoints over a normalised

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The watchdog: triggers, the latched stop and the reset rules.
 
 Each trigger has its own threshold parameter and reason text. The first trigger latches a

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's effective configuration: params file, policy card, limits, seed, output, notes.
 
 ``--output`` picks the pair the adapter and the simulated driver use (`OUTPUT_PAIRS`):

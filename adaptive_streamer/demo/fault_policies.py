@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's fault policies as ONNX models, for any run's joints, limits and period.
 
 Two wrappers turn a policy model into a fault (both keep its input and output names):

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Fault injection in the demo: each requested fault is checked against the run before the
 pass and refused, with the reason, when it could not lead to its stop; the fault policy
 cards are the shipped ones when they fit the run, else built for the run; after the run,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The motion the simulated driver actually followed, checked against the limits (ROS-free).
 
 The driver publishes, every tick, the noise-free target its plant follows

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's observer and operator: an rclpy node that records what the stack does and
 drives it (lifecycle, start, fault injection). It only converts and stores; the figures
 are computed in `adaptive_streamer.demo.summary`.

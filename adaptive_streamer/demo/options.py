@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Command-line options of ``adaptive-streamer demo`` and the fault-injection spec."""
 from __future__ import annotations
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What a demo run ended in (ROS-free): its watchdog events, each with its reason, and the
 run's verdict, which sets the demo's exit code.
 

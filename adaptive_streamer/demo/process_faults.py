@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's faults of the adapter's own process: ``adapter_stall`` suspends it with SIGSTOP
 and resumes it with SIGCONT after the stall's length, ``adapter_crash`` kills it with
 SIGKILL (Linux).

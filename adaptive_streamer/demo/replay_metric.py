@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo cell's task metric for replay and batch replay: the true lateral error of the
 replayed nozzle path (a replay hook, named ``adaptive_streamer.demo.replay_metric:lateral_error_hook``)."""
 from __future__ import annotations

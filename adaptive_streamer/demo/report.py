@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo's report folder: PNG plots and a short Markdown/HTML summary linking them."""
 from __future__ import annotations
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``adaptive-streamer demo``: one dispensing pass of the simulated cell over real DDS.
 
 Processes: the cell (reference_server, edge_sensor, sensor_bridge) in one, the simulated

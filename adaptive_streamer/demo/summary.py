@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Figures of a demo run, from what the monitor recorded (ROS-free)."""
 from __future__ import annotations
 

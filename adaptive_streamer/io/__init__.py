@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Between ROS and the core: messages <-> core types, bags, params files (core + message and
 bag libraries).
 

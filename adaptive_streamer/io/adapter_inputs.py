@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The adapter's latest reference window and feedback messages, converted to core types
 when a decision needs them (each message is converted once)."""
 from __future__ import annotations

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """rosbag2 files with MCAP storage: a chunked writer and a reader that survives a crash.
 
 Writing (`BagWriter`) uses the ``rosbags`` library's rosbag2 writer (format version 9, MCAP

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Fast exact reading of the few message types replay reads every decision cycle.
 
 A message of a stream from one publisher keeps its byte layout from message to message

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Numeric fields of ROS messages named by path: validated against the type, read fast.
 
 Path grammar (whitespace not allowed)::

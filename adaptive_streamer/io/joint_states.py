@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``joint_states`` as drivers send it: several messages, each with some of the joints.
 
 A driver may publish the arm at one rate and a wrist or a gripper in messages of their own,

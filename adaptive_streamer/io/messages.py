@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Bag bytes -> the values the adapter node takes from its messages.
 
 * `WindowReader`: ``reference/window`` (JointTrajectory) -> core `Window`, the same arrays

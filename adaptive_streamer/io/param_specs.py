@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The parameters of every node of the package: one table per node (name, type, default,
 range, description).
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Standard ROS 2 params files (``node: ros__parameters: ...``) read into flat parameter
 dicts (nested keys joined with dots, ``$(share)`` replaced by the package's share folder)."""
 from __future__ import annotations

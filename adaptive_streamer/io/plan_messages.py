@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Plan messages (the plan-ahead output) as serialised ``trajectory_msgs/JointTrajectory``.
 
 The adapter sends one plan per decision; building the rclpy message point by point costs

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Policy kinds the command line takes instead of a card (``demo``, ``replay`` and
 ``check-policy``): the same names everywhere.
 

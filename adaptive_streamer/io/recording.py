@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What the recorder records and how it stores it: the default topic list and the QoS of a
 topic in the ``rosbags`` form kept in the bag's metadata."""
 from __future__ import annotations

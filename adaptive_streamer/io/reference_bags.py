@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reading references from rosbag2 topics (with the ``rosbags`` library), and
 `load_reference`, which reads any reference file by its kind.
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What ran: the adapter's effective parameters and the files they name, stored in a bag.
 
 The recorder fetches every parameter of the adapter node (parameter services) and reads

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """ROS time stamps (builtin_interfaces/Time) <-> float seconds."""
 from __future__ import annotations
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """trajectory_msgs/JointTrajectory <-> core arrays.
 
 - `fill_trajectory` writes stamp, names and points into a (reused) message in place; the

@@ -1,1 +1,2 @@
+# SPDX-License-Identifier: Apache-2.0
 """Thin rclpy shells around the core: they convert messages, own parameters and timers."""

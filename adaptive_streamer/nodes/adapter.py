@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Node ``adapter`` (lifecycle): runs the policy every decision period and streams setpoints.
 
 A thin shell around `adaptive_streamer.core.session.StreamingSession`: it converts messages,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Helpers shared by the rclpy shells: parameters, diagnostics, QoS and a clean main.
 
 Nothing here does motion math; it only moves values between ROS and the core.

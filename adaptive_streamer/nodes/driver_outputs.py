@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Driver outputs of the adapter: the command stream in the form a robot driver takes.
 
 Configured as a list of names (parameter ``outputs``), each with its own parameters::

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``edge_sensor`` node: the demo cell's simulated line sensor at the nozzle.
 
 Subscribes ``joint_states`` (the measured state from the driver), computes the nozzle pose

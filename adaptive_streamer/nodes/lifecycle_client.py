@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Driving a lifecycle node (the adapter) from Python, without the ``ros2`` CLI.
 
 Example (any rclpy node can host the clients)::

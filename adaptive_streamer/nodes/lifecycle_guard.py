@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A lifecycle node's ``change_state`` service that refuses, with the reason, a transition
 that is not valid in the current state, instead of ending the process.
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Loading a policy card for a swap requested through a parameter, judged before the
 parameter answer goes out (its refusal is the answer's reason).
 

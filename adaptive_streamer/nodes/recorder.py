@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Node ``recorder``: records the stack's topics to a rosbag2 bag (MCAP) for replay.
 
 Subscriptions are raw (serialised bytes, never converted) with a QoS matched to what the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Whether the recorder records every configured topic that has a publisher, judged from
 another node: the demo and `bringup` start motion (activate the adapter) only once it does,
 so a recording never begins with decisions whose inputs it lacks.

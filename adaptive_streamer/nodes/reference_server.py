@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``reference_server`` node: plays a reference trajectory as a rolling window.
 
 Loads a reference (CSV, own YAML points or waypoints, or a rosbag2 topic; see

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``sensor_bridge`` node: sensor topics -> one stamped, named ``feedback`` vector.
 
 Each configured input subscribes to one topic, reads numeric fields by path (see

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``sim_driver`` node: a simulated robot driver for the demo cell and the tests.
 
 Takes the adapter's driver output on one command topic (chosen by ``command_interface``),

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The stream thread: wakes at each nominal tick time and runs the node's tick callback.
 
 Measured on the 2-core target (see README, "Executor layout"): rclpy's multi-threaded

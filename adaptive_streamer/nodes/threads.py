@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Scheduling of the adapter's process and threads (SCHED_FIFO priorities) and its executor."""
 from __future__ import annotations
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Node ``watchdog``: watches the adapter's output from outside.
 
 Subscribes ``setpoints`` (the adapter's one-point JointTrajectory stream) and

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``adaptive-streamer preflight``: check a real cell before a pass, without moving anything.
 
 `run.preflight` loads the params, limits, policy card and reference as the nodes would,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The pre-flight's judgements, each one row of the table (no ROS: figures in, row out).
 
 Every function takes what was loaded or observed and returns a `Check` with the figure it

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Command-line arguments of ``adaptive-streamer preflight`` (imports no ROS)."""
 from __future__ import annotations
 

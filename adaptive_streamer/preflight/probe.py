@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The pre-flight's own rclpy node (``preflight``): it listens and counts, never publishes.
 
 It runs in a context of its own (so it can share a process with other nodes), subscribes

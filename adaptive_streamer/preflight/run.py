@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``adaptive-streamer preflight --params cell.yaml [--timeout S]``: check a cell before a pass.
 
 Nothing moves and nothing is published: the command loads what the adapter and the

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Offline and live replay of recorded bags, batch comparison and reports (core + io).
 
 ==================  ===============================================================

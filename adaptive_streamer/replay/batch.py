@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Batch replay: several bags x several policies -> one ranked table (CSV and Markdown).
 
 Every (bag, policy) pair is one task on a Dask distributed cluster (`dask.distributed`):

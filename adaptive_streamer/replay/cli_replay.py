@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """``adaptive-streamer replay``: offline replay, batch tables and live republishing.
 
     adaptive-streamer replay BAG [--params FILE] [--policy CARD|KIND] [--out DIR]

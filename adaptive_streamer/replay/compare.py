@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Replayed versus recorded: decisions, setpoints, limit usage, trips and compute time.
 
 * Decisions are matched by decision instant. Every field of the record (``core.

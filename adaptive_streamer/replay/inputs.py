@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Rebuild the adapter's `SessionInputs` of each decision cycle from a bag.
 
 The live node (``nodes/adapter.py``) keeps the latest ``reference/window`` and ``feedback``

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Live replay: a bag's input topics republished on DDS in (scaled) real time, with /clock.
 
 For testing the live nodes under ``use_sim_time``: the bag's messages go out at their

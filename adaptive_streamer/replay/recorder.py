@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Recording the stack from Python: the ``recorder`` node in a child process.
 
     from adaptive_streamer.replay.recorder import Recorder

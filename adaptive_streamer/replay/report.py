@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What a replay writes to its output folder.
 
     OUT/bag/            rosbag2 (MCAP): the replayed ``setpoints`` (one point per stream tick,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Offline replay: the adapter's decision cycles re-run on a bag, as fast as possible.
 
 `replay` opens a bag, finds what ran (the run info the recorder stored, or ``--params``),

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The simulated cell (ROS-free, invented data; imports the core only): an invented 6-axis
 arm, a misplaced panel, a line sensor at the nozzle, the nominal pass along the nominal
 edge, the task metric, the driver's plant and the offline closed loop.

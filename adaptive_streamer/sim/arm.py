@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """An invented 6-axis arm for the demo cell: kinematics with numpy, vectorised over poses.
 
 The arm (``DEMO_ARM``, joints ``j1``..``j6``) is described by a standard Denavit-Hartenberg

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A deterministic offline closed-loop run of the demo cell with the live stack's core pieces.
 
 What runs, and how it mirrors the live nodes (all times on one simulated clock, integer

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Loading the demo cell description (``config/demo/scenario.yaml``).
 
 Format (base frame of the arm, metres/seconds; keys ending in ``_mm``/``_deg`` are in

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A line sensor at the nozzle: lateral edge offset and edge angle, noisy, late, ranged.
 
 The sensor head is fixed to the nozzle. Its *travel axis* is the nozzle frame's x axis

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Task metric of the demo: the true lateral placement error of the nozzle."""
 from __future__ import annotations
 

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The nominal pass: a straight nozzle path along the nominal edge, timed rest to rest.
 
 The nozzle moves from ``start`` to ``end`` (table-plane points, base frame) at a constant

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The demo panel: a flat plate on a table whose processed edge is a straight segment.
 
 Everything is in the arm base frame, in the table plane (x, y; the table normal is +z).

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The simulated driver's plan interpolation (ROS-free): the target a trajectory-following
 driver derives from plan messages.
 

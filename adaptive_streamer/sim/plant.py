@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A simulated joint-space driver plant, stepped at the driver rate (ROS-free).
 
 Per joint, one tick of period ``dt`` does, in order:

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Training where the policy is deployed: environments on the core decision cycle.
 
 Importing this package registers the demo cell as ``adaptive_streamer/DemoCell-v0``::

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The environment's policy: the agent's action, handed to the deployed decision cycle.
 
 `ActionPolicy` carries a policy card (observation layout, action meaning, joints, period,

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The plug-in point of the training environment: what it steps, one decision at a time.
 
 A *cell* is a plant, its sensors and the reference around one core `StreamingSession`

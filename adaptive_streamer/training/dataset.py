@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Training tables from recorded bags: one row per recorded ``following`` decision.
 
 For each decision record on ``adapter/decisions`` (`core.decision_record`) made while the

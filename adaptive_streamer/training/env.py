@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A Gymnasium environment whose step is one decision of the deployed decision cycle.
 
 Each `DecisionEnv.step` hands the agent's action to the core `StreamingSession` (the code

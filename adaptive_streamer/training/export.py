@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """From a trained model to a deployable policy: an ONNX file and its policy card.
 
 `export_mlp` writes a multilayer perceptron given as numpy weights (``layers``: a list of

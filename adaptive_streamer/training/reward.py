@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The training reward: a task term times a deviation penalty times a smoothness penalty.
 
 Multiplicative shaping (each factor in (0, 1], the product high only when all are high,

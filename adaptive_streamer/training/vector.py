@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """N demo cells stepped as one batch: the decision math over N x joints in one call.
 
 `VectorDemoCell` is a `gymnasium.vector.VectorEnv` of ``num_envs`` copies of the demo

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Policies: one small protocol (`Policy`), one module per kind, and loading from cards.
 
 =================  ==========================  =============  ==============================

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What every policy shares: its protocol and a neutral test input (its inputs, running
 configuration and error type live in `core.policy_inputs` and `policies.running`).
 

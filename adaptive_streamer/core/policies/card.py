@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Policy cards: one YAML file that fully describes a policy.
 
 Format (version 1)

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Hold: bring the joints to rest and keep them there.
 
 The action meaning is ``brake``: the cycle ignores the (zero) action and commands the limit

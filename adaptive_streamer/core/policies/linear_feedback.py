@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """The tracker plus a linear feedback term: ``u = tracker(inputs) + G f``.
 
 ``G`` (n joints x f features) is the card's ``feedback_gain.matrix`` [rad/s^2 per unit

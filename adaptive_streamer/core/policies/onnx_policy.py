@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """A learned policy in an ONNX file, run with onnxruntime on the CPU.
 
 The session uses only the ``CPUExecutionProvider``, ``intra_op_num_threads`` from the card

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """What the adapter runs with (`RunningConfig`), the action meanings, and the policies'
 error type; a policy card is checked against the running configuration."""
 from __future__ import annotations

@@ -1,3 +1,4 @@
+# SPDX-License-Identifier: Apache-2.0
 """Reference tracking: PD on the position and velocity error one period ahead, plus
 reference-acceleration feed-forward.
 
