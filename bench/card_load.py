@@ -1,12 +1,13 @@
 # SPDX-License-Identifier: Apache-2.0
-"""Policy-card load time: what a policy swap costs before its parameter answer goes out.
+"""Policy-card load time: what a policy swap costs before and after its parameter answer.
 
-Loads the demo's cards (`load_policy`: parse, checks against the running configuration,
-model session, test inference) as the adapter does for a swap, with the YAML loader the
-package uses (libyaml's for short texts, `adaptive_streamer.core.text_files`) and, in the
-same run, with the pure-Python loader for comparison, and prints the median and the worst
-of ``ROUNDS`` loads of each and their ratio. While the arm moves, a swap must load within
-half a decision period (25 ms at 50 ms), or it is refused. Also how long libyaml's part
+For the demo's cards, as the adapter does for a swap: the card check before the answer
+(read, parse, checks against the running configuration: `load_card` + `check_card`, in
+the executor thread that also decides) and the whole load (also the model session and
+the test inference: `load_policy`, built in a thread of its own after the answer). The
+check with the YAML loader the package uses (libyaml's for short texts,
+`adaptive_streamer.core.text_files`) and, in the same run, with the pure-Python loader for
+comparison: median and worst of ``ROUNDS`` each, and their ratio. Also how long libyaml's part
 of parsing a text of the largest size the C loader takes holds the interpreter in one
 piece (the stream thread may wait that long). Run: ``.venv/bin/python bench/card_load.py``.
 """
@@ -21,22 +22,27 @@ import yaml
 
 from adaptive_streamer.core import text_files
 from adaptive_streamer.core.adapter_setup import DEFAULTS, build_session
-from adaptive_streamer.core.policies import load_policy
+from adaptive_streamer.core.policies import check_card, load_card, load_policy
 from adaptive_streamer.share import demo_file
 
 ROUNDS = 30
 CARDS = ("policy_edge.yaml", "policy_feedback.yaml")
 
 
-def load_times(card: str, running: object) -> list[float]:
-    """Seconds per load of ``card``, ``ROUNDS`` loads after one warm-up."""
-    load_policy(demo_file(card), running)
+def times(step, card: str, running: object) -> list[float]:
+    """Seconds per ``step(card, running)``, ``ROUNDS`` runs after one warm-up."""
+    step(demo_file(card), running)
     out = []
     for _ in range(ROUNDS):
         t0 = time.perf_counter()
-        load_policy(demo_file(card), running)
+        step(demo_file(card), running)
         out.append(time.perf_counter() - t0)
     return out
+
+
+def check(path, running) -> None:
+    """What the adapter does before the answer."""
+    check_card(load_card(path), running)
 
 
 def main() -> None:
@@ -47,12 +53,15 @@ def main() -> None:
     print(f"policy card loads ({ROUNDS} each, median / worst), load average "
           f"{os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
     for card in CARDS:
-        fast = load_times(card, running)
+        fast = times(check, card, running)
         with mock.patch.object(text_files, "_C_LOADER", None):   # the Python loader only
-            slow = load_times(card, running)
-        print(f"  {card}: {statistics.median(fast) * 1e3:5.2f} / {max(fast) * 1e3:5.2f} ms "
-              f"(Python YAML loader: {statistics.median(slow) * 1e3:5.2f} / "
-              f"{max(slow) * 1e3:5.2f} ms; {statistics.median(slow) / statistics.median(fast):.1f}x)")
+            slow = times(check, card, running)
+        whole = times(load_policy, card, running)
+        print(f"  {card}: check before the answer {statistics.median(fast) * 1e3:5.2f} / "
+              f"{max(fast) * 1e3:5.2f} ms (Python YAML loader: "
+              f"{statistics.median(slow) * 1e3:5.2f} / {max(slow) * 1e3:5.2f} ms; "
+              f"{statistics.median(slow) / statistics.median(fast):.1f}x); whole load "
+              f"{statistics.median(whole) * 1e3:5.2f} / {max(whole) * 1e3:5.2f} ms")
     text = "items:\n" + "".join(f"  - [{i}.5, {i}.25]\n"
                                 for i in range(text_files.C_LOADER_MAX // 20))
     text = text[:text_files.C_LOADER_MAX - 1].rsplit("\n", 1)[0] + "\n"

@@ -41,7 +41,15 @@ def cards(tmp_path_factory):
         "hold": h.write_card(folder, "hold", "hold"),
         # a card that cannot run here: made for a 0.02 s decision period
         "wrong_period": h.write_card(folder, "wrong_period", "tracker", decision_period=0.02),
+        "broken_model": broken_model(folder),
     }
+
+
+def broken_model(folder) -> object:
+    """The ONNX tracking card with its model file overwritten by bytes that are no model."""
+    card = h.write_tracking_onnx(folder, "broken_model")
+    (folder / "broken_model.onnx").write_bytes(b"not an onnx model" * 8)
+    return card
 
 
 @pytest.fixture(scope="module")
@@ -134,7 +142,7 @@ def test_tracker_onnx_linear_feedback_and_hold(cell, cards):
     cell.start_reference()
 
 
-def test_invalid_swap_is_refused_in_the_answer_and_the_old_policy_keeps_running(cell, cards):
+def test_invalid_swaps_are_refused_and_the_old_policy_keeps_running(cell, cards):
     _, c = cards
     assert cell.mode() == "following"
     before = int(cell.wait_diag(lambda v: "policy_swaps_failed" in v, "diagnostics")[3]
@@ -149,7 +157,18 @@ def test_invalid_swap_is_refused_in_the_answer_and_the_old_policy_keeps_running(
     assert "keeping" in res.reason and str(c["tracker"]) in res.reason, res.reason
     assert cell.get_param("policy") == str(c["tracker"])
     assert cell.get_param("policy_active") == str(c["tracker"])
-    d = cell.wait_diag(lambda v: int(v.get("policy_swaps_failed", 0)) >= before + 2,
+    # a card that fits but whose model does not load: the answer accepts the card, the
+    # build fails in its own thread, the parameter is set back, the tracker never stopped
+    n_logs = len(cell.probe.logs)
+    res = cell.set_params(policy=str(c["broken_model"]))[0]
+    assert res.successful, res.reason
+    h.wait_until(lambda: cell.get_param("policy") == str(c["tracker"]),
+                 "policy parameter set back", timeout=15.0, poll=0.05)
+    assert cell.get_param("policy_active") == str(c["tracker"])
+    logs = [m for name, m in cell.probe.logs[n_logs:] if name == "adapter"]
+    assert any("broken_model" in m and "refused after its card was accepted" in m
+               for m in logs), logs
+    d = cell.wait_diag(lambda v: int(v.get("policy_swaps_failed", 0)) >= before + 3,
                        "policy_swaps_failed on /diagnostics")
     assert d[3]["trip"] == "none"
     time.sleep(0.5)

@@ -26,6 +26,7 @@ still for the current instant, so a late decision (overrun) can be replaced by
 from __future__ import annotations
 
 import math
+import threading
 import time
 from dataclasses import dataclass, field, replace
 
@@ -153,6 +154,7 @@ class DecisionCycle:
         self.previous_action = np.zeros(len(stage.limits))
         self.stats = CycleStats()
         self._pending = _Pending()
+        self._pending_lock = threading.Lock()
         self._offsets = np.arange(config.horizon) * self.period
         self._continuous = stage.limits.continuous
         self._evaluated: tuple[LimitStage, MotionState, Admissible] | None = None
@@ -188,12 +190,14 @@ class DecisionCycle:
             self.approach.reset()
 
     def swap_policy(self, policy: Policy) -> None:
-        """Switch to ``policy`` at the next decision boundary."""
-        self._pending.policy = policy
+        """Switch to ``policy`` at the next decision boundary (any thread)."""
+        with self._pending_lock:
+            self._pending.policy = policy
 
     def set_stages(self, stage: LimitStage, approach_stage: LimitStage) -> None:
         """New limits (e.g. limit_scale): taken when the plan is viable under them."""
-        self._pending.stage, self._pending.approach_stage = stage, approach_stage
+        with self._pending_lock:
+            self._pending.stage, self._pending.approach_stage = stage, approach_stage
 
     @property
     def at_rest(self) -> bool:
@@ -357,6 +361,10 @@ class DecisionCycle:
                     and np.all(np.abs(end.acceleration) <= c.rest_acceleration))
 
     def _take_pending(self) -> None:
+        with self._pending_lock:   # a swap from another thread is never lost or doubled
+            self._take_pending_locked()
+
+    def _take_pending_locked(self) -> None:
         p = self._pending
         if p.policy is not None:
             self.policy, p.policy = p.policy, None

@@ -63,7 +63,6 @@ from .threads import make_executor, prepare_process, set_thread_priority
 
 LEVELS = {StatusLevel.OK: OK, StatusLevel.WARN: WARN, StatusLevel.ERROR: ERROR}
 JOINT_STATES_DEPTH = 100  # joint_states messages queued (0.2 s at 500 Hz)
-SWAP_BUDGET = 0.5         # while active, a card must load within this many decision periods
 
 
 class AdapterNode(LifecycleNode):
@@ -92,9 +91,7 @@ class AdapterNode(LifecycleNode):
         self._timings = CycleTimings()
         self._status = "unconfigured"
         self._loader = PolicyLoader(int(self.get_parameter("decision_priority").value))
-        self._policy_to_publish: str | None = None
         self.add_on_set_parameters_callback(self._on_set_parameters)
-        self.add_post_set_parameters_callback(self._after_set)
         self._diag = common.DiagnosticsReporter(self, "adapter", values=self._diag_values)
         self._robot_description: str | None = None
         self._js_merger: JointStateMerger | None = None
@@ -134,7 +131,7 @@ class AdapterNode(LifecycleNode):
         """Judge a parameter change as a whole before it is applied: each value against its
         table entry, and against the lifecycle state (`Param.change_problem`: configure-time
         parameters only change while unconfigured, `limit_scale` and the watchdog thresholds
-        only go down while configured); a policy swap loads and checks the card first. The
+        only go down while configured); a policy swap's card is read and checked first. The
         refusal names the parameter and is the answer's reason; nothing is applied unless
         everything is accepted."""
         if getattr(self._internal_set, "on", False):
@@ -152,12 +149,12 @@ class AdapterNode(LifecycleNode):
             if problem is not None:
                 return self._refuse(f"{p.name} {problem}")
             if p.name in ("policy", "shadow_policy"):
-                refusal, policy = self._judge_swap(p.name, p.value, state)
+                refusal, card = self._judge_swap(p.name, p.value, state)
                 if refusal:
                     self._counters["policy_swaps_failed"] += 1
                     return self._refuse(f"{p.name} '{p.value}' refused, keeping "
                                         f"'{self._param(p.name)}': {refusal}")
-                swaps.append((p.name, p.value, policy))
+                swaps.append((p.name, p.value, card))
         self._apply_changes(params, swaps)
         return SetParametersResult(successful=True)
 
@@ -166,26 +163,22 @@ class AdapterNode(LifecycleNode):
         return SetParametersResult(successful=False, reason=reason)
 
     def _judge_swap(self, which: str, path: str, state: str) -> tuple[str, Any]:
-        """(refusal, policy) for setting ``which`` to ``path``: unconfigured, the file must
-        exist (configure loads it); configured, the card is loaded and checked against the
-        running configuration, within the decision cycle's patience while active."""
+        """(refusal, checked card) for setting ``which`` to ``path``: unconfigured, the file
+        must exist (configure loads it); configured, the card is read and checked against
+        the running configuration (`policy_swap`; the model is built after the answer)."""
         if path and not os.path.isfile(path):
             return f"no such policy card file '{path}'", None
-        session = self.session
-        if session is None:
+        if self.session is None:
             return "", None
         if not path:
             return ("policy must name a card", None) if which == "policy" else ("", None)
-        budget = SWAP_BUDGET * session.period if state == "active" else None
-        verdict = self._loader.load(path, self._running, budget)
-        if verdict.accepted:
-            self.get_logger().info(f"{which} '{path}' loaded in {verdict.seconds * 1e3:.1f} ms")
-        return verdict.refusal, verdict.policy
+        verdict = self._loader.check(path, self._running)
+        return verdict.refusal, verdict.card
 
     def _apply_changes(self, params: list[Parameter],
                        swaps: list[tuple[str, str, Any]]) -> None:
-        """Apply accepted changes that act on a running session (called in the executor
-        thread, which also runs the decisions, so a swap lands between two decisions)."""
+        """Apply accepted changes that act on a running session; a swap's policy is built
+        in its own thread and takes over at the next decision (`policy_swap`)."""
         session = self.session
         if session is None:
             return
@@ -197,19 +190,34 @@ class AdapterNode(LifecycleNode):
             elif p.name.startswith("watchdog.") and p.value != self._param(p.name):
                 session.watchdog.tighten(p.name.removeprefix("watchdog."), p.value)
                 self.get_logger().info(f"{p.name} -> {p.value:g} (from the next check)")
-        for which, path, policy in swaps:
-            if which == "policy":
-                session.swap_policy(policy)
-                self._policy_to_publish = path
-            else:
-                session.shadow_policy, session.shadow = policy, None
-            self.get_logger().info(f"{which} -> '{path}' (switching at the next decision)")
+        for which, path, card in swaps:
+            if card is None:   # an empty shadow_policy: no shadow from the next decision
+                session.shadow_policy, session.shadow = None, None
+                continue
+            old = self._param(which)
+            self._loader.build(card, self._running,
+                               lambda policy, w=which, p=path: self._built(session, w, p, policy),
+                               lambda why, w=which, p=path, o=old: self._build_failed(w, p, o, why))
 
-    def _after_set(self, params: list[Parameter]) -> None:
-        """Once a swap's parameter is set: show the card that really runs."""
-        path, self._policy_to_publish = self._policy_to_publish, None
-        if path is not None:
+    def _built(self, session: StreamingSession, which: str, path: str, policy: Any) -> None:
+        """A swap's policy is built (its own thread): it takes over at the next decision."""
+        if session is not self.session:
+            return   # cleaned up meanwhile: the next configure loads the parameter's card
+        if which == "policy":
+            session.swap_policy(policy)
             self._set_internal("policy_active", path)
+        else:
+            session.shadow_policy, session.shadow = policy, None
+        self.get_logger().info(f"{which} -> '{path}' (switching at the next decision)")
+
+    def _build_failed(self, which: str, path: str, old: str, why: str) -> None:
+        """A checked card whose model failed to build (its own thread): reported, counted,
+        and the parameter set back; the old policy never stopped running."""
+        self._counters["policy_swaps_failed"] += 1
+        self.get_logger().error(f"{which} '{path}' refused after its card was accepted, "
+                                f"keeping '{old}': {why}")
+        if self._param(which) == path:
+            self._set_internal(which, old)
 
     # ------------------------------------------------------------------ lifecycle
     def _autostart(self) -> None:

@@ -1,69 +1,73 @@
 # SPDX-License-Identifier: Apache-2.0
-"""Loading a policy card for a swap requested through a parameter, judged before the
-parameter answer goes out (its refusal is the answer's reason).
+"""A policy swap requested through a parameter: the card judged before the parameter answer
+goes out, the model built after it without holding up the decisions.
 
-The load (parse, checks against the running configuration, building the ONNX session)
-runs in a thread of its own at the decision thread's priority, so that while it holds the
-interpreter it is not preempted by other processes (the stream thread would wait for it).
-The executor thread waits for it at most ``budget`` seconds: while the arm moves, the
-decision cycle runs in that same executor thread, so a card that takes longer to load than
-the cycle can wait is refused (with its load time) instead of making decisions late; the
-late load finishes in the background and is thrown away.
+Before the answer (in the executor thread, about a millisecond): the card file is read
+(size-capped), parsed and checked against the running configuration (joints, decision
+period, limits, observation layout, action meaning); a refusal is the answer's reason and
+the parameter keeps its value. After the answer, in a thread of its own at the decision
+thread's priority (so that while it holds the interpreter it is not preempted by other
+processes; the stream thread would wait for it): the policy is built (the ONNX session) and
+its test inference run; the built policy takes over at the next decision. A model that
+fails there (a file that does not load, a non-finite test output) is reported, counted,
+and the parameter is set back: only those failures come after the answer, because waiting
+for them in the executor thread would make decisions late while the arm moves.
 """
 from __future__ import annotations
 
 import threading
-import time
 from dataclasses import dataclass
+from typing import Callable
 
-from adaptive_streamer.core.policies import Policy, RunningConfig, load_policy
+from adaptive_streamer.core.policies import (Policy, PolicyCard, RunningConfig, build_policy,
+                                             check_card, load_card)
 
 from .threads import set_thread_priority
 
 
 @dataclass
-class SwapVerdict:
-    """The outcome of one load: the policy, or why it was refused."""
+class CardVerdict:
+    """A card read and checked for a swap, or why it was refused."""
 
-    policy: Policy | None = None
+    card: PolicyCard | None = None
     refusal: str = ""
-    seconds: float = 0.0
-
-    @property
-    def accepted(self) -> bool:
-        """True when the card loaded and fits the running configuration."""
-        return not self.refusal
 
 
 class PolicyLoader:
-    """Loads one card at a time (a second request while one is loading is refused)."""
+    """Checks cards and builds one policy at a time (a swap requested while the previous
+    one is still being built is refused)."""
 
     def __init__(self, priority: int) -> None:
         self._priority = priority
         self._busy = threading.Lock()
 
-    def load(self, path: str, running: RunningConfig, budget: float | None) -> SwapVerdict:
-        """Load ``path`` for ``running``; wait at most ``budget`` seconds (None: until done)."""
-        if not self._busy.acquire(blocking=False):
-            return SwapVerdict(refusal="another policy card is still loading; try again")
-        verdict = SwapVerdict()
-        done = threading.Event()
+    def check(self, path: str, running: RunningConfig) -> CardVerdict:
+        """Read ``path`` and check it against ``running`` (fast: no model is loaded)."""
+        if self._busy.locked():
+            return CardVerdict(refusal="the previous swap's policy is still being built; "
+                                       "try again")
+        try:
+            card = load_card(path)
+            check_card(card, running)
+        except Exception as exc:   # card errors of every kind: the refusal says which
+            return CardVerdict(refusal=str(exc) or type(exc).__name__)
+        return CardVerdict(card)
+
+    def build(self, card: PolicyCard, running: RunningConfig,
+              done: Callable[[Policy], None], failed: Callable[[str], None]) -> None:
+        """Build the policy of a checked ``card`` in a thread; then ``done(policy)`` or
+        ``failed(reason)`` (called from that thread)."""
+        self._busy.acquire()
 
         def work() -> None:
             set_thread_priority(self._priority)
-            start = time.perf_counter()
             try:
-                verdict.policy = load_policy(path, running)
-            except Exception as exc:   # card, model or check errors: the refusal says which
-                verdict.refusal = str(exc) or type(exc).__name__
-            finally:
-                verdict.seconds = time.perf_counter() - start
-                done.set()
+                policy = build_policy(card, running)
+            except Exception as exc:   # model errors: reported, never raised in a thread
                 self._busy.release()
+                failed(str(exc) or type(exc).__name__)
+                return
+            self._busy.release()
+            done(policy)
 
-        threading.Thread(target=work, name="policy-load", daemon=True).start()
-        if done.wait(budget):
-            return verdict
-        return SwapVerdict(refusal=(
-            f"loading it takes longer than the {budget * 1e3:.0f} ms the decision cycle can "
-            f"wait while the arm moves; deactivate first (while inactive there is no limit)"))
+        threading.Thread(target=work, name="policy-build", daemon=True).start()
