@@ -19,21 +19,27 @@ pytestmark = pytest.mark.ros   # builds nodes (DDS participants): a process of i
 README = Path(__file__).resolve().parents[1] / "README.md"
 
 
-def readme_tables(section: str) -> dict[str, list[str]]:
-    """First-column entries of each ``#### `title``` table under ``### section``."""
+def readme_rows(section: str) -> dict[str, dict[str, list[str]]]:
+    """Cells of each row of each ``#### `title``` table under ``### section``, by name."""
     text = README.read_text()
     body = text.split(f"\n### {section}\n", 1)[1]
     body = re.split(r"\n##?#? (?!#)", body, maxsplit=1)[0]
-    tables: dict[str, list[str]] = {}
+    rows: dict[str, dict[str, list[str]]] = {}
     title = None
     for line in body.splitlines():
         heading = re.match(r"#### `(.+)`$", line)
         if heading:
             title = heading.group(1)
-            tables[title] = []
+            rows[title] = {}
         elif title and line.startswith("| `"):
-            tables[title].append(line.split("|")[1].strip())
-    return tables
+            cells = [c.strip() for c in line.split("|")[1:-1]]
+            rows[title][cells[0].strip("`")] = cells
+    return rows
+
+
+def readme_tables(section: str) -> dict[str, list[str]]:
+    """First-column entries of each ``#### `title``` table under ``### section``."""
+    return {title: list(rows) for title, rows in readme_rows(section).items()}
 
 
 def subcommands() -> dict[str, argparse.ArgumentParser]:
@@ -55,6 +61,18 @@ def test_readme_lists_every_option_of_every_subcommand():
                                    "README has extra", sorted(listed - options))
         help_text = parser.format_help()
         assert all(flag in help_text for flag in options), name
+
+
+def test_readme_gives_each_parameter_its_valid_values():
+    # the "valid" column is the table's own words for the range ("any": the type's values)
+    rows = readme_rows("Node parameters")
+    for node, table in NODE_PARAMS.items():
+        specs = {p.name: p for p in table.params}
+        specs |= {f"<{g.list_param[:-1]}>.{m.name}": m for g in table.groups for m in g.members}
+        for name, cells in rows[node].items():
+            expected = specs[name].expected()
+            want = "any" if expected == specs[name].kind.value else expected
+            assert cells[3] == want, (node, name, cells[3], want)
 
 
 def test_readme_lists_every_node_parameter():

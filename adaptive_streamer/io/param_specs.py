@@ -305,15 +305,24 @@ _WATCHDOG_HELP = {
 }
 
 
+# upper bounds of the thresholds: beyond them a check means nothing (a deviation of more
+# than a turn, a timeout of more than 10 s, a driver lag of more than a second)
+_WATCHDOG_HIGH = {"deviation_joint": 2 * math.pi, "deviation_norm": 2 * math.pi,
+                  "following_error": 2 * math.pi, "command_latency": 1.0,
+                  "joint_states_timeout": 10.0, "feedback_timeout": 10.0,
+                  "reference_timeout": 10.0, "max_overruns": 1000, "overrun_window": 1000,
+                  "feedback_frozen": 60.0}
+
+
 def _watchdog(key: str) -> Param:
     default = DEFAULTS[f"watchdog.{key}"]
-    change = Change.LOWER_ONLY if key in TIGHTER_WHEN_LOWER else Change.AT_CONFIGURE
+    kw: dict[str, Any] = {"high": _WATCHDOG_HIGH[key], "change": (
+        Change.LOWER_ONLY if key in TIGHTER_WHEN_LOWER else Change.AT_CONFIGURE)}
     if key in ("max_overruns", "overrun_window"):
-        return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1, change=change)
+        return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1, **kw)
     if key in ("command_latency", "feedback_frozen"):
-        return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0, change=change)
-    return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], change=change,
-              **POSITIVE)
+        return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0, **kw)
+    return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], **POSITIVE, **kw)
 
 
 ADAPTER = NodeParams("adapter", (
@@ -343,7 +352,7 @@ ADAPTER = NodeParams("adapter", (
     _p("autostart", _B, False, "configure and activate on start"),
     _p("activation_velocity", _N, 0.02, "max |joint velocity| to accept activation [rad/s]",
        **POSITIVE),
-    _p("stop_timeout", _N, 5.0, "max wait for rest on deactivate [s]", **POSITIVE),
+    _p("stop_timeout", _N, 5.0, "max wait for rest on deactivate [s]", **POSITIVE, high=60.0),
     _p("reference_pause_service", _S, "reference_server/pause",
        "Trigger service called (asynchronously) when the watchdog stops the arm; empty: none"),
     _p("joint_states_qos", _S, "sensor_data", "QoS of the joint_states subscription",
