@@ -97,13 +97,15 @@ def _keep_logs(workdir: Path, report: Path) -> Path | None:
 
 def _plan(cfg: DemoConfig, args: argparse.Namespace, injections: list,
           params_file: Path, workdir: Path) -> list[PlannedFault]:
-    """The injections checked against the session the adapter will configure."""
-    if not injections:
-        return []
+    """The adapter's configure step run here first (a card or limits the adapter would
+    refuse fail the demo before any process starts), and the injections checked against
+    the session it makes."""
     try:
         setup = build_session(load_params_file(params_file))
     except SetupError as exc:
         raise DemoError(f"the adapter would not configure: {exc}") from None
+    if not injections:
+        return []
     run_end = cfg.reference_duration if args.duration is None \
         else min(float(args.duration), cfg.reference_duration)
     return plan_faults(injections, setup, cfg.policy_card, cfg.reference, run_end, workdir,
