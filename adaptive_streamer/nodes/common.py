@@ -5,6 +5,7 @@ Nothing here does motion math; it only moves values between ROS and the core.
 """
 from __future__ import annotations
 
+import faulthandler
 import math
 import signal
 import sys
@@ -58,6 +59,8 @@ class NodeParamError(ValueError):
 
 _UNSET = object()
 INT64_MIN, INT64_MAX = -(1 << 63), (1 << 63) - 1
+SHUTDOWN_REPORT = 8.0   # [s] of shutdown (the controlled stop included) before every
+#                         thread's stack is printed (bringup kills a child after 10 s)
 _ROS_TYPES = {ParamKind.BOOL: Parameter.Type.BOOL, ParamKind.INTEGER: Parameter.Type.INTEGER,
               ParamKind.NUMBER: Parameter.Type.DOUBLE, ParamKind.STRING: Parameter.Type.STRING,
               ParamKind.STRINGS: Parameter.Type.STRING_ARRAY,
@@ -244,6 +247,9 @@ def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = 
     except Exception as exc:  # a node failed to start or a callback raised: say why
         print(f"error: {type(exc).__name__}: {exc}", file=sys.stderr)
         code = 1
+    # a shutdown that hangs (seen once: a child not stopping within bringup's 10 s) leaves
+    # every thread's stack in the log first
+    faulthandler.dump_traceback_later(SHUTDOWN_REPORT, exit=False)
     try:
         if before_shutdown is not None and nodes and rclpy.ok():
             before_shutdown(nodes, ex)
@@ -259,4 +265,5 @@ def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = 
         ex.shutdown()
         if rclpy.ok():
             rclpy.shutdown()
+        faulthandler.cancel_dump_traceback_later()
     return code
