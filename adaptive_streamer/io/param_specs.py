@@ -29,6 +29,7 @@ import yaml
 
 from ..core.adapter_setup import DEFAULTS, WATCHDOG_PARAMS
 from ..core.playback import END_MODES, MAX_OVERRIDE, MIN_OVERRIDE
+from ..core.provenance import InputTopic
 from ..core.watchdog import TIGHTER_WHEN_LOWER
 from ..share import expand
 
@@ -301,6 +302,9 @@ _WATCHDOG_HELP = {
     "overrun_window": "... within this many decisions",
     "feedback_frozen": "stop when the feedback stays bit-identical this long while the arm "
                        "moves [s] (0: off)",
+    "reset_hold": "a reset needs joint_states, the reference and the feedback the policy "
+                  "reads fresh (the feedback changing) this long, and no stop-topic true "
+                  "within it [s] (0: off)",
 }
 
 
@@ -309,7 +313,7 @@ def _watchdog(key: str) -> Param:
     change = Change.LOWER_ONLY if key in TIGHTER_WHEN_LOWER else Change.AT_CONFIGURE
     if key in ("max_overruns", "overrun_window"):
         return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1, change=change)
-    if key in ("command_latency", "feedback_frozen"):
+    if key in ("command_latency", "feedback_frozen", "reset_hold"):
         return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0, change=change)
     return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], change=change,
               **POSITIVE)
@@ -366,6 +370,9 @@ ADAPTER = NodeParams("adapter", (
     _p("plan_lead", _N, DEFAULTS["plan_lead"],
        "with a plan output: send each decision's plan at least this long before its "
        "instant, else drop it and follow the sent braking continuation [s]", low=0.0),
+    *(_p(t.parameter, _SS, [""], f"nodes allowed to publish {t.value}, fully qualified "
+         "(e.g. /cell/driver); empty: exactly one, the one publishing at activation")
+      for t in InputTopic),
     *(_watchdog(k) for k in WATCHDOG_PARAMS),
 ), (Group("outputs", (
     _p("type", _S, "position", "position | velocity | trajectory | plan",

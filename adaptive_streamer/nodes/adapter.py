@@ -7,7 +7,8 @@ Transitions (drive them with the lifecycle services, e.g. from Python with
 `adaptive_streamer.nodes.lifecycle_client`):
 
 * configure: load limits and the policy card, validate everything; refuse with a message.
-* activate: refused unless ``joint_states`` is fresh and the arm nearly still; the plan
+* activate: refused unless ``joint_states`` is fresh and the arm nearly still, and unless
+  each input has no more publishers than its ``sources.*`` allow-list admits; the plan
   starts from the measured state, holds, approaches the reference's current point with a
   jerk-limited move at reduced limits, then follows with the policy.
 * deactivate / shutdown: a controlled stop while the stream keeps running; the managed
@@ -18,6 +19,14 @@ times; one executor thread (`threads.make_executor`) runs the subscriptions, the
 and the decision (triggered by a guard condition when the stream enters the last committed
 segment). Callbacks only store the latest message; conversions are in
 `adaptive_streamer.io` and every decision and check is in the core.
+
+Input provenance: while active, a timer in the io callback group (every
+`SOURCES_PERIOD`) reads the publishers of each input from the ROS graph and stops the arm
+(``input_source``) on one that is not expected (`adaptive_streamer.core.provenance`).
+``~/reset`` is refused until the inputs have been fresh, the feedback changing, for
+``watchdog.reset_hold`` (`adaptive_streamer.core.input_hold`), and while a publisher is
+unexpected. A ``false`` on the ``stop`` topic does not release a stop (the message does not
+say who sent it): ``~/reset`` does.
 """
 from __future__ import annotations
 
@@ -45,6 +54,8 @@ from adaptive_streamer.core.activation import check_activation, first_tick
 from adaptive_streamer.core.adapter_setup import DEFAULTS, build_session
 from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, session_summary,
                                                    session_values)
+from adaptive_streamer.core.input_hold import InputHold
+from adaptive_streamer.core.provenance import InputTopic, expected_sources, source_fault
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import StreamClock, StreamTimeline
@@ -63,6 +74,7 @@ from .threads import make_executor, prepare_process, set_thread_priority
 LEVELS = {StatusLevel.OK: OK, StatusLevel.WARN: WARN, StatusLevel.ERROR: ERROR}
 JOINT_STATES_DEPTH = 100  # joint_states messages queued (0.2 s at 500 Hz)
 SWAP_BUDGET = 0.5         # while active, a card must load within this many decision periods
+SOURCES_PERIOD = 0.5      # how often the inputs' publishers are read from the graph [s]
 
 
 class AdapterNode(LifecycleNode):
@@ -100,6 +112,9 @@ class AdapterNode(LifecycleNode):
         self.create_subscription(String, "robot_description", self._on_robot_description,
                                  common.reliable_qos(1, transient_local=True),
                                  callback_group=self._io_group)
+        self._sources_timer = None
+        self._expected: dict[InputTopic, tuple[str, ...]] = {}
+        self._source_faults: dict[InputTopic, str | None] = {}
         self._autostart_timer = None
         if self.get_parameter("autostart").value:
             self.start_autostart()
@@ -249,6 +264,8 @@ class AdapterNode(LifecycleNode):
         self._js_merger = JointStateMerger(self._joints, decode=cdr_decoder())
         self._rate = rate
         self._latest_inputs = LatestInputs(self._joints, setup.parser)
+        self._hold = InputHold()
+        self._allowed = {t: [n for n in self._param(t.parameter) if n] for t in InputTopic}
         self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
                          for name in self._param("outputs") if name]
         self._setpoint_pub = self.create_lifecycle_publisher(
@@ -263,21 +280,24 @@ class AdapterNode(LifecycleNode):
         self._shadow_msg = setpoint_message(self._joints)
         self._decision_msg = Float64MultiArray()
         self._decision_msg.layout.dim = [MultiArrayDimension(label=decision_record.LABEL)]
-        self._subs = [
+        self._input_subs = {
             # deep: a driver may send its joints in several streams on the topic, and a
             # message of a slow stream must not be dropped behind a fast one
-            self.create_subscription(JointState, "joint_states", self._on_joint_states,
-                                     qos_by_name(self._param("joint_states_qos"),
-                                                 JOINT_STATES_DEPTH),
-                                     callback_group=self._io_group, raw=True),
-            self.create_subscription(JointTrajectory, "reference/window", self._on_window,
-                                     common.reliable_qos(5), callback_group=self._io_group),
-            self.create_subscription(JointState, "feedback", self._on_feedback,
-                                     qos_by_name(self._param("feedback_qos"), 5),
-                                     callback_group=self._io_group),
-            self.create_subscription(Bool, "stop", self._on_stop_topic, common.reliable_qos(1),
-                                     callback_group=self._io_group),
-        ]
+            InputTopic.JOINT_STATES: self.create_subscription(
+                JointState, "joint_states", self._on_joint_states,
+                qos_by_name(self._param("joint_states_qos"), JOINT_STATES_DEPTH),
+                callback_group=self._io_group, raw=True),
+            InputTopic.REFERENCE: self.create_subscription(
+                JointTrajectory, "reference/window", self._on_window, common.reliable_qos(5),
+                callback_group=self._io_group),
+            InputTopic.FEEDBACK: self.create_subscription(
+                JointState, "feedback", self._on_feedback,
+                qos_by_name(self._param("feedback_qos"), 5), callback_group=self._io_group),
+        }
+        self._stop_sub = self.create_subscription(Bool, "stop", self._on_stop_topic,
+                                                  common.reliable_qos(1),
+                                                  callback_group=self._io_group)
+        self._subs = [*self._input_subs.values(), self._stop_sub]
         self._adapter_services = [
             self.create_service(Trigger, "~/stop", self._on_stop, callback_group=self._io_group),
             self.create_service(Trigger, "~/reset", self._on_reset, callback_group=self._io_group),
@@ -298,8 +318,9 @@ class AdapterNode(LifecycleNode):
             self._latest_inputs.window_received, wd.reference_timeout,
             float(self._param("activation_velocity")), session.cycle.policy.needs_feedback,
             self._latest_inputs.feedback_received, wd.feedback_timeout)
-        if not check.ok:
-            self.get_logger().error(f"activate refused: {check.refusal}")
+        refusal = check.refusal or self._pin_sources()
+        if refusal is not None:
+            self.get_logger().error(f"activate refused: {refusal}")
             return TransitionCallbackReturn.FAILURE
         positions = js[2]
         z = np.zeros(len(self._joints))
@@ -314,6 +335,8 @@ class AdapterNode(LifecycleNode):
                                           self._on_stream, self._on_stream_error,
                                           priority=int(self._param("stream_priority")))
         self._stream_timer.start()
+        self._sources_timer = self.create_timer(SOURCES_PERIOD, self._check_sources,
+                                                callback_group=self._io_group)
         self._status = "active"
         self._diag.set(OK, "active: approaching the reference")
         result = super().on_activate(state)
@@ -366,6 +389,9 @@ class AdapterNode(LifecycleNode):
         return super().on_deactivate(state)
 
     def _teardown_timers(self) -> None:
+        if self._sources_timer is not None:
+            self.destroy_timer(self._sources_timer)
+            self._sources_timer = None
         if self._stream_timer is not None:
             self._stream_timer.stop()
             self._stream_timer = None
@@ -395,6 +421,7 @@ class AdapterNode(LifecycleNode):
         self._outputs, self._subs, self._adapter_services = [], [], []
         self._latest_inputs = None
         self._js_merger = None
+        self._expected, self._source_faults = {}, {}
         self.session = None
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
@@ -409,9 +436,12 @@ class AdapterNode(LifecycleNode):
 
     def _on_joint_states(self, data: bytes) -> None:
         """Store the raw message (merged with the others when a decision needs it)."""
-        merger = self._js_merger
-        if merger is not None:
-            merger.add(data, self._now())
+        merger, session = self._js_merger, self.session
+        if merger is not None and session is not None:
+            now = self._now()
+            merger.add(data, now)
+            self._hold.note(InputTopic.JOINT_STATES, now,
+                            session.watchdog.config.joint_states_timeout)
 
     def _joint_state(self) -> tuple[float, np.ndarray, np.ndarray, np.ndarray | None] | None:
         """Merged joint state: (oldest received, stamp per joint, positions, velocities) in
@@ -424,25 +454,87 @@ class AdapterNode(LifecycleNode):
         return None if js is None else (js.received, js.stamps, js.position, js.velocity)
 
     def _on_window(self, msg: JointTrajectory) -> None:
-        latest = self._latest_inputs
-        if latest is not None:
-            latest.set_window(self._now(), msg)
+        latest, session = self._latest_inputs, self.session
+        if latest is not None and session is not None:
+            now = self._now()
+            latest.set_window(now, msg)
+            self._hold.note(InputTopic.REFERENCE, now, session.watchdog.config.reference_timeout)
 
     def _on_feedback(self, msg: JointState) -> None:
-        latest = self._latest_inputs
-        if latest is not None:
-            latest.set_feedback(self._now(), msg)
+        latest, session = self._latest_inputs, self.session
+        if latest is not None and session is not None:
+            now = self._now()
+            latest.set_feedback(now, msg)
+            self._hold.note(InputTopic.FEEDBACK, now, session.watchdog.config.feedback_timeout,
+                            msg.position)
 
     def _on_stop_topic(self, msg: Bool) -> None:
+        """``true`` latches a stop; ``false`` is ignored (it does not say who sent it, so it
+        could release another node's stop): ``~/reset`` releases the stop."""
         session = self.session
         if session is None:
             return
-        if msg.data:
-            if session.watchdog.stop_requested is None:
-                session.watchdog.stop_requested = "stop topic is true"
-                session.stop(self._now(), "external_stop", "stop requested on the stop topic")
-        else:
-            session.watchdog.stop_requested = None
+        now = self._now()
+        if not msg.data:
+            if session.watchdog.stop_requested is not None:
+                self.get_logger().warning(
+                    "stop topic false ignored: the message does not say which node sent it; "
+                    "release the stop with ~/reset", throttle_duration_sec=5.0)
+            return
+        if session.watchdog.request_stop_topic(now):
+            nodes = ", ".join(f"'{n}'" for n in self._publisher_nodes(self._stop_sub)) or "unknown"
+            session.stop(now, "external_stop",
+                         f"stop requested on the stop topic (its publishers: {nodes})")
+
+    # ------------------------------------------------------------------ input sources
+    def _publisher_nodes(self, sub: Any) -> list[str]:
+        """Fully qualified node names of the publishers of ``sub``'s topic (graph query)."""
+        return [f"{info.node_namespace.rstrip('/')}/{info.node_name}"
+                for info in self.get_publishers_info_by_topic(sub.topic_name)]
+
+    def _checked_inputs(self) -> list[InputTopic]:
+        """The inputs the running policy reads (feedback only when it reads features)."""
+        session = self.session
+        needs = session is not None and bool(session.cycle.policy.needs_feedback)
+        return [t for t in InputTopic if t is not InputTopic.FEEDBACK or needs]
+
+    def _pin_sources(self) -> str | None:
+        """At activation: the expected publishers of each input, or the refusal."""
+        expected = {t: expected_sources(t, self._allowed[t], self._publisher_nodes(self._input_subs[t]))
+                    for t in self._checked_inputs()}
+        refusals = [e.refusal for e in expected.values() if e.refusal is not None]
+        if refusals:
+            return "; ".join(refusals)
+        self._expected = {t: e.nodes for t, e in expected.items()}
+        self._source_faults = {}
+        return None
+
+    def _source_problems(self) -> list[tuple[InputTopic, str]]:
+        """(input, reason) for every input with a publisher that is not expected now."""
+        out = []
+        for topic, expected in self._expected.items():
+            fault = source_fault(topic, expected, self._publisher_nodes(self._input_subs[topic]))
+            if fault is not None:
+                out.append((topic, fault))
+        return out
+
+    def _check_sources(self) -> None:
+        """The sources timer: a new provenance fault stops the arm (``input_source``)."""
+        session = self.session
+        try:
+            if session is None or session.cycle.state is None:
+                return
+            faults = dict(self._source_problems())
+            for topic in self._expected:
+                fault = faults.get(topic)
+                if fault is not None and fault != self._source_faults.get(topic):
+                    session.stop(self._now(), "input_source", fault)
+                self._source_faults[topic] = fault
+        except Exception as exc:  # never let an exception escape a callback
+            self.get_logger().error(f"input source check failed: {exc}",
+                                    throttle_duration_sec=5.0)
+            if session is not None and session.cycle.state is not None:
+                session.stop(self._now(), "input_source", f"input source check failed: {exc}")
 
     def _inputs(self, now: float) -> SessionInputs:
         latest = self._latest_inputs
@@ -602,7 +694,14 @@ class AdapterNode(LifecycleNode):
             response.success, response.message = False, "not streaming (activate first)"
             return response
         now = self._now()
-        ok, msg = session.reset_on(now, self._inputs(now))
+        wd = session.watchdog.config
+        timeouts = {InputTopic.JOINT_STATES: wd.joint_states_timeout,
+                    InputTopic.REFERENCE: wd.reference_timeout,
+                    InputTopic.FEEDBACK: wd.feedback_timeout}
+        extra = [("input_source", reason) for _, reason in self._source_problems()]
+        extra += [("reset_hold", reason) for reason in self._hold.problems(
+            now, wd.reset_hold, timeouts, self._checked_inputs())]
+        ok, msg = session.reset_on(now, self._inputs(now), extra)
         if ok:
             self._diag.set(OK, "reset: approaching the reference")
             self._paused_for = None
@@ -622,6 +721,8 @@ class AdapterNode(LifecycleNode):
                  ("decision_thread", self._priority_note)]
         vals += session_values(s, self._timings, self._ticks.skipped if self._ticks else 0)
         vals += list(self._counters.items())
+        vals += [(t.parameter, ", ".join(nodes)) for t, nodes in self._expected.items()]
+        vals += [("stop_request", s.watchdog.stop_requested or "none")]
         for out in getattr(self, "_outputs", []):
             vals += list(out.status().items())
         summary = session_summary(s, self._counters["guard_failures"])
