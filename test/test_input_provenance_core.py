@@ -1,6 +1,7 @@
 """Input provenance and the reset hold, ROS-free: the expected publishers of an input and the
 verdict on the ones seen (`core.provenance`), the inputs' freshness and changing feedback
-over a hold time (`core.input_hold`), and the stop topic's latch (`core.watchdog`).
+over a hold time (`core.input_hold`), the stop topic's latch (`core.watchdog`), and windows
+against the whole reference path (`core.path_agreement`).
 
 Expected values are worked by hand beside each check (times in seconds).
 """
@@ -8,9 +9,11 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 import pytest
 
 from adaptive_streamer.core.input_hold import InputHold
+from adaptive_streamer.core.path_agreement import PathError, ReferencePath
 from adaptive_streamer.core.provenance import InputTopic, expected_sources, source_fault
 from adaptive_streamer.core.watchdog import KINDS, PERSISTENT, Watchdog, WatchdogConfig, \
     WatchdogError
@@ -114,3 +117,33 @@ def test_stop_topic_latch_is_released_by_the_reset_only():
     assert ok and w.stop_requested is None and not w.tripped, msg
     with pytest.raises(WatchdogError, match="reset_hold"):
         WatchdogConfig(reset_hold=-1.0)
+
+
+def lap(n_samples: int = 61) -> np.ndarray:
+    """A closed lap p0 + amplitude (1 - cos(2 pi s)) / 2 of two joints, sampled evenly."""
+    s = np.linspace(0.0, 1.0, n_samples)[:, None]
+    return np.array([0.1, -0.2]) + 0.5 * (1.0 - np.cos(2.0 * np.pi * s)) * np.array([0.3, 0.5])
+
+
+def test_window_on_the_path_at_any_speed_and_off_it():
+    path = ReferencePath(lap(), ("j1", "j2"))
+    fine = lap(601)      # the same curve, ten times finer: between the path's samples
+    for start, stride in [(0, 10), (3, 7), (250, 1), (595, 1)]:   # speeds, pause, the end
+        window = fine[start:start + 10 * stride:stride]
+        check = path.check(window, 1e-3)
+        # chord error of the polyline: at most curvature * h^2 / 8 ~ 0.5 * (2 pi)^2 * (1/60)^2
+        # / 8 ~ 7e-4 rad (from memory: chord-to-arc deviation of a sampled curve)
+        assert check.reason is None and check.distance < 7e-4, (start, stride, check)
+    off = fine[100:110] + np.array([0.0, 0.004])   # 4 mm-rad off on j2
+    check = path.check(off, 1e-3)
+    assert check.reason is not None and "over path_tolerance 0.001 rad" in check.reason
+    assert 0.002 < check.distance <= 0.004 + 1e-9, check
+    seam = np.vstack([fine[595:601], fine[1:5]])   # a loop goes on from the start
+    assert path.check(seam, 1e-3).reason is None
+    nan = fine[10:20].copy()
+    nan[4, 1] = math.nan
+    bad = path.check(nan, 1e-3)
+    assert bad.reason is not None and bad.point == 4, bad
+    with pytest.raises(PathError):
+        ReferencePath(np.zeros((0, 2)), ("j1", "j2"))
+    assert ReferencePath(np.ones((1, 2)), ("j1", "j2")).check(np.ones((3, 2)), 1e-9).reason is None

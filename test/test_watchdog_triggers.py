@@ -15,7 +15,8 @@ then, from outside the adapter:
   and follows again.
 
 Input provenance: a rogue second publisher of each input (a node of this process that
-echoes the input's latest message) stops the arm as ``input_source`` naming the rogue;
+echoes the input's latest message) stops the arm as ``input_source`` naming the rogue, and
+so do windows off the whole reference path;
 activation is refused while one is there; a stop set on the stop topic by one node is not
 released by another node's ``false`` (only by ``~/reset``, once no ``true`` came for the
 hold time).
@@ -135,6 +136,7 @@ def test_deviation(cell):
         cell.probe.ref_offset = 0.1   # the reference jumps 0.1 rad on every joint
     trip(cell, "deviation", "deviation", inject)
     cell.probe.ref_offset = 0.0
+    time.sleep(HOLD)   # until the windows on the path reached the adapter
     recover(cell)   # one-shot cause: accepted once at rest
 
 
@@ -177,6 +179,19 @@ def test_reference_stale(cell):
     trip(cell, "reference_stale", "reference/window", inject)
     refused(cell, "reference/window")
     cell.probe.ref_block = False
+    time.sleep(HOLD)
+    recover(cell)
+
+
+def test_window_off_the_path(cell):
+    """Windows 0.02 rad off on every joint (0.049 rad from the path, under both deviation
+    thresholds: the tracker follows them) disagree with the whole reference/path."""
+    def inject() -> None:
+        cell.probe.ref_offset = 0.02
+    vals = trip(cell, "input_source", "from the reference path", inject)
+    assert "over path_tolerance 0.01 rad" in vals["trip_message"], vals["trip_message"]
+    refused(cell, "from the reference path")
+    cell.probe.ref_offset = 0.0
     time.sleep(HOLD)
     recover(cell)
 

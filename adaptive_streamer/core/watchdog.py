@@ -34,7 +34,9 @@ setpoint_guard      an outgoing setpoint failed the guard     (always on)
 stream_fault        an error in the stream thread's loop or   (always on)
                     tick, or in the process's executor
 input_source        an input has a publisher that is not      ``sources.*`` (allow-lists;
-                    expected (an extra or a changed node)     empty: the one at activation)
+                    expected (an extra or a changed node),    empty: the one at activation),
+                    or a reference window is off the whole    ``path_tolerance`` [rad]
+                    reference path
 ==================  ========================================  ===========================
 """
 from __future__ import annotations
@@ -79,6 +81,7 @@ class WatchdogConfig:
     overrun_window: int = 20
     feedback_frozen: float = 0.0   # feedback values unchanged this long while moving: stale (0: off)
     reset_hold: float = 0.5        # inputs fresh (feedback changing) this long before a reset
+    path_tolerance: float = 0.01   # window points this far from reference/path: off it (0: off)
 
     def __post_init__(self) -> None:
         for name in ("deviation_joint", "deviation_norm", "following_error",
@@ -89,7 +92,7 @@ class WatchdogConfig:
         if not (math.isfinite(self.command_latency) and self.command_latency >= 0):
             raise WatchdogError(f"watchdog parameter 'command_latency' must be >= 0, "
                                 f"got {self.command_latency!r}")
-        for name in ("feedback_frozen", "reset_hold"):
+        for name in ("feedback_frozen", "reset_hold", "path_tolerance"):
             x = getattr(self, name)
             if not (math.isfinite(x) and x >= 0):
                 raise WatchdogError(f"watchdog parameter '{name}' must be >= 0 (0 disables "

@@ -305,6 +305,8 @@ _WATCHDOG_HELP = {
     "reset_hold": "a reset needs joint_states, the reference and the feedback the policy "
                   "reads fresh (the feedback changing) this long, and no stop-topic true "
                   "within it [s] (0: off)",
+    "path_tolerance": "stop (input_source) when a reference window point is further from "
+                      "the whole reference path (reference/path) [rad] (0: off)",
 }
 
 
@@ -313,7 +315,7 @@ def _watchdog(key: str) -> Param:
     change = Change.LOWER_ONLY if key in TIGHTER_WHEN_LOWER else Change.AT_CONFIGURE
     if key in ("max_overruns", "overrun_window"):
         return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1, change=change)
-    if key in ("command_latency", "feedback_frozen", "reset_hold"):
+    if key in ("command_latency", "feedback_frozen", "reset_hold", "path_tolerance"):
         return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0, change=change)
     return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], change=change,
               **POSITIVE)

@@ -25,8 +25,11 @@ Input provenance: while active, a timer in the io callback group (every
 (``input_source``) on one that is not expected (`adaptive_streamer.core.provenance`).
 ``~/reset`` is refused until the inputs have been fresh, the feedback changing, for
 ``watchdog.reset_hold`` (`adaptive_streamer.core.input_hold`), and while a publisher is
-unexpected. A ``false`` on the ``stop`` topic does not release a stop (the message does not
-say who sent it): ``~/reset`` does.
+unexpected. Each decision's reference window is checked against the whole path the
+reference server published (``reference/path``, `adaptive_streamer.core.path_agreement`):
+a window off it stops the arm as ``input_source`` (after the cycle's own deviation check,
+so a large jump still stops as ``deviation``). A ``false`` on the ``stop`` topic does not
+release a stop (the message does not say who sent it): ``~/reset`` does.
 """
 from __future__ import annotations
 
@@ -55,6 +58,8 @@ from adaptive_streamer.core.adapter_setup import DEFAULTS, build_session
 from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, session_summary,
                                                    session_values)
 from adaptive_streamer.core.input_hold import InputHold
+from adaptive_streamer.core.path_agreement import PathError, ReferencePath
+from adaptive_streamer.core.playback import Window
 from adaptive_streamer.core.provenance import InputTopic, expected_sources, source_fault
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
@@ -64,6 +69,7 @@ from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 from . import common
 from ..io.adapter_inputs import LatestInputs
 from ..io.param_specs import ADAPTER
+from ..io.trajectory_conversions import TrajectoryMessageError, msg_to_window
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, refuse_undeclared
 from .lifecycle_guard import guard_change_state
 from .policy_swap import PolicyLoader
@@ -297,7 +303,12 @@ class AdapterNode(LifecycleNode):
         self._stop_sub = self.create_subscription(Bool, "stop", self._on_stop_topic,
                                                   common.reliable_qos(1),
                                                   callback_group=self._io_group)
-        self._subs = [*self._input_subs.values(), self._stop_sub]
+        self._path: ReferencePath | None = None
+        self._path_checked: Window | None = None
+        path_sub = self.create_subscription(JointTrajectory, "reference/path", self._on_path,
+                                            common.reliable_qos(1, transient_local=True),
+                                            callback_group=self._io_group)
+        self._subs = [*self._input_subs.values(), self._stop_sub, path_sub]
         self._adapter_services = [
             self.create_service(Trigger, "~/stop", self._on_stop, callback_group=self._io_group),
             self.create_service(Trigger, "~/reset", self._on_reset, callback_group=self._io_group),
@@ -322,6 +333,9 @@ class AdapterNode(LifecycleNode):
         if refusal is not None:
             self.get_logger().error(f"activate refused: {refusal}")
             return TransitionCallbackReturn.FAILURE
+        if self._path is None and wd.path_tolerance > 0.0:
+            self.get_logger().warning("no reference/path received: the reference windows are "
+                                      "not checked against the whole path")
         positions = js[2]
         z = np.zeros(len(self._joints))
         t0 = first_tick(now, self._rate)
@@ -422,6 +436,7 @@ class AdapterNode(LifecycleNode):
         self._latest_inputs = None
         self._js_merger = None
         self._expected, self._source_faults = {}, {}
+        self._path = self._path_checked = None
         self.session = None
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
@@ -485,6 +500,35 @@ class AdapterNode(LifecycleNode):
             nodes = ", ".join(f"'{n}'" for n in self._publisher_nodes(self._stop_sub)) or "unknown"
             session.stop(now, "external_stop",
                          f"stop requested on the stop topic (its publishers: {nodes})")
+
+    def _on_path(self, msg: JointTrajectory) -> None:
+        """The whole reference (transient local): the path the windows must lie on."""
+        try:
+            path = msg_to_window(msg, self._joints)
+            self._path = ReferencePath(path.positions, self._joints)
+            self._path_checked = None
+        except (TrajectoryMessageError, PathError) as exc:
+            self._path = None
+            self.get_logger().error(f"reference/path ignored (the windows are not checked "
+                                    f"against it): {exc}")
+
+    def _path_fault(self, window: Window | None) -> str | None:
+        """Why ``window`` is off the reference path (None: on it, or nothing to check)."""
+        path, session = self._path, self.session
+        if path is None or window is None or session is None:
+            return None
+        tolerance = session.watchdog.config.path_tolerance
+        return None if tolerance <= 0.0 else path.check(window.positions, tolerance).reason
+
+    def _check_path(self, session: StreamingSession, window: Window | None) -> None:
+        """After a decision: a new window off the path stops the arm (``input_source``)."""
+        if window is None or window is self._path_checked or session.watchdog.tripped \
+                or session.mode not in ("approaching", "following"):
+            return
+        self._path_checked = window
+        fault = self._path_fault(window)
+        if fault is not None:
+            session.stop(self._now(), "input_source", fault)
 
     # ------------------------------------------------------------------ input sources
     def _publisher_nodes(self, sub: Any) -> list[str]:
@@ -607,7 +651,9 @@ class AdapterNode(LifecycleNode):
         try:
             t0 = time.perf_counter()
             now = self._now()
-            d = session.decide(now, self._inputs(now), self._now)
+            inputs = self._inputs(now)
+            d = session.decide(now, inputs, self._now)
+            self._check_path(session, inputs.window)
             if d is not None:
                 self._publish_plan(session)
                 self._decision_msg.data = decision_record.encode(d).tolist()
@@ -698,10 +744,14 @@ class AdapterNode(LifecycleNode):
         timeouts = {InputTopic.JOINT_STATES: wd.joint_states_timeout,
                     InputTopic.REFERENCE: wd.reference_timeout,
                     InputTopic.FEEDBACK: wd.feedback_timeout}
+        inputs = self._inputs(now)
         extra = [("input_source", reason) for _, reason in self._source_problems()]
+        off_path = self._path_fault(inputs.window)
+        if off_path is not None:
+            extra.append(("input_source", off_path))
         extra += [("reset_hold", reason) for reason in self._hold.problems(
             now, wd.reset_hold, timeouts, self._checked_inputs())]
-        ok, msg = session.reset_on(now, self._inputs(now), extra)
+        ok, msg = session.reset_on(now, inputs, extra)
         if ok:
             self._diag.set(OK, "reset: approaching the reference")
             self._paused_for = None
@@ -722,7 +772,9 @@ class AdapterNode(LifecycleNode):
         vals += session_values(s, self._timings, self._ticks.skipped if self._ticks else 0)
         vals += list(self._counters.items())
         vals += [(t.parameter, ", ".join(nodes)) for t, nodes in self._expected.items()]
-        vals += [("stop_request", s.watchdog.stop_requested or "none")]
+        vals += [("stop_request", s.watchdog.stop_requested or "none"),
+                 ("reference_path", "none (windows not checked)" if self._path is None
+                  else f"{self._path.samples} samples")]
         for out in getattr(self, "_outputs", []):
             vals += list(out.status().items())
         summary = session_summary(s, self._counters["guard_failures"])
