@@ -497,9 +497,9 @@ class AdapterNode(LifecycleNode):
                     "release the stop with ~/reset", throttle_duration_sec=5.0)
             return
         if session.watchdog.request_stop_topic(now):
-            nodes = ", ".join(f"'{n}'" for n in self._publisher_nodes(self._stop_sub)) or "unknown"
+            nodes = ", ".join(f"'{n}'" for n in self._publisher_nodes(self._stop_sub))
             session.stop(now, "external_stop",
-                         f"stop requested on the stop topic (its publishers: {nodes})")
+                         f"stop requested on the stop topic (its publishers: {nodes or 'none'})")
 
     def _on_path(self, msg: JointTrajectory) -> None:
         """The whole reference (transient local): the path the windows must lie on."""
@@ -544,7 +544,8 @@ class AdapterNode(LifecycleNode):
 
     def _pin_sources(self) -> str | None:
         """At activation: the expected publishers of each input, or the refusal."""
-        expected = {t: expected_sources(t, self._allowed[t], self._publisher_nodes(self._input_subs[t]))
+        expected = {t: expected_sources(t, self._allowed[t],
+                                        self._publisher_nodes(self._input_subs[t]))
                     for t in self._checked_inputs()}
         refusals = [e.refusal for e in expected.values() if e.refusal is not None]
         if refusals:
