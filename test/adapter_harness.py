@@ -448,7 +448,9 @@ class Probe(Node):
     to positions; None for none), ``ref_block``, ``ref_offset`` (added to every point's
     positions), ``ref_truncate`` (only the first point). ``last_window`` is the latest window
     the reference server sent (before the relay). Feedback: when ``feedback`` holds
-    {name: value}, a named vector is published at 50 Hz.
+    {name: value}, a named vector is published at 50 Hz; while ``feedback_live`` it also
+    carries a ``sample`` counter (as a sensor's sequence number), so its values change; set
+    it False to send the same values each time (a frozen copy).
     """
 
     js_block = RelayFault()
@@ -468,6 +470,8 @@ class Probe(Node):
         self.logs: list[tuple[str, str]] = []
         self.last_window: JointTrajectory | None = None
         self.feedback: dict[str, float] | None = None
+        self.feedback_live = True
+        self._feedback_sample = 0
         self._faults: dict[str, Any] = {"js_block": False, "js_offset": None,
                                         "ref_block": False, "ref_offset": 0.0,
                                         "ref_truncate": False}
@@ -531,6 +535,10 @@ class Probe(Node):
         msg.header.stamp = self.get_clock().now().to_msg()
         msg.name = list(fb)
         msg.position = [float(v) for v in fb.values()]
+        if self.feedback_live:
+            self._feedback_sample += 1
+            msg.name.append("sample")
+            msg.position.append(float(self._feedback_sample))
         self.feedback_pub.publish(msg)
 
     def client(self, srv_type: Any, name: str) -> Any:

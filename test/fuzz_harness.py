@@ -664,8 +664,12 @@ class TopicFuzz:
         self.ah = ah
         card = ah.write_card(folder, "fuzz_feedback", "linear_feedback", feedback_gain={
             "features": ["edge_offset"], "matrix": [[1.0]] + [[0.0]] * (N - 1)})
-        # the adapter in this process: its counters and events classify the cases
-        self.cell = ah.Cell(folder, card, adapter_in_process=True)
+        # the adapter in this process: its counters and events classify the cases; the
+        # fuzzer is an allowed second publisher of each input (sources.*)
+        self.cell = ah.Cell(folder, card, adapter_in_process=True,
+                            sources__joint_states=["/cell_relay", "/topic_fuzzer"],
+                            sources__reference=["/cell_relay", "/topic_fuzzer"],
+                            sources__feedback=["/adapter_probe", "/topic_fuzzer"])
         self.probe = self.cell.probe
         node = self.node = rclpy_node("topic_fuzzer")
         self.js_pub = node.create_publisher(JointState, "joint_states", 10)

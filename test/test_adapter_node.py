@@ -163,9 +163,10 @@ def test_limit_scale_takes_effect_smoothly_and_is_respected(cell):
     for t in (Transition.TRANSITION_DEACTIVATE, Transition.TRANSITION_CLEANUP):
         assert cell.transition(t)
     assert cell.set_params(limit_scale=1.0)[0].successful
-    for t in (Transition.TRANSITION_CONFIGURE, Transition.TRANSITION_ACTIVATE):
-        assert cell.transition(t)
-    cell.wait_mode("following")
+    assert cell.transition(Transition.TRANSITION_CONFIGURE)
+    # the configure made new input subscriptions: activation is refused until a window and
+    # joint states reached them (asked again, as bringup does)
+    cell.start_following()
     cell.wait_diag(lambda v: float(v.get("limit_scale", 0)) == 1.0, "limit_scale 1 on /diagnostics")
 
 

@@ -11,8 +11,16 @@ then, from outside the adapter:
 * /diagnostics of the adapter names the reason (values ``trip`` and ``trip_message``);
 * the reference server was paused (its own /diagnostics ``state``);
 * ``~/reset`` is refused while a persistent cause is still present (the message says why)
-  and accepted once it is gone (or at rest, for one-shot causes); the adapter then
-  re-approaches and follows again.
+  and accepted once it is gone (or at rest, for one-shot causes) and the inputs have been
+  fresh, the feedback changing, for ``watchdog.reset_hold``; the adapter then re-approaches
+  and follows again.
+
+Input provenance: a rogue second publisher of each input (a node of this process that
+echoes the input's latest message) stops the arm as ``input_source`` naming the rogue, and
+so do windows off the whole reference path;
+activation is refused while one is there; a stop set on the stop topic by one node is not
+released by another node's ``false`` (only by ``~/reset``, once no ``true`` came for the
+hold time).
 
 The setpoint guard cannot be reached from outside: the committed plan stays within the
 limits by construction and activation refuses an arm outside its position range
@@ -25,16 +33,21 @@ output too many, 4 a reshape onnxruntime refuses.
 from __future__ import annotations
 
 import time
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 import pytest
 import rclpy
+from lifecycle_msgs.msg import Transition
+from rclpy.node import Node
+from sensor_msgs.msg import JointState
 from std_msgs.msg import Bool
+from trajectory_msgs.msg import JointTrajectory
 
 import adapter_harness as h
 
 pytestmark = pytest.mark.ros
+HOLD = 0.5 + 0.2   # watchdog.reset_hold (default 0.5 s) and a margin for the last messages
 
 
 @pytest.fixture(scope="module")
@@ -72,13 +85,12 @@ def moving(cell: h.Cell) -> None:
     every injection and reset first, so one failure does not cascade)."""
     p = cell.probe
     p.js_block = p.ref_block = p.ref_truncate = False
-    p.js_offset, p.ref_offset, p.feedback = None, 0.0, {"fault": 0.0}
-    p.stop_pub.publish(Bool(data=False))
+    p.js_offset, p.ref_offset, p.feedback, p.feedback_live = None, 0.0, {"fault": 0.0}, True
     if cell.mode() in ("stopping", "stopped"):
         if cell.get_param("policy_active") != str(cell.fault_card):
             cell.set_params(policy=str(cell.fault_card))
         cell.wait_rest()
-        time.sleep(0.3)
+        time.sleep(HOLD)
         cell.trigger("/adapter/reset")
         cell.wait_mode("following")
         cell.start_reference()
@@ -125,6 +137,7 @@ def test_deviation(cell):
         cell.probe.ref_offset = 0.1   # the reference jumps 0.1 rad on every joint
     trip(cell, "deviation", "deviation", inject)
     cell.probe.ref_offset = 0.0
+    time.sleep(HOLD)   # until the windows on the path reached the adapter
     recover(cell)   # one-shot cause: accepted once at rest
 
 
@@ -147,7 +160,7 @@ def test_joint_states_stale(cell):
     trip(cell, "joint_states_stale", "joint_states", inject)
     refused(cell, "joint_states")
     cell.probe.js_block = False
-    time.sleep(0.1)
+    time.sleep(HOLD)
     recover(cell)
 
 
@@ -157,7 +170,7 @@ def test_feedback_stale(cell):
     trip(cell, "feedback_stale", "feedback", inject)
     refused(cell, "feedback")
     cell.probe.feedback = {"fault": 0.0}
-    time.sleep(0.1)
+    time.sleep(HOLD)
     recover(cell)
 
 
@@ -167,7 +180,20 @@ def test_reference_stale(cell):
     trip(cell, "reference_stale", "reference/window", inject)
     refused(cell, "reference/window")
     cell.probe.ref_block = False
-    time.sleep(0.2)
+    time.sleep(HOLD)
+    recover(cell)
+
+
+def test_window_off_the_path(cell):
+    """Windows 0.02 rad off on every joint (0.049 rad from the path, under both deviation
+    thresholds: the tracker follows them) disagree with the whole reference/path."""
+    def inject() -> None:
+        cell.probe.ref_offset = 0.02
+    vals = trip(cell, "input_source", "from the reference path", inject)
+    assert "over path_tolerance 0.01 rad" in vals["trip_message"], vals["trip_message"]
+    refused(cell, "from the reference path")
+    cell.probe.ref_offset = 0.0
+    time.sleep(HOLD)
     recover(cell)
 
 
@@ -227,11 +253,120 @@ def test_external_stop_service(cell):
     recover(cell)   # a service stop is a one-shot request
 
 
-def test_external_stop_topic(cell):
+def test_stop_topic_is_released_by_reset_only(cell):
+    """The probe sets the stop; another node's ``false`` leaves it latched; while the
+    probe repeats ``true`` the reset is refused; once it stopped for the hold time, the
+    operator's ``~/reset`` releases it."""
+    other = Node("other_operator")
+    release = other.create_publisher(Bool, "stop", h.reliable_qos(1))
+    try:
+        def inject() -> None:
+            cell.probe.stop_pub.publish(Bool(data=True))
+        vals = trip(cell, "external_stop", "stop topic", inject)
+        assert "'/adapter_probe'" in vals["trip_message"], vals["trip_message"]
+        h.wait_until(lambda: release.get_subscription_count() > 0, "other_operator matched")
+        for _ in range(5):
+            release.publish(Bool(data=False))
+            time.sleep(0.05)
+        held = cell.wait_diag(lambda v: "stop_request" in v, "adapter status")[3]
+        assert held["stop_request"] == "stop topic is true", held
+        assert held["trip"] == "external_stop", held
+        cell.probe.stop_pub.publish(Bool(data=True))   # the owner still holds it
+        refused(cell, "a stop is still requested")
+        time.sleep(HOLD)
+        recover(cell)
+        assert cell.wait_diag(lambda v: "stop_request" in v, "adapter status")[3][
+            "stop_request"] == "none"
+    finally:
+        other.destroy_node()
+
+
+class Rogue:
+    """A second publisher of one of the adapter's inputs: a node of its own in the probe's
+    executor that republishes the input's latest message at 20 Hz (an echo)."""
+
+    def __init__(self, cell: h.Cell, topic: str, msg_type: Any, qos: Any) -> None:
+        self.cell, self.topic = cell, topic
+        self.name = "rogue_" + topic.replace("/", "_")
+        self.node = Node(self.name)
+        self.latest: Any = None
+        self.pub = self.node.create_publisher(msg_type, topic, qos)
+        self.node.create_subscription(msg_type, topic, self._keep, qos)
+        self.node.create_timer(0.05, self._echo)
+        cell.cell_ex.add_node(self.node)
+
+    def _keep(self, msg: Any) -> None:
+        self.latest = msg
+
+    def _echo(self) -> None:
+        if self.latest is not None:
+            self.pub.publish(self.latest)
+
+    def close(self) -> None:
+        """Remove the rogue and wait until the graph has one publisher of its topic."""
+        self.cell.cell_ex.remove_node(self.node)
+        self.node.destroy_node()
+        h.wait_until(lambda: self.cell.probe.count_publishers(self.topic) == 1,
+                     f"the rogue's publisher of {self.topic} gone")
+
+
+ROGUES = {"joint_states": (JointState, 10), "reference/window": (JointTrajectory, None),
+          "feedback": (JointState, 10)}
+
+
+@pytest.mark.parametrize("topic", list(ROGUES))
+def test_rogue_publisher_is_an_input_source_stop(cell, topic):
+    msg_type, depth = ROGUES[topic]
+    rogue: list[Rogue] = []
+
     def inject() -> None:
-        cell.probe.stop_pub.publish(Bool(data=True))
-    trip(cell, "external_stop", "stop topic", inject)
-    refused(cell, "a stop is still requested")
-    cell.probe.stop_pub.publish(Bool(data=False))
-    time.sleep(0.2)
+        rogue.append(Rogue(cell, topic, msg_type, depth or h.reliable_qos(5)))
+    try:
+        vals = trip(cell, "input_source", f"'/{rogue_name(topic)}'", inject)
+        assert f"of '{topic}'" in vals["trip_message"], vals["trip_message"]
+        refused(cell, f"unexpected publisher of '{topic}'")
+    finally:
+        for r in rogue:
+            r.close()
+    time.sleep(HOLD)
     recover(cell)
+
+
+def rogue_name(topic: str) -> str:
+    return "rogue_" + topic.replace("/", "_")
+
+
+def test_activation_refused_with_an_extra_publisher(cell):
+    moving(cell)
+    assert cell.transition(Transition.TRANSITION_DEACTIVATE)
+    rogue = Rogue(cell, "joint_states", JointState, 10)
+    try:
+        since = len(cell.probe.logs)
+        assert not cell.transition(Transition.TRANSITION_ACTIVATE)
+        h.wait_until(lambda: [m for n, m in cell.probe.logs[since:]
+                              if n == "adapter" and "activate refused" in m], "the refusal log")
+        why = [m for n, m in cell.probe.logs[since:] if n == "adapter" and "refused" in m][0]
+        assert "'joint_states' has 2 publishers" in why and "'/rogue_joint_states'" in why, why
+        assert "'/cell_relay'" in why and "sources.joint_states" in why, why
+    finally:
+        rogue.close()
+    cell.start_following()
+    cell.start_reference()
+    moving(cell)
+
+
+def test_reset_needs_changing_feedback_for_the_hold_time(cell):
+    """Feedback that arrives fresh but frozen (the same values each time) blocks the reset;
+    once it changes again for the hold time the reset is accepted."""
+    def inject() -> None:
+        cell.probe.feedback_live = False   # the same values from here on
+        res = cell.trigger("/adapter/stop")
+        assert res.success, res.message
+    trip(cell, "external_stop", "~/stop", inject)
+    time.sleep(HOLD)
+    refused(cell, "the feedback values have not changed")
+    cell.probe.feedback_live = True
+    time.sleep(HOLD)
+    recover(cell)
+
+

@@ -26,7 +26,8 @@ from .watchdog import WatchdogConfig
 
 WATCHDOG_PARAMS = ("deviation_joint", "deviation_norm", "following_error", "command_latency",
                    "joint_states_timeout", "feedback_timeout", "reference_timeout",
-                   "max_overruns", "overrun_window", "feedback_frozen")
+                   "max_overruns", "overrun_window", "feedback_frozen", "reset_hold",
+                   "path_tolerance")
 _WD = WatchdogConfig()
 DEFAULTS: dict[str, Any] = {
     "policy": "", "shadow_policy": "", "limits_file": "", "limits_dynamics": "",

@@ -216,11 +216,13 @@ class StreamingSession:
         self._trips_seen = self.watchdog.total_events
         return list(kept)[len(kept) - fresh:] if fresh > 0 else []
 
-    def reset(self, persisting: list[tuple[str, str]]) -> tuple[bool, str]:
-        """Reset the latched stop unless a cause persists or the arm is still braking."""
+    def reset(self, persisting: list[tuple[str, str]],
+              now: float | None = None) -> tuple[bool, str]:
+        """Reset the latched stop unless a cause persists or the arm is still braking
+        (``now``: the operator's live reset, see `Watchdog.reset`)."""
         if self.cycle.mode == "stopping":
             return False, "reset refused: still braking to rest"
-        ok, msg = self.watchdog.reset(persisting)
+        ok, msg = self.watchdog.reset(persisting, now)
         if ok:
             with self._lock:
                 self._drop_lag()
@@ -238,14 +240,17 @@ class StreamingSession:
         self.cycle.t += self._lag
         self._lag = 0.0
 
-    def reset_on(self, now: float, inputs: SessionInputs) -> tuple[bool, str]:
+    def reset_on(self, now: float, inputs: SessionInputs,
+                 extra: list[tuple[str, str]] | None = None) -> tuple[bool, str]:
         """Reset (the adapter's ``~/reset``) unless an input fault persists on the current
-        inputs or the policy still fails on them."""
+        inputs, the caller's ``extra`` (kind, reason) causes remain or the policy still
+        fails on them."""
         persisting = self.input_faults(now, inputs, bool(self.cycle.policy.needs_feedback))
+        persisting += extra or []
         probe = self.probe_policy(inputs)
         if probe:
             persisting.append(("policy_fault", probe))
-        return self.reset(persisting)
+        return self.reset(persisting, now)
 
     def probe_policy(self, inputs: SessionInputs) -> str | None:
         """Run the policy once on the current inputs; a reason if it still fails."""

@@ -5,7 +5,14 @@ Each trigger has its own threshold parameter and reason text. The first trigger 
 `Trip` (reason, time, message, values); the decision cycle then brakes to rest through the
 limit stage (IEC 60204-1 stop category 2 behaviour: a controlled stop with power kept) and
 holds until a reset. `reset` refuses while a persistent cause is still present (stale
-inputs, following error, an external stop still requested) and says which.
+inputs, following error, an unexpected input publisher, an external stop still requested)
+and says which.
+
+The stop topic cannot say who sent a message (the installed rclpy's message info has no
+publisher id), so its ``false`` cannot prove it comes from the node that asked for the
+stop: a ``true`` latches the stop request (`request_stop_topic`), ``false`` is ignored, and
+only the operator's reset releases it, refused while a ``true`` came within ``reset_hold``
+(the requester still holds it).
 
 Triggers and their parameters (`WatchdogConfig`):
 
@@ -27,6 +34,10 @@ external_stop       ``~/stop`` service or the stop topic      (always on)
 setpoint_guard      an outgoing setpoint failed the guard     (always on)
 stream_fault        an error in the stream thread's loop or   (always on)
                     tick, or in the process's executor
+input_source        an input has a publisher that is not      ``sources.*`` (allow-lists;
+                    expected (an extra or a changed node),    empty: the one at activation),
+                    or a reference window is off the whole    ``path_tolerance`` [rad]
+                    reference path
 ==================  ========================================  ===========================
 """
 from __future__ import annotations
@@ -41,10 +52,10 @@ import numpy as np
 
 KINDS = ("deviation", "following_error", "joint_states_stale", "feedback_stale",
          "reference_stale", "policy_fault", "overruns", "external_stop", "setpoint_guard",
-         "stream_fault")
+         "stream_fault", "input_source")
 EVENTS_KEPT = 1000   # watchdog events kept (the latest); `Watchdog.total_events` counts all
 PERSISTENT = ("following_error", "joint_states_stale", "feedback_stale", "reference_stale",
-              "external_stop")
+              "external_stop", "input_source")
 
 
 # thresholds that stop sooner when lowered (`Watchdog.tighten` changes them while running)
@@ -71,6 +82,8 @@ class WatchdogConfig:
     max_overruns: int = 3
     overrun_window: int = 20
     feedback_frozen: float = 0.0   # feedback values unchanged this long while moving: stale (0: off)
+    reset_hold: float = 0.5        # inputs fresh (feedback changing) this long before a reset
+    path_tolerance: float = 0.01   # window points this far from reference/path: off it (0: off)
 
     def __post_init__(self) -> None:
         for name in ("deviation_joint", "deviation_norm", "following_error",
@@ -81,9 +94,11 @@ class WatchdogConfig:
         if not (math.isfinite(self.command_latency) and self.command_latency >= 0):
             raise WatchdogError(f"watchdog parameter 'command_latency' must be >= 0, "
                                 f"got {self.command_latency!r}")
-        if not (math.isfinite(self.feedback_frozen) and self.feedback_frozen >= 0):
-            raise WatchdogError(f"watchdog parameter 'feedback_frozen' must be >= 0 (0 "
-                                f"disables the check), got {self.feedback_frozen!r}")
+        for name in ("feedback_frozen", "reset_hold", "path_tolerance"):
+            x = getattr(self, name)
+            if not (math.isfinite(x) and x >= 0):
+                raise WatchdogError(f"watchdog parameter '{name}' must be >= 0 (0 disables "
+                                    f"the check), got {x!r}")
         if int(self.max_overruns) < 1 or int(self.overrun_window) < int(self.max_overruns):
             raise WatchdogError("watchdog parameters need 1 <= max_overruns <= overrun_window, got "
                                 f"{self.max_overruns} and {self.overrun_window}")
@@ -123,6 +138,7 @@ class Watchdog:
         self.total_events = 0
         self.counts = {k: 0 for k in KINDS}
         self.stop_requested: str | None = None
+        self._stop_topic_true: float | None = None   # latest `true` on the stop topic
         self._overruns: deque[bool] = deque(maxlen=int(config.overrun_window))
         self._deviation_joint = np.full(len(joint_names), float(config.deviation_joint))
         self._lock = threading.Lock()   # fire and reset: latch, counts and events together
@@ -227,22 +243,41 @@ class Watchdog:
                     f"{self.config.max_overruns} in overrun_window {self.config.overrun_window})")
         return None
 
+    def request_stop_topic(self, now: float) -> bool:
+        """A ``true`` on the stop topic at ``now``: latch the stop request (held until a
+        reset at least ``reset_hold`` after the latest ``true``); True when it is new."""
+        self._stop_topic_true = now
+        if self.stop_requested is not None:
+            return False
+        self.stop_requested = "stop topic is true"
+        return True
+
     # ------------------------------------------------------------------ reset
-    def reset(self, persisting: list[tuple[str, str]]) -> tuple[bool, str]:
+    def reset(self, persisting: list[tuple[str, str]],
+              now: float | None = None) -> tuple[bool, str]:
         """Clear the latched trip unless a persistent cause is still present.
 
         ``persisting`` lists (kind, reason) of causes evaluated now by the caller (stale inputs,
-        following error, a policy still failing its test inference...).
+        following error, a policy still failing its test inference...). Given ``now`` (the
+        operator's reset of the live adapter), a stop requested on the stop topic is
+        released unless a ``true`` came within ``reset_hold``; without it (a recorded reset)
+        the request must have been withdrawn already.
         """
         if self.stop_requested is not None:
-            persisting = [("external_stop", f"a stop is still requested: {self.stop_requested}")
-                          ] + list(persisting)
+            held = self._stop_topic_true
+            if now is None or (held is not None and now - held < self.config.reset_hold):
+                since = ("" if now is None or held is None else
+                         f" (the stop topic said true {(now - held) * 1e3:.0f} ms ago; "
+                         f"reset_hold {self.config.reset_hold:g} s)")
+                persisting = [("external_stop", "a stop is still requested: "
+                               f"{self.stop_requested}{since}")] + list(persisting)
         if persisting:
             why = "; ".join(reason for _, reason in persisting)
             return False, f"reset refused: {why}"
         with self._lock:
             was = self.trip
             self.trip = None
+            self.stop_requested = self._stop_topic_true = None
             self._overruns.clear()
         if was is None:
             return True, "nothing to reset"

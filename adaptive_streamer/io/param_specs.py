@@ -30,6 +30,7 @@ import yaml
 
 from ..core.adapter_setup import DEFAULTS, WATCHDOG_PARAMS
 from ..core.playback import END_MODES, MAX_OVERRIDE, MIN_OVERRIDE
+from ..core.provenance import InputTopic
 from ..core.watchdog import TIGHTER_WHEN_LOWER
 from ..share import expand
 
@@ -302,6 +303,11 @@ _WATCHDOG_HELP = {
     "overrun_window": "... within this many decisions",
     "feedback_frozen": "stop when the feedback stays bit-identical this long while the arm "
                        "moves [s] (0: off)",
+    "reset_hold": "a reset needs joint_states, the reference and the feedback the policy "
+                  "reads fresh (the feedback changing) this long, and no stop-topic true "
+                  "within it [s] (0: off)",
+    "path_tolerance": "stop (input_source) when a reference window point is further from "
+                      "the whole reference path (reference/path) [rad] (0: off)",
 }
 
 
@@ -311,7 +317,7 @@ _WATCHDOG_HIGH = {"deviation_joint": 2 * math.pi, "deviation_norm": 2 * math.pi,
                   "following_error": 2 * math.pi, "command_latency": 1.0,
                   "joint_states_timeout": 10.0, "feedback_timeout": 10.0,
                   "reference_timeout": 10.0, "max_overruns": 1000, "overrun_window": 1000,
-                  "feedback_frozen": 60.0}
+                  "feedback_frozen": 60.0, "reset_hold": 10.0, "path_tolerance": 2 * math.pi}
 
 
 def _watchdog(key: str) -> Param:
@@ -320,7 +326,7 @@ def _watchdog(key: str) -> Param:
         Change.LOWER_ONLY if key in TIGHTER_WHEN_LOWER else Change.AT_CONFIGURE)}
     if key in ("max_overruns", "overrun_window"):
         return _p(f"watchdog.{key}", _I, default, _WATCHDOG_HELP[key], low=1, **kw)
-    if key in ("command_latency", "feedback_frozen"):
+    if key in ("command_latency", "feedback_frozen", "reset_hold", "path_tolerance"):
         return _p(f"watchdog.{key}", _N, default, _WATCHDOG_HELP[key], low=0.0, **kw)
     return _p(f"watchdog.{key}", _N, float(default), _WATCHDOG_HELP[key], **POSITIVE, **kw)
 
@@ -376,6 +382,9 @@ ADAPTER = NodeParams("adapter", (
     _p("plan_lead", _N, DEFAULTS["plan_lead"],
        "with a plan output: send each decision's plan at least this long before its "
        "instant, else drop it and follow the sent braking continuation [s]", low=0.0),
+    *(_p(t.parameter, _SS, [""], f"nodes allowed to publish {t.value}, fully qualified "
+         "(e.g. /cell/driver); empty: exactly one, the one publishing at activation")
+      for t in InputTopic),
     *(_watchdog(k) for k in WATCHDOG_PARAMS),
 ), (Group("outputs", (
     _p("type", _S, "position", "position | velocity | trajectory | plan",

@@ -8,7 +8,8 @@ Transitions (drive them with the lifecycle services, e.g. from Python with
 `adaptive_streamer.nodes.lifecycle_client`):
 
 * configure: load limits and the policy card, validate everything; refuse with a message.
-* activate: refused unless ``joint_states`` is fresh and the arm nearly still; the plan
+* activate: refused unless ``joint_states`` is fresh and the arm nearly still, and unless
+  each input has no more publishers than its ``sources.*`` allow-list admits; the plan
   starts from the measured state, holds, approaches the reference's current point with a
   jerk-limited move at reduced limits, then follows with the policy.
 * deactivate / shutdown: a controlled stop while the stream keeps running; the managed
@@ -19,6 +20,17 @@ times; one executor thread (`threads.make_executor`) runs the subscriptions, the
 and the decision (triggered by a guard condition when the stream enters the last committed
 segment). Callbacks only store the latest message; conversions are in
 `adaptive_streamer.io` and every decision and check is in the core.
+
+Input provenance: while active, a timer in the io callback group (every
+`SOURCES_PERIOD`) reads the publishers of each input from the ROS graph and stops the arm
+(``input_source``) on one that is not expected (`adaptive_streamer.core.provenance`).
+``~/reset`` is refused until the inputs have been fresh, the feedback changing, for
+``watchdog.reset_hold`` (`adaptive_streamer.core.input_hold`), and while a publisher is
+unexpected. Each decision's reference window is checked against the whole path the
+reference server published (``reference/path``, `adaptive_streamer.core.path_agreement`):
+a window off it stops the arm as ``input_source`` (after the cycle's own deviation check,
+so a large jump still stops as ``deviation``). A ``false`` on the ``stop`` topic does not
+release a stop (the message does not say who sent it): ``~/reset`` does.
 """
 from __future__ import annotations
 
@@ -46,6 +58,10 @@ from adaptive_streamer.core.activation import check_activation, first_tick
 from adaptive_streamer.core.adapter_setup import DEFAULTS, build_session
 from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, session_summary,
                                                    session_values)
+from adaptive_streamer.core.input_hold import InputHold
+from adaptive_streamer.core.path_agreement import PathError, ReferencePath
+from adaptive_streamer.core.playback import Window
+from adaptive_streamer.core.provenance import InputTopic, expected_sources, source_fault
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import StreamClock, StreamTimeline
@@ -54,6 +70,7 @@ from adaptive_streamer.io.joint_states import JointStateMerger, cdr_decoder
 from . import common
 from ..io.adapter_inputs import LatestInputs
 from ..io.param_specs import ADAPTER
+from ..io.trajectory_conversions import TrajectoryMessageError, msg_to_window
 from .common import OK, WARN, ERROR, declare, now_sec, qos_by_name, refuse_undeclared
 from .lifecycle_guard import guard_change_state
 from .policy_swap import PolicyLoader
@@ -63,6 +80,7 @@ from .threads import make_executor, prepare_process, set_thread_priority
 
 LEVELS = {StatusLevel.OK: OK, StatusLevel.WARN: WARN, StatusLevel.ERROR: ERROR}
 JOINT_STATES_DEPTH = 100  # joint_states messages queued (0.2 s at 500 Hz)
+SOURCES_PERIOD = 0.5      # how often the inputs' publishers are read from the graph [s]
 
 
 class AdapterNode(LifecycleNode):
@@ -98,6 +116,9 @@ class AdapterNode(LifecycleNode):
         self.create_subscription(String, "robot_description", self._on_robot_description,
                                  common.reliable_qos(1, transient_local=True),
                                  callback_group=self._io_group)
+        self._sources_timer = None
+        self._expected: dict[InputTopic, tuple[str, ...]] = {}
+        self._source_faults: dict[InputTopic, str | None] = {}
         self._autostart_timer = None
         if self.get_parameter("autostart").value:
             self.start_autostart()
@@ -258,6 +279,8 @@ class AdapterNode(LifecycleNode):
         self._js_merger = JointStateMerger(self._joints, decode=cdr_decoder())
         self._rate = rate
         self._latest_inputs = LatestInputs(self._joints, setup.parser)
+        self._hold = InputHold()
+        self._allowed = {t: [n for n in self._param(t.parameter) if n] for t in InputTopic}
         self._outputs = [DriverOutput(self, name, self._joints, rate, self._stream_group)
                          for name in self._param("outputs") if name]
         self._setpoint_pub = self.create_lifecycle_publisher(
@@ -272,21 +295,29 @@ class AdapterNode(LifecycleNode):
         self._shadow_msg = setpoint_message(self._joints)
         self._decision_msg = Float64MultiArray()
         self._decision_msg.layout.dim = [MultiArrayDimension(label=decision_record.LABEL)]
-        self._subs = [
+        self._input_subs = {
             # deep: a driver may send its joints in several streams on the topic, and a
             # message of a slow stream must not be dropped behind a fast one
-            self.create_subscription(JointState, "joint_states", self._on_joint_states,
-                                     qos_by_name(self._param("joint_states_qos"),
-                                                 JOINT_STATES_DEPTH),
-                                     callback_group=self._io_group, raw=True),
-            self.create_subscription(JointTrajectory, "reference/window", self._on_window,
-                                     common.reliable_qos(5), callback_group=self._io_group),
-            self.create_subscription(JointState, "feedback", self._on_feedback,
-                                     qos_by_name(self._param("feedback_qos"), 5),
-                                     callback_group=self._io_group),
-            self.create_subscription(Bool, "stop", self._on_stop_topic, common.reliable_qos(1),
-                                     callback_group=self._io_group),
-        ]
+            InputTopic.JOINT_STATES: self.create_subscription(
+                JointState, "joint_states", self._on_joint_states,
+                qos_by_name(self._param("joint_states_qos"), JOINT_STATES_DEPTH),
+                callback_group=self._io_group, raw=True),
+            InputTopic.REFERENCE: self.create_subscription(
+                JointTrajectory, "reference/window", self._on_window, common.reliable_qos(5),
+                callback_group=self._io_group),
+            InputTopic.FEEDBACK: self.create_subscription(
+                JointState, "feedback", self._on_feedback,
+                qos_by_name(self._param("feedback_qos"), 5), callback_group=self._io_group),
+        }
+        self._stop_sub = self.create_subscription(Bool, "stop", self._on_stop_topic,
+                                                  common.reliable_qos(1),
+                                                  callback_group=self._io_group)
+        self._path: ReferencePath | None = None
+        self._path_checked: Window | None = None
+        path_sub = self.create_subscription(JointTrajectory, "reference/path", self._on_path,
+                                            common.reliable_qos(1, transient_local=True),
+                                            callback_group=self._io_group)
+        self._subs = [*self._input_subs.values(), self._stop_sub, path_sub]
         self._adapter_services = [
             self.create_service(Trigger, "~/stop", self._on_stop, callback_group=self._io_group),
             self.create_service(Trigger, "~/reset", self._on_reset, callback_group=self._io_group),
@@ -307,9 +338,13 @@ class AdapterNode(LifecycleNode):
             self._latest_inputs.window_received, wd.reference_timeout,
             float(self._param("activation_velocity")), session.cycle.policy.needs_feedback,
             self._latest_inputs.feedback_received, wd.feedback_timeout)
-        if not check.ok:
-            self.get_logger().error(f"activate refused: {check.refusal}")
+        refusal = check.refusal or self._pin_sources()
+        if refusal is not None:
+            self.get_logger().error(f"activate refused: {refusal}")
             return TransitionCallbackReturn.FAILURE
+        if self._path is None and wd.path_tolerance > 0.0:
+            self.get_logger().warning("no reference/path received: the reference windows are "
+                                      "not checked against the whole path")
         positions = js[2]
         z = np.zeros(len(self._joints))
         t0 = first_tick(now, self._rate)
@@ -323,6 +358,8 @@ class AdapterNode(LifecycleNode):
                                           self._on_stream, self._on_stream_error,
                                           priority=int(self._param("stream_priority")))
         self._stream_timer.start()
+        self._sources_timer = self.create_timer(SOURCES_PERIOD, self._check_sources,
+                                                callback_group=self._io_group)
         self._status = "active"
         self._diag.set(OK, "active: approaching the reference")
         result = super().on_activate(state)
@@ -375,6 +412,9 @@ class AdapterNode(LifecycleNode):
         return super().on_deactivate(state)
 
     def _teardown_timers(self) -> None:
+        if self._sources_timer is not None:
+            self.destroy_timer(self._sources_timer)
+            self._sources_timer = None
         if self._stream_timer is not None:
             self._stream_timer.stop()
             self._stream_timer = None
@@ -404,6 +444,8 @@ class AdapterNode(LifecycleNode):
         self._outputs, self._subs, self._adapter_services = [], [], []
         self._latest_inputs = None
         self._js_merger = None
+        self._expected, self._source_faults = {}, {}
+        self._path = self._path_checked = None
         self.session = None
 
     def on_shutdown(self, state: LifecycleState) -> TransitionCallbackReturn:
@@ -418,9 +460,12 @@ class AdapterNode(LifecycleNode):
 
     def _on_joint_states(self, data: bytes) -> None:
         """Store the raw message (merged with the others when a decision needs it)."""
-        merger = self._js_merger
-        if merger is not None:
-            merger.add(data, self._now())
+        merger, session = self._js_merger, self.session
+        if merger is not None and session is not None:
+            now = self._now()
+            merger.add(data, now)
+            self._hold.note(InputTopic.JOINT_STATES, now,
+                            session.watchdog.config.joint_states_timeout)
 
     def _joint_state(self) -> tuple[float, np.ndarray, np.ndarray, np.ndarray | None] | None:
         """Merged joint state: (oldest received, stamp per joint, positions, velocities) in
@@ -433,25 +478,117 @@ class AdapterNode(LifecycleNode):
         return None if js is None else (js.received, js.stamps, js.position, js.velocity)
 
     def _on_window(self, msg: JointTrajectory) -> None:
-        latest = self._latest_inputs
-        if latest is not None:
-            latest.set_window(self._now(), msg)
+        latest, session = self._latest_inputs, self.session
+        if latest is not None and session is not None:
+            now = self._now()
+            latest.set_window(now, msg)
+            self._hold.note(InputTopic.REFERENCE, now, session.watchdog.config.reference_timeout)
 
     def _on_feedback(self, msg: JointState) -> None:
-        latest = self._latest_inputs
-        if latest is not None:
-            latest.set_feedback(self._now(), msg)
+        latest, session = self._latest_inputs, self.session
+        if latest is not None and session is not None:
+            now = self._now()
+            latest.set_feedback(now, msg)
+            self._hold.note(InputTopic.FEEDBACK, now, session.watchdog.config.feedback_timeout,
+                            msg.position)
 
     def _on_stop_topic(self, msg: Bool) -> None:
+        """``true`` latches a stop; ``false`` is ignored (it does not say who sent it, so it
+        could release another node's stop): ``~/reset`` releases the stop."""
         session = self.session
         if session is None:
             return
-        if msg.data:
-            if session.watchdog.stop_requested is None:
-                session.watchdog.stop_requested = "stop topic is true"
-                session.stop(self._now(), "external_stop", "stop requested on the stop topic")
-        else:
-            session.watchdog.stop_requested = None
+        now = self._now()
+        if not msg.data:
+            if session.watchdog.stop_requested is not None:
+                self.get_logger().warning(
+                    "stop topic false ignored: the message does not say which node sent it; "
+                    "release the stop with ~/reset", throttle_duration_sec=5.0)
+            return
+        if session.watchdog.request_stop_topic(now):
+            nodes = ", ".join(f"'{n}'" for n in self._publisher_nodes(self._stop_sub))
+            session.stop(now, "external_stop",
+                         f"stop requested on the stop topic (its publishers: {nodes or 'none'})")
+
+    def _on_path(self, msg: JointTrajectory) -> None:
+        """The whole reference (transient local): the path the windows must lie on."""
+        try:
+            path = msg_to_window(msg, self._joints)
+            self._path = ReferencePath(path.positions, self._joints)
+            self._path_checked = None
+        except (TrajectoryMessageError, PathError) as exc:
+            self._path = None
+            self.get_logger().error(f"reference/path ignored (the windows are not checked "
+                                    f"against it): {exc}")
+
+    def _path_fault(self, window: Window | None) -> str | None:
+        """Why ``window`` is off the reference path (None: on it, or nothing to check)."""
+        path, session = self._path, self.session
+        if path is None or window is None or session is None:
+            return None
+        tolerance = session.watchdog.config.path_tolerance
+        return None if tolerance <= 0.0 else path.check(window.positions, tolerance).reason
+
+    def _check_path(self, session: StreamingSession, window: Window | None) -> None:
+        """After a decision: a new window off the path stops the arm (``input_source``)."""
+        if window is None or window is self._path_checked or session.watchdog.tripped \
+                or session.mode not in ("approaching", "following"):
+            return
+        self._path_checked = window
+        fault = self._path_fault(window)
+        if fault is not None:
+            session.stop(self._now(), "input_source", fault)
+
+    # ------------------------------------------------------------------ input sources
+    def _publisher_nodes(self, sub: Any) -> list[str]:
+        """Fully qualified node names of the publishers of ``sub``'s topic (graph query)."""
+        return [f"{info.node_namespace.rstrip('/')}/{info.node_name}"
+                for info in self.get_publishers_info_by_topic(sub.topic_name)]
+
+    def _checked_inputs(self) -> list[InputTopic]:
+        """The inputs the running policy reads (feedback only when it reads features)."""
+        session = self.session
+        needs = session is not None and bool(session.cycle.policy.needs_feedback)
+        return [t for t in InputTopic if t is not InputTopic.FEEDBACK or needs]
+
+    def _pin_sources(self) -> str | None:
+        """At activation: the expected publishers of each input, or the refusal."""
+        expected = {t: expected_sources(t, self._allowed[t],
+                                        self._publisher_nodes(self._input_subs[t]))
+                    for t in self._checked_inputs()}
+        refusals = [e.refusal for e in expected.values() if e.refusal is not None]
+        if refusals:
+            return "; ".join(refusals)
+        self._expected = {t: e.nodes for t, e in expected.items()}
+        self._source_faults = {}
+        return None
+
+    def _source_problems(self) -> list[tuple[InputTopic, str]]:
+        """(input, reason) for every input with a publisher that is not expected now."""
+        out = []
+        for topic, expected in self._expected.items():
+            fault = source_fault(topic, expected, self._publisher_nodes(self._input_subs[topic]))
+            if fault is not None:
+                out.append((topic, fault))
+        return out
+
+    def _check_sources(self) -> None:
+        """The sources timer: a new provenance fault stops the arm (``input_source``)."""
+        session = self.session
+        try:
+            if session is None or session.cycle.state is None:
+                return
+            faults = dict(self._source_problems())
+            for topic in self._expected:
+                fault = faults.get(topic)
+                if fault is not None and fault != self._source_faults.get(topic):
+                    session.stop(self._now(), "input_source", fault)
+                self._source_faults[topic] = fault
+        except Exception as exc:  # never let an exception escape a callback
+            self.get_logger().error(f"input source check failed: {exc}",
+                                    throttle_duration_sec=5.0)
+            if session is not None and session.cycle.state is not None:
+                session.stop(self._now(), "input_source", f"input source check failed: {exc}")
 
     def _inputs(self, now: float) -> SessionInputs:
         latest = self._latest_inputs
@@ -524,7 +661,9 @@ class AdapterNode(LifecycleNode):
         try:
             t0 = time.perf_counter()
             now = self._now()
-            d = session.decide(now, self._inputs(now), self._now)
+            inputs = self._inputs(now)
+            d = session.decide(now, inputs, self._now)
+            self._check_path(session, inputs.window)
             if d is not None:
                 self._publish_plan(session)
                 self._decision_msg.data = decision_record.encode(d).tolist()
@@ -611,7 +750,18 @@ class AdapterNode(LifecycleNode):
             response.success, response.message = False, "not streaming (activate first)"
             return response
         now = self._now()
-        ok, msg = session.reset_on(now, self._inputs(now))
+        wd = session.watchdog.config
+        timeouts = {InputTopic.JOINT_STATES: wd.joint_states_timeout,
+                    InputTopic.REFERENCE: wd.reference_timeout,
+                    InputTopic.FEEDBACK: wd.feedback_timeout}
+        inputs = self._inputs(now)
+        extra = [("input_source", reason) for _, reason in self._source_problems()]
+        off_path = self._path_fault(inputs.window)
+        if off_path is not None:
+            extra.append(("input_source", off_path))
+        extra += [("reset_hold", reason) for reason in self._hold.problems(
+            now, wd.reset_hold, timeouts, self._checked_inputs())]
+        ok, msg = session.reset_on(now, inputs, extra)
         if ok:
             self._diag.set(OK, "reset: approaching the reference")
             self._paused_for = None
@@ -631,6 +781,10 @@ class AdapterNode(LifecycleNode):
                  ("decision_thread", self._priority_note)]
         vals += session_values(s, self._timings, self._ticks.skipped if self._ticks else 0)
         vals += list(self._counters.items())
+        vals += [(t.parameter, ", ".join(nodes)) for t, nodes in self._expected.items()]
+        vals += [("stop_request", s.watchdog.stop_requested or "none"),
+                 ("reference_path", "none (windows not checked)" if self._path is None
+                  else f"{self._path.samples} samples")]
         for out in getattr(self, "_outputs", []):
             vals += list(out.status().items())
         summary = session_summary(s, self._counters["guard_failures"])
