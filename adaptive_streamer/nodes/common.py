@@ -249,7 +249,10 @@ def run_nodes(factories: Sequence[Callable[[], Node]], args: list[str] | None = 
         code = 1
     # a shutdown that hangs (seen once: a child not stopping within bringup's 10 s) leaves
     # every thread's stack in the log first
-    faulthandler.dump_traceback_later(SHUTDOWN_REPORT, exit=False)
+    try:   # to the process's own stderr (a captured sys.stderr may have no file number)
+        faulthandler.dump_traceback_later(SHUTDOWN_REPORT, exit=False, file=sys.__stderr__)
+    except (AttributeError, ValueError, OSError):
+        pass   # no usable stderr: no report
     try:
         if before_shutdown is not None and nodes and rclpy.ok():
             before_shutdown(nodes, ex)
