@@ -15,7 +15,8 @@ import pytest
 
 from adaptive_streamer.core.input_hold import InputHold
 from adaptive_streamer.core.path_agreement import PathError, ReferencePath
-from adaptive_streamer.core.provenance import InputTopic, expected_sources, source_fault
+from adaptive_streamer.core.provenance import (UNIDENTIFIED, InputTopic, expected_sources,
+                                               source_fault)
 from adaptive_streamer.core.watchdog import KINDS, PERSISTENT, Watchdog, WatchdogConfig, \
     WatchdogError
 
@@ -69,6 +70,16 @@ def hold_after(messages: list[tuple[float, tuple[float, ...] | None]],
 
 
 TIMEOUTS = {JS: 0.1, REF: 0.25, FB: 0.25}
+
+
+def test_a_publisher_not_yet_named_by_the_graph_is_not_judged_until_it_is():
+    # the graph can report a publisher before its node's name: rclpy then gives the
+    # placeholder '_NODE_NAME_UNKNOWN_' (seen on a loaded machine), which the adapter maps
+    # to UNIDENTIFIED
+    at_start = expected_sources(InputTopic.JOINT_STATES, [], [UNIDENTIFIED])
+    assert at_start.refusal is not None and "not identified yet" in at_start.refusal
+    assert source_fault(InputTopic.JOINT_STATES, ("/driver",), ["/driver", UNIDENTIFIED]) is None
+    assert "'/rogue'" in source_fault(InputTopic.JOINT_STATES, ("/driver",), ["/driver", "/rogue"])
 
 
 def test_hold_needs_fresh_inputs_for_the_hold_time():

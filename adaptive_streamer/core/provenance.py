@@ -22,6 +22,11 @@ from enum import Enum
 from typing import Sequence
 
 
+# a publisher whose node the ROS graph has not named yet (its endpoint was discovered before
+# its participant's node information): not judged until it is named
+UNIDENTIFIED = "<not yet identified>"
+
+
 class InputTopic(Enum):
     """The inputs whose publishers are checked (value: the topic's relative name)."""
 
@@ -50,6 +55,10 @@ def expected_sources(topic: InputTopic, allowed: Sequence[str],
     """The expected publishers of ``topic`` given its allow-list ``allowed`` (empty:
     exactly one, the one ``seen`` now) and the publishers' node names ``seen`` now."""
     allowed = tuple(a for a in allowed if a)
+    if UNIDENTIFIED in seen:
+        return ExpectedSources(topic, refusal=(
+            f"a publisher of '{topic.value}' is not identified yet (the ROS graph has not "
+            f"named its node); ask again"))
     if allowed:
         fault = source_fault(topic, allowed, seen)
         if fault is not None:
@@ -65,7 +74,10 @@ def expected_sources(topic: InputTopic, allowed: Sequence[str],
 def source_fault(topic: InputTopic, expected: Sequence[str],
                  seen: Sequence[str]) -> str | None:
     """Why the publishers ``seen`` of ``topic`` are not the ``expected`` ones (an extra or
-    changed publisher, named), or None."""
+    changed publisher, named), or None (also while a publisher is not identified yet: it is
+    judged once the graph names it)."""
+    if UNIDENTIFIED in seen:
+        return None
     extra = Counter(seen) - Counter(expected)
     if not extra:
         return None

@@ -61,7 +61,8 @@ from adaptive_streamer.core.adapter_status import (CycleTimings, StatusLevel, se
 from adaptive_streamer.core.input_hold import InputHold
 from adaptive_streamer.core.path_agreement import PathError, ReferencePath
 from adaptive_streamer.core.playback import Window
-from adaptive_streamer.core.provenance import InputTopic, expected_sources, source_fault
+from adaptive_streamer.core.provenance import (UNIDENTIFIED, InputTopic, expected_sources,
+                                               source_fault)
 from adaptive_streamer.core.segment import MotionState
 from adaptive_streamer.core.session import SessionInputs, StreamingSession
 from adaptive_streamer.core.stream import StreamClock, StreamTimeline
@@ -81,6 +82,7 @@ from .threads import make_executor, prepare_process, set_thread_priority
 LEVELS = {StatusLevel.OK: OK, StatusLevel.WARN: WARN, StatusLevel.ERROR: ERROR}
 JOINT_STATES_DEPTH = 100  # joint_states messages queued (0.2 s at 500 Hz)
 SOURCES_PERIOD = 0.5      # how often the inputs' publishers are read from the graph [s]
+UNNAMED_NODE = "_NODE_NAME_UNKNOWN_"   # the graph's node name of a not yet identified publisher
 
 
 class AdapterNode(LifecycleNode):
@@ -541,8 +543,11 @@ class AdapterNode(LifecycleNode):
 
     # ------------------------------------------------------------------ input sources
     def _publisher_nodes(self, sub: Any) -> list[str]:
-        """Fully qualified node names of the publishers of ``sub``'s topic (graph query)."""
-        return [f"{info.node_namespace.rstrip('/')}/{info.node_name}"
+        """Fully qualified node names of the publishers of ``sub``'s topic (graph query);
+        `UNIDENTIFIED` for one whose node the graph has not named yet (the middleware
+        reports the placeholder name ``_NODE_NAME_UNKNOWN_`` until then)."""
+        return [UNIDENTIFIED if info.node_name == UNNAMED_NODE
+                else f"{info.node_namespace.rstrip('/')}/{info.node_name}"
                 for info in self.get_publishers_info_by_topic(sub.topic_name)]
 
     def _checked_inputs(self) -> list[InputTopic]:
