@@ -22,6 +22,7 @@ import subprocess
 import sys
 import threading
 import time
+import traceback
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable
@@ -645,6 +646,7 @@ class Cell:
 
     def _start_nodes(self, adapter_params: dict[str, Any] | None) -> None:
         """The probe (and, when asked, the adapter) in this process."""
+        self.spin_error: str | None = None
         self.probe = Probe()
         self.cell_ex = SingleThreadedExecutor()
         self.cell_ex.add_node(self.probe)
@@ -666,16 +668,18 @@ class Cell:
         for thread in self._spinners:
             thread.start()
 
-    @staticmethod
-    def _spin(ex: Any) -> None:
+    def _spin(self, ex: Any) -> None:
         try:
             ex.spin()
-        except Exception:  # the executor is shut down at close
-            pass
+        except Exception as exc:  # also when the executor is shut down at close
+            if not getattr(self, "_closing", False):   # a callback let an exception out
+                self.spin_error = f"{type(exc).__name__}: {exc}"
+                traceback.print_exc()
 
     def close(self) -> None:
         """Deactivate (if active), destroy every node and stop the executors and the cell
         process (these always, even when the adapter does not answer)."""
+        self._closing = True
         try:
             if self.state(timeout=5.0) == "active":
                 self.transition(Transition.TRANSITION_DEACTIVATE)
@@ -711,8 +715,10 @@ class Cell:
         end = time.monotonic() + timeout
         while not any(f.done() for f in futures):
             if time.monotonic() > end:
+                ended = getattr(self, "spin_error", None)
                 raise AssertionError(f"timed out after {timeout:g} s waiting for response "
-                                     f"of {name}")
+                                     f"of {name}" + (f" (an executor of this process "
+                                                     f"ended: {ended})" if ended else ""))
             if resend is not None and time.monotonic() > end - timeout + resend * len(futures):
                 futures.append(cli.call_async(req))
             time.sleep(0.01)
