@@ -549,6 +549,19 @@ class Probe(Node):
         return self._service_clients[name]
 
 
+def spin_executor(ex: Any, owner: Any = None) -> None:
+    """Spin ``ex`` until it is shut down. An exception that ends it (a callback let one
+    out) is printed and kept as ``owner.spin_error``, unless ``owner`` is closing (an
+    executor shut down at close may raise too)."""
+    try:
+        ex.spin()
+    except Exception as exc:
+        if not getattr(owner, "_closing", False):
+            if owner is not None:
+                owner.spin_error = f"{type(exc).__name__}: {exc}"
+            traceback.print_exc()
+
+
 def wait_until(cond: Callable[[], Any], what: str, timeout: float = 20.0,
                poll: float = 0.01) -> Any:
     """Poll ``cond`` until it returns something truthy (returned); AssertionError on timeout."""
@@ -669,12 +682,7 @@ class Cell:
             thread.start()
 
     def _spin(self, ex: Any) -> None:
-        try:
-            ex.spin()
-        except Exception as exc:  # also when the executor is shut down at close
-            if not getattr(self, "_closing", False):   # a callback let an exception out
-                self.spin_error = f"{type(exc).__name__}: {exc}"
-                traceback.print_exc()
+        spin_executor(ex, self)
 
     def close(self) -> None:
         """Deactivate (if active), destroy every node and stop the executors and the cell
@@ -785,14 +793,15 @@ class Cell:
         wait_until(lambda: self.mode() == mode, f"adapter mode '{mode}'", timeout)
 
     def wait_cell(self) -> None:
-        """Wait until the reference server's windows and the relayed joint states arrive."""
-        seen: list[Any] = []
-        sub = self.probe.create_subscription(JointState, "joint_states", seen.append, 10)
-        try:
-            wait_until(lambda: self.probe.last_window is not None and seen,
-                       "the reference server and sim driver")
-        finally:
-            self.probe.destroy_subscription(sub)
+        """Wait until the reference server's windows and the relayed joint states arrive.
+        The subscription stays until the probe goes: destroying it from this thread while
+        the probe's executor waits on it ends that executor (rclpy's InvalidHandle,
+        "destruction was requested"; seen on a loaded machine)."""
+        seen: list[bool] = []
+        self._js_seen = self.probe.create_subscription(
+            JointState, "joint_states", lambda _: seen or seen.append(True), 10)
+        wait_until(lambda: self.probe.last_window is not None and seen,
+                   "the reference server and sim driver")
 
     def samples_since(self, t: float) -> list[Sample]:
         """Streamed setpoints with stamp >= ``t`` (ROS time)."""

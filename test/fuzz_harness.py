@@ -1055,7 +1055,7 @@ class ClockFuzz:
         self._aex = make_executor()
         self._aex.add_node(self.adapter)
         self._threads = [threading.Thread(target=self._tick_clock, daemon=True)] + [
-            threading.Thread(target=ah.Cell._spin, args=(e,), daemon=True)
+            threading.Thread(target=ah.spin_executor, args=(e,), daemon=True)
             for e in (self._ex, self._aex)]
         for th in self._threads:
             th.start()
